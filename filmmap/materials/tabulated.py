@@ -1,0 +1,110 @@
+"""Tabulated n, k data with shape-preserving interpolation."""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+import numpy as np
+from scipy.interpolate import PchipInterpolator
+
+from filmmap.errors import FilmmapInputError
+from filmmap.materials.base import Material
+
+
+class Tabulated(Material):
+    """Material defined by a table of n and k against wavelength.
+
+    n and k are interpolated separately with a piecewise-cubic Hermite
+    (PCHIP) interpolant: smooth (C1), and shape preserving, so it never
+    overshoots between nodes and k built from non-negative nodes stays
+    non-negative.
+
+    Parameters
+    ----------
+    name : str
+        Registry name.
+    wavelength_nm : array_like
+        Strictly increasing node wavelengths in nm.
+    n, k : array_like
+        Refractive index and extinction coefficient at the nodes (N = n - ik, k >= 0).
+    source : str
+        Citation of the data.
+    extrapolate : bool
+        Allow evaluation outside the table (linear continuation by PCHIP).
+
+    References
+    ----------
+    .. [1] F. N. Fritsch and R. E. Carlson, "Monotone piecewise cubic
+       interpolation", SIAM J. Numer. Anal. 17, 238-246 (1980).
+    """
+
+    def __init__(self, name, wavelength_nm, n, k, source="", extrapolate=False):
+        wl = np.asarray(wavelength_nm, dtype=float)
+        n = np.asarray(n, dtype=float)
+        k = np.asarray(k, dtype=float)
+        if wl.ndim != 1 or wl.size < 2 or n.shape != wl.shape or k.shape != wl.shape:
+            raise ValueError(f"material {name!r}: need >= 2 nodes with matching wavelength, n, k")
+        if np.any(np.diff(wl) <= 0):
+            raise ValueError(f"material {name!r}: table wavelengths must be strictly increasing")
+        if np.any(k < 0):
+            raise ValueError(f"material {name!r}: k must be >= 0 (N = n - ik convention)")
+        super().__init__(name, (wl[0], wl[-1]), source, extrapolate)
+        self.wavelength_nm, self.n, self.k = wl, n, k
+        self._n = PchipInterpolator(wl, n, extrapolate=True)
+        self._k = PchipInterpolator(wl, k, extrapolate=True)
+
+    def _index(self, wavelength_nm):
+        k = np.clip(self._k(wavelength_nm), 0.0, None)
+        return self._n(wavelength_nm) - 1j * k
+
+    @classmethod
+    def from_csv(cls, path, name=None, extrapolate=False):
+        """Read a table: ``#`` comment lines, header ``wavelength_nm,n,k``, numeric rows.
+
+        Parameters
+        ----------
+        path : str or path-like
+            CSV file; the comment lines are kept as the source text.
+        name : str, optional
+            Registry name (default: the file stem).
+        extrapolate : bool
+            Allow evaluation outside the table.
+        """
+        path = Path(path)
+        comments, rows = [], []
+        try:
+            text = path.read_text(encoding="utf-8-sig")
+        except (OSError, UnicodeDecodeError) as exc:
+            raise FilmmapInputError(f"cannot read n,k table: {exc}", file=path) from None
+        header = None
+        for lineno, line in enumerate(text.splitlines(), start=1):
+            if not line.strip():
+                continue
+            if line.lstrip().startswith("#"):
+                comments.append(line.lstrip("# ").rstrip())
+                continue
+            cells = next(csv.reader([line]))
+            if header is None:
+                header = [c.strip() for c in cells]
+                if header[:3] != ["wavelength_nm", "n", "k"]:
+                    raise FilmmapInputError(
+                        f"expected header 'wavelength_nm,n,k', found {','.join(header)!r}",
+                        file=path, line=lineno)
+                continue
+            try:
+                rows.append([float(c) for c in cells[:3]])
+            except ValueError:
+                raise FilmmapInputError(f"expected three numbers, found {line.strip()!r}",
+                                        file=path, line=lineno) from None
+            if len(cells) < 3 or not all(np.isfinite(rows[-1])):
+                raise FilmmapInputError("expected three finite numbers wavelength_nm,n,k",
+                                        file=path, line=lineno)
+        if header is None or len(rows) < 2:
+            raise FilmmapInputError("n,k table needs a header and at least two rows", file=path)
+        data = np.array(rows)
+        try:
+            return cls(name or path.stem, data[:, 0], data[:, 1], data[:, 2],
+                       source=" ".join(comments) or str(path), extrapolate=extrapolate)
+        except ValueError as exc:
+            raise FilmmapInputError(str(exc), file=path) from None

@@ -1,0 +1,1 @@
+"""Published data tables and constants, each file citing its source in its header."""
