@@ -55,8 +55,18 @@ class Tabulated(Material):
         self._k = PchipInterpolator(wl, k, extrapolate=True)
 
     def _index(self, wavelength_nm):
-        k = np.clip(self._k(wavelength_nm), 0.0, None)
-        return self._n(wavelength_nm) - 1j * k
+        wl = np.asarray(wavelength_nm, dtype=float)
+        n = self._n(wl)
+        k = self._k(wl)
+        if self.extrapolate:
+            # outside the table: straight lines with the end slopes, not the end cubics
+            lo, hi = self.wavelength_nm[0], self.wavelength_nm[-1]
+            for edge, side in ((lo, wl < lo), (hi, wl > hi)):
+                if np.any(side):
+                    dw = wl[side] - edge
+                    n[side] = self._n(edge) + self._n.derivative()(edge) * dw
+                    k[side] = self._k(edge) + self._k.derivative()(edge) * dw
+        return n - 1j * np.clip(k, 0.0, None)
 
     @classmethod
     def from_csv(cls, path, name=None, extrapolate=False):

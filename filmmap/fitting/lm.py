@@ -1,0 +1,130 @@
+"""Batched Levenberg-Marquardt: many small least-squares problems in lock step."""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def weighted_residual(model, P, y, sqrt_w, jacobian):
+    """Weighted residuals (n, M) = sqrt(w) * (y - f(P)), Delta differences wrapped.
+
+    Returns (r, Jw) with Jw = sqrt(w) * df/dP of shape (n, M, p) when ``jacobian``.
+    """
+    from filmmap.fitting.model import ELLIPSOMETRY, wrap_delta_difference
+
+    out = model.evaluate(P, jacobian=jacobian)
+    f, J = out if jacobian else (out, None)
+    diff = y - f
+    if model.technique == ELLIPSOMETRY:
+        diff = wrap_delta_difference(diff, model.wavelength_nm.size)
+    r = diff * sqrt_w
+    if not jacobian:
+        return r, None
+    return r, J * sqrt_w[:, :, None]
+
+
+def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e-12):
+    """Minimise sum(r^2) for each row of P0 independently, all rows at once.
+
+    Parameters
+    ----------
+    model : SpectralModel
+        Forward model.
+    P0 : numpy.ndarray, shape (n, p)
+        Starting values.
+    y : numpy.ndarray, shape (n, M)
+        Data.
+    sqrt_w : numpy.ndarray, shape (n, M)
+        Square roots of the weights (1/sigma); 0 masks a point.
+    lo, hi : numpy.ndarray, shape (p,)
+        Bounds; steps are clipped into them (projected LM).
+    xtol : numpy.ndarray, shape (p,)
+        Absolute step tolerance per parameter (e.g. 0.01 nm for a thickness):
+        once every Gauss-Newton step component is below it, the step is applied
+        and the row stops. Near the minimum the error after a Gauss-Newton step
+        is of the order of the step squared over the basin width, so the final
+        error is far below xtol.
+    max_iter : int
+        Iteration limit per row.
+    ftol : float
+        Also converged when the relative chi-square decrease of an accepted step <= ftol.
+
+    Returns
+    -------
+    P : numpy.ndarray (n, p)
+    chi2 : numpy.ndarray (n,)
+        Weighted sum of squared residuals at P.
+    JTJ : numpy.ndarray (n, p, p)
+        Gauss-Newton curvature at the last evaluated point (for the covariance).
+    r : numpy.ndarray (n, M)
+        Weighted residual at the last evaluated point.
+    iterations : numpy.ndarray (n,) of int
+    converged : numpy.ndarray (n,) of bool
+
+    Notes
+    -----
+    Each iteration costs one model evaluation with derivatives per active
+    row: the trial point's Jacobian is computed together with its residual and
+    reused as the next linearisation when the step is accepted. Rows leave the
+    active set as they converge.
+
+    References
+    ----------
+    .. [1] K. Levenberg, Q. Appl. Math. 2, 164 (1944).
+    .. [2] D. W. Marquardt, J. SIAM 11, 431 (1963).
+    .. [3] J. Nocedal and S. J. Wright, Numerical Optimization, 2nd ed. (2006), ch. 10.
+    """
+    P = np.array(P0, dtype=float, copy=True)
+    n, p = P.shape
+    r, Jw = weighted_residual(model, P, y, sqrt_w, True)
+    r = np.array(r)
+    chi2 = np.einsum("nm,nm->n", r, r)
+    JTJ = np.einsum("nmi,nmj->nij", Jw, Jw)
+    grad = np.einsum("nmi,nm->ni", Jw, r)
+    lam = np.full(n, 1e-4)
+    iterations = np.zeros(n, dtype=int)
+    converged = np.zeros(n, dtype=bool)
+    active = np.arange(n)
+    eye = np.eye(p)
+    for _ in range(max_iter):
+        if active.size == 0:
+            break
+        A = JTJ[active]
+        diag = np.einsum("nii->ni", A)
+        # Marquardt's scaling by the curvature diagonal, with a floor so a
+        # parameter with no sensitivity still gets a bounded step
+        damp = lam[active, None] * np.maximum(diag, 1e-12 * (1.0 + diag.max(axis=1, keepdims=True)))
+        A = A + damp[:, :, None] * eye
+        step = np.linalg.solve(A, grad[active][:, :, None])[:, :, 0]
+        P_try = np.clip(P[active] + step, lo, hi)
+        # a Gauss-Newton step this small means P is already within xtol of the
+        # minimum: stop without paying for another model evaluation
+        tiny = (lam[active] <= 1e-3) & np.all(np.abs(P_try - P[active]) <= xtol, axis=1)
+        if tiny.any():
+            converged[active[tiny]] = True
+            P[active[tiny]] = P_try[tiny]
+            active, P_try = active[~tiny], P_try[~tiny]
+            if active.size == 0:
+                break
+        r_t, Jw_t = weighted_residual(model, P_try, y[active], sqrt_w[active], True)
+        chi2_t = np.einsum("nm,nm->n", r_t, r_t)
+        iterations[active] += 1
+        ok = np.isfinite(chi2_t) & (chi2_t <= chi2[active])
+        acc = active[ok]
+        actual_step = np.abs(P_try - P[active])
+        decrease = chi2[active] - chi2_t
+        P[acc] = P_try[ok]
+        chi2[acc] = chi2_t[ok]
+        r[acc] = r_t[ok]
+        JTJ[acc] = np.einsum("nmi,nmj->nij", Jw_t[ok], Jw_t[ok])
+        grad[acc] = np.einsum("nmi,nm->ni", Jw_t[ok], r_t[ok])
+        lam[acc] = np.maximum(lam[acc] * 0.3, 1e-9)
+        lam[active[~ok]] *= 10.0
+        small = np.all(actual_step <= xtol, axis=1)
+        flat = decrease <= ftol * np.maximum(chi2[active], 1e-300)
+        done = (ok & (small | flat)) | (~ok & (lam[active] > 1e12))
+        # a rejected step that was already below xtol also means we are at the minimum
+        done |= ~ok & small
+        converged[active[done]] = True
+        active = active[~done]
+    return P, chi2, JTJ, r, iterations, converged
