@@ -240,25 +240,16 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
     n, M = y.shape
     p = len(free)
 
-    s = default_sigma(technique, y, m) if sigma is None else np.broadcast_to(
-        np.asarray(sigma, dtype=float), y.shape)
-    use = np.isfinite(y) & np.isfinite(s) & (s > 0)
+    s_all = None if sigma is None else np.broadcast_to(np.asarray(sigma, dtype=float), y.shape)
     col_use = np.ones(m, dtype=bool)
-    for lo, hi in exclude_bands_nm:
-        col_use &= ~((wl >= lo) & (wl <= hi))
-    if mask is not None:
-        mk = np.broadcast_to(np.asarray(mask, dtype=bool), (n, m))
-        use &= np.tile(mk, (1, M // m)) if technique == ELLIPSOMETRY else mk
-    use &= np.tile(col_use, M // m)[None, :]
-    y_clean = np.where(use, y, 0.0)
-    sqrt_w = np.where(use, 1.0 / np.where(use, s, 1.0), 0.0)
-    n_used = use.sum(axis=1)
+    for lo_b, hi_b in exclude_bands_nm:
+        col_use &= ~((wl >= lo_b) & (wl <= hi_b))
+    mk = None if mask is None else np.broadcast_to(np.asarray(mask, dtype=bool), (n, m))
 
     lo = np.array([f.lo for f in free])
     hi = np.array([f.hi for f in free])
-    xtol = np.array([f.xtol for f in free])
 
-    # --- global search: library over the thickness parameters --------------
+    # --- global search: one library over the thickness parameters -----------
     grids = []
     for f in free:
         if f.kind == "thickness":
@@ -267,78 +258,43 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
             grids.append(np.linspace(f.lo, f.hi, count))
         else:
             grids.append(np.array([f.start]))
-    shape = [g.size for g in grids]
     points, library = build_library(model, grids)
-    ctx = dict(model=model, m=m, p=p, free=free, grids=grids, shape=shape, points=points,
-               library=library, lo=lo, hi=hi, max_iter=max_iter, max_candidates=max_candidates)
+    ctx = dict(model=model, m=m, p=p, free=free, grids=grids, shape=[g.size for g in grids],
+               points=points, library=library, lo=lo, hi=hi, xtol=np.array([f.xtol for f in free]),
+               max_iter=max_iter, max_candidates=max_candidates, robust=robust,
+               col_use=np.tile(col_use, M // m), grid_weight=None)
+    if technique == REFLECTANCE and s_all is None and mk is None:
+        # the search only ranks basins, so one weight per column serves all spectra
+        # (one matrix product instead of two); it comes from the lot's median spectrum
+        # so no block sees a different one. The refinement uses each spectrum's weights.
+        sample = y[:: max(1, n // 256)]
+        sample = sample[np.all(np.isfinite(sample), axis=1)]
+        typical = np.median(sample, axis=0) if sample.size else np.full(M, 0.3)
+        ctx["grid_weight"] = np.where(ctx["col_use"], 1.0 / default_sigma(technique, typical[None], m)[0] ** 2, 0.0)
+
+    def run(sl):
+        return _search_and_refine(ctx, y[sl], None if s_all is None else s_all[sl],
+                                  None if mk is None else mk[sl])
+
     blocks = [slice(a, min(a + block_rows, n)) for a in range(0, n, block_rows)]
     if workers is None:
         workers = min(2, os.cpu_count() or 1)
     if workers > 1 and len(blocks) > 1:
         # numpy's elementwise kernels and BLAS release the GIL: threads share the library
         with ThreadPoolExecutor(workers) as pool:
-            parts = list(pool.map(lambda sl: _search_and_refine(ctx, y_clean[sl], sqrt_w[sl],
-                                                                use[sl], n_used[sl]), blocks))
+            parts = list(pool.map(run, blocks))
     else:
-        parts = [_search_and_refine(ctx, y_clean[sl], sqrt_w[sl], use[sl], n_used[sl]) for sl in blocks]
-    values_raw = np.concatenate([q["values"] for q in parts])
-    chi2_sel = np.concatenate([q["chi2"] for q in parts])
-    r_sel = np.concatenate([q["r"] for q in parts])
-    JTJ_sel = np.concatenate([q["JTJ"] for q in parts])
-    it_sel = np.concatenate([q["iterations"] for q in parts])
-    conv_sel = np.concatenate([q["converged"] for q in parts])
-    reason = np.concatenate([q["reason"] for q in parts])
+        parts = [run(sl) for sl in blocks]
+
+    def cat(key):
+        return np.concatenate([q[key] for q in parts])
+
+    values_raw, sigma_out, red, rms = cat("values"), cat("sigma"), cat("reduced_chi2"), cat("rms")
+    it_sel, conv_sel, n_used, reason = cat("iterations"), cat("converged"), cat("n_used"), cat("reason")
+    cond_ok = cat("cond_ok")
     candidates = {}
     for sl, q in zip(blocks, parts):
         candidates.update({sl.start + k: v for k, v in q["candidates"].items()})
-    dof = np.maximum(n_used - p, 1)
-
-    # --- robust re-weighting on the chosen candidate -------------------------
-    if robust:
-        sw = sqrt_w.copy()
-        for _ in range(3):
-            r, _j = weighted_residual(model, values_raw, y_clean, sw, False)
-            med = np.median(np.where(sw > 0, np.abs(r), np.nan), axis=1)
-            scale = np.nan_to_num(1.4826 * med, nan=1.0)[:, None]
-            u = np.abs(r) / np.maximum(scale, 1e-300)
-            hub = np.where(u <= 1.345, 1.0, 1.345 / np.maximum(u, 1e-300))
-            sw = sqrt_w * np.sqrt(hub)
-            values_raw, chi2_sel, JTJ_sel, r_sel, it2, conv_sel = levenberg_marquardt(
-                model, values_raw, y_clean, sw, lo, hi, xtol, max_iter=max_iter)
-            it_sel = it_sel + it2
-        # the robust weights redefine which points count; report chi2 on them
-        n_used = (sw > 0).sum(axis=1)
-        dof = np.maximum(n_used - p, 1)
-        sqrt_w_final = sw
-    else:
-        sqrt_w_final = sqrt_w
-
-    red = chi2_sel / dof
-    with np.errstate(invalid="ignore", divide="ignore"):
-        cov_diag = np.full((n, p), np.nan)
-        good_jtj = np.all(np.isfinite(JTJ_sel), axis=(1, 2))
-        cond_ok = np.zeros(n, dtype=bool)
-        if good_jtj.any():
-            inv = np.full_like(JTJ_sel, np.nan)
-            sel = np.nonzero(good_jtj)[0]
-            try:
-                inv[sel] = np.linalg.inv(JTJ_sel[sel])
-                cond_ok[sel] = True
-            except np.linalg.LinAlgError:
-                for k in sel:
-                    try:
-                        inv[k] = np.linalg.inv(JTJ_sel[k])
-                        cond_ok[k] = True
-                    except np.linalg.LinAlgError:
-                        pass
-            cov_diag = np.einsum("nii->ni", inv) * red[:, None]
-    sigma_out = np.sqrt(np.where(cov_diag >= 0, cov_diag, np.nan))
-
-    # unweighted rms residual in data units, at the last evaluated point (the
-    # final Gauss-Newton step below xtol changes it only in second order)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        r_plain = np.where(sqrt_w_final > 0, r_sel / sqrt_w_final, 0.0)
-    rms = np.sqrt(np.einsum("nm,nm->n", r_plain, r_plain) / np.maximum(n_used, 1))
 
     # --- verdicts -------------------------------------------------------------
     ok = np.ones(n, dtype=bool)
@@ -350,7 +306,7 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
         ok[cond] = False
 
     fail(n_used <= p, "no usable data: too few finite points in the spectrum")
-    fail(np.char.startswith(reason.astype(str), "ambiguous"), lambda k: reason[k])
+    fail(np.array([r.startswith("ambiguous") for r in reason], dtype=bool), lambda k: reason[k])
     fail(~conv_sel, lambda k: f"did not converge in {it_sel[k]} iterations")
     span = hi - lo
     at_lo = np.isclose(values_raw, lo, rtol=0, atol=1e-6 * span + 1e-9)
@@ -369,28 +325,43 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
                      ok=ok, reason=reason.astype(str), candidates=candidates)
 
 
-def _search_and_refine(ctx, y_clean, sqrt_w, use, n_used):
-    """Global search and candidate refinement for one block of spectra."""
+def _prepare(ctx, y, s, mk):
+    """Weights and masks of one block: masked points get weight 0 and value 0."""
+    model, m = ctx["model"], ctx["m"]
+    if s is None:
+        s = default_sigma(model.technique, y, m)
+    use = np.isfinite(y) & np.isfinite(s) & (s > 0)
+    if mk is not None:
+        use &= np.tile(mk, (1, y.shape[1] // m))
+    use &= ctx["col_use"][None, :]
+    y_clean = np.where(use, y, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sqrt_w = np.where(use, 1.0 / s, 0.0)
+    return y_clean, sqrt_w, use
+
+
+def _search_and_refine(ctx, y, s, mk):
+    """Global search, candidate refinement, robust pass and uncertainties for one block."""
     model, m, p, free = ctx["model"], ctx["m"], ctx["p"], ctx["free"]
     grids, shape, points, library = ctx["grids"], ctx["shape"], ctx["points"], ctx["library"]
-    lo, hi = ctx["lo"], ctx["hi"]
-    n = y_clean.shape[0]
+    lo, hi, xtol = ctx["lo"], ctx["hi"], ctx["xtol"]
     technique, max_iter, max_candidates = model.technique, ctx["max_iter"], ctx["max_candidates"]
+    y_clean, sqrt_w, use = _prepare(ctx, y, s, mk)
+    n = y_clean.shape[0]
+    n_used = use.sum(axis=1)
     if technique == ELLIPSOMETRY:
         y_s = ncs(y_clean, m)
         # N, C, S carry about 2 sigma_Psi (rad) of noise each (Fujiwara 2007, sect. 3.4)
         sig_ncs = 2.0 * np.radians(DEFAULT_PSI_DELTA_SIGMA_DEG[0])
         u = use[:, :m] & use[:, m:]
         w_s = np.tile(np.where(u, 1.0 / sig_ncs**2, 0.0), (1, 3))
+    elif ctx["grid_weight"] is not None:
+        y_s, w_s = y_clean, np.where(use, ctx["grid_weight"], 0.0)
+        if use.all():
+            w_s = ctx["grid_weight"]
     else:
         y_s, w_s = y_clean, sqrt_w**2
-    if np.all(use == use[:1]):
-        # the search only ranks basins: one typical weight per column serves all
-        # spectra (one matrix product instead of two); the refinement uses each
-        # spectrum's own weights
-        w_s = w_s.mean(axis=0)
     chi2_grid = score_library(y_s, w_s, library)
-
     # --- candidate basins ---------------------------------------------------
     minima = local_minima(chi2_grid, shape)
     masked = np.where(minima, chi2_grid, np.inf)
@@ -426,7 +397,6 @@ def _search_and_refine(ctx, y_clean, sqrt_w, use, n_used):
             P0[:, i] = f.start
 
     # --- local refinement of every kept candidate, all in one batch ---------
-    xtol = np.array([f.xtol for f in free])
     Pc, chi2c, JTJc, rc, itc, convc = levenberg_marquardt(model, P0, y_clean[rows], sqrt_w[rows],
                                                           lo, hi, xtol, max_iter=max_iter)
 
@@ -479,5 +449,48 @@ def _search_and_refine(ctx, y_clean, sqrt_w, use, n_used):
         if reason[s_i]:
             sel = np.nonzero((rows == s_i) & comparable)[0]
             candidates[int(s_i)] = np.unique(np.round(Pc[sel, thick_idx], 3))
-    return dict(values=values_raw, chi2=chi2_sel, JTJ=JTJ_sel, r=r_sel, iterations=it_sel,
-                converged=conv_sel, reason=reason, candidates=candidates)
+
+    # --- robust re-weighting on the chosen candidate -------------------------
+    sw = sqrt_w
+    if ctx["robust"]:
+        for _ in range(3):
+            r, _j = weighted_residual(model, values_raw, y_clean, sw, False)
+            med = np.median(np.where(sw > 0, np.abs(r), np.nan), axis=1)
+            scale = np.nan_to_num(1.4826 * med, nan=1.0)[:, None]
+            u = np.abs(r) / np.maximum(scale, 1e-300)
+            huber = np.where(u <= 1.345, 1.0, 1.345 / np.maximum(u, 1e-300))
+            sw = sqrt_w * np.sqrt(huber)
+            values_raw, chi2_sel, JTJ_sel, r_sel, it2, conv_sel = levenberg_marquardt(
+                model, values_raw, y_clean, sw, lo, hi, xtol, max_iter=max_iter)
+            it_sel = it_sel + it2
+
+    # --- uncertainty: curvature scaled by the reduced chi-square ------------
+    dof = np.maximum(n_used - p, 1)
+    red = chi2_sel / dof
+    cov_diag = np.full((n, p), np.nan)
+    cond_ok = np.zeros(n, dtype=bool)
+    finite = np.all(np.isfinite(JTJ_sel), axis=(1, 2))
+    for k in (np.nonzero(finite)[0],) if finite.any() else ():
+        try:
+            inv = np.linalg.inv(JTJ_sel[k])
+            cond_ok[k] = True
+        except np.linalg.LinAlgError:
+            inv = np.full_like(JTJ_sel[k], np.nan)
+            for j, kk in enumerate(k):
+                try:
+                    inv[j] = np.linalg.inv(JTJ_sel[kk])
+                    cond_ok[kk] = True
+                except np.linalg.LinAlgError:
+                    pass
+        cov_diag[k] = np.einsum("nii->ni", inv) * red[k, None]
+    with np.errstate(invalid="ignore"):
+        sigma_out = np.sqrt(np.where(cov_diag >= 0, cov_diag, np.nan))
+
+    # unweighted rms residual in data units, at the last evaluated point (the
+    # final Gauss-Newton step below xtol changes it only in second order)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        r_plain = np.where(sw > 0, r_sel / sw, 0.0)
+    rms = np.sqrt(np.einsum("nm,nm->n", r_plain, r_plain) / np.maximum(n_used, 1))
+    return dict(values=values_raw, sigma=sigma_out, reduced_chi2=red, rms=rms,
+                iterations=it_sel, converged=conv_sel, n_used=n_used, reason=reason,
+                cond_ok=cond_ok, candidates=candidates)
