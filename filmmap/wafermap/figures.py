@@ -1,0 +1,472 @@
+"""Wafer-map figures: one map per wafer, a lot contact sheet, and parallel PNG rendering.
+
+Built on ``matplotlib.figure.Figure`` with the Agg canvas directly - pyplot is
+never imported, so no global figure state is created or leaked, and the
+functions are safe in worker processes. Colour maps are restricted to the
+perceptually uniform ``viridis`` and ``cividis`` (and their reversed forms);
+a rainbow map is refused because its hue bands read as steps that are not in
+the data.
+
+Drawing conventions: x to the right, y up, notch at -y (bottom); the notch is
+drawn as a 90 deg V, enlarged to 3 % of the radius (real notches are about
+1 mm deep) so that it stays visible at contact-sheet size.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import uuid
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import matplotlib
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.cm import ScalarMappable
+from matplotlib.colors import Normalize
+from matplotlib.figure import Figure
+from matplotlib.patches import Circle
+from matplotlib.ticker import MaxNLocator
+
+from filmmap.errors import FilmmapInputError
+from filmmap.wafermap.sites import check_wafer, inside_edge_exclusion, lot_arrays
+from filmmap.wafermap.stats import within_wafer_stats
+from filmmap.wafermap.surface import tps_polar_surface
+
+#: Colour maps accepted by the figure functions (perceptually uniform).
+ALLOWED_CMAPS = ("viridis", "cividis", "viridis_r", "cividis_r")
+
+#: Label of every thickness colour bar.
+COLORBAR_LABEL = "Thickness (nm)"
+
+
+def _colormap(name):
+    if name not in ALLOWED_CMAPS:
+        raise FilmmapInputError(
+            f"colour map {name!r} is not allowed; use one of {', '.join(ALLOWED_CMAPS)} "
+            "(perceptually uniform)", field="cmap")
+    return matplotlib.colormaps[name]
+
+
+def wafer_outline(diameter_mm, notch_depth_mm=None, n_points=361):
+    """Closed outline of a wafer with a V notch at -y.
+
+    Parameters
+    ----------
+    diameter_mm : float
+        Wafer diameter in mm.
+    notch_depth_mm : float, optional
+        Drawn notch depth in mm; default 3 % of the radius (see module notes).
+    n_points : int
+        Points on the circular part.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        x and y in mm of a closed polygon (first point repeated at the end).
+
+    References
+    ----------
+    .. [1] Common practice, no source: notch at 270 deg (-y) in wafer maps.
+    """
+    r = float(diameter_mm) / 2
+    depth = 0.03 * r if notch_depth_mm is None else float(notch_depth_mm)
+    half = np.arcsin(min(depth / r, 1.0))                     # 90 deg V: half-width = depth
+    ang = np.linspace(-np.pi / 2 + half, 1.5 * np.pi - half, int(n_points))
+    x = np.concatenate([r * np.cos(ang), [0.0, r * np.cos(ang[0])]])
+    y = np.concatenate([r * np.sin(ang), [-(r * np.cos(half) - depth), r * np.sin(ang[0])]])
+    return x, y
+
+
+def _value_range(*arrays):
+    vals = np.concatenate([np.asarray(a, dtype=float).ravel() for a in arrays])
+    vals = vals[np.isfinite(vals)]
+    if not vals.size:
+        return 0.0, 1.0
+    lo, hi = float(vals.min()), float(vals.max())
+    if hi - lo < 1e-9 * max(1.0, abs(hi)):
+        lo, hi = lo - 0.5, hi + 0.5
+    return lo, hi
+
+
+def _levels(vmin, vmax, levels):
+    """Rounded contour boundaries covering [vmin, vmax] (about ``levels`` bands) and their norm."""
+    bounds = MaxNLocator(max(2, int(levels)), steps=[1, 2, 2.5, 5, 10]).tick_values(vmin, vmax)
+    return bounds, Normalize(bounds[0], bounds[-1])
+
+
+def _mesh(surface, i, n_wafers):
+    """(X, Y, Z) of wafer i from a PolarSurface or a Cartesian Surface of a lot."""
+    if hasattr(surface, "mesh"):
+        if np.ndim(surface.measured_radius_mm) == 0:
+            if n_wafers != 1:
+                raise FilmmapInputError("surface holds one wafer, thickness several",
+                                        field="surface")
+            return surface.mesh()
+        return surface.mesh(i)
+    z = np.asarray(surface.thickness_nm)
+    z = z.reshape(n_wafers, len(surface.y_mm), len(surface.x_mm))[i]
+    return surface.x_mm, surface.y_mm, z
+
+
+def _draw_wafer(ax, diameter_mm, edge_exclusion_mm, gx, gy, z, x, y, t, use, norm, cmap,
+                levels, labels, value_fmt, fontsize):
+    """Contours, outline, edge-exclusion ring and sites on one axes; return the mappable."""
+    r = diameter_mm / 2
+    mappable = None
+    if z is not None and np.isfinite(z).sum() >= 4:
+        mappable = ax.contourf(gx, gy, np.ma.masked_invalid(z), levels=levels, cmap=cmap,
+                               norm=norm, extend="both")
+    ox, oy = wafer_outline(diameter_mm)
+    ax.plot(ox, oy, color="black", lw=1.0)
+    if edge_exclusion_mm > 0:
+        ax.add_patch(Circle((0.0, 0.0), r - edge_exclusion_mm, fill=False, ls="--", lw=0.7,
+                            ec="0.35"))
+    if mappable is None:   # no map (too few sites): colour the sites themselves
+        mappable = ax.scatter(x[use], y[use], c=t[use], cmap=cmap, norm=norm, s=30,
+                              edgecolors="black", linewidths=0.4)
+    ax.plot(x[use], y[use], ls="none", marker=".", ms=2.5, color="black")
+    ax.plot(x[~use], y[~use], ls="none", marker="x", ms=3.5, color="0.5")
+    if labels:
+        dy = 0.022 * r
+        for xi, yi, ti, ui in zip(x, y, t, use):
+            if np.isfinite(ti):
+                ax.text(xi, yi + dy, value_fmt.format(ti), ha="center", va="bottom",
+                        fontsize=fontsize, color="black" if ui else "0.45")
+    ax.set_xlim(-1.05 * r, 1.05 * r)
+    ax.set_ylim(-1.05 * r, 1.05 * r)
+    ax.set_aspect("equal")
+    return mappable
+
+
+def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
+                     wafer_id="", slot=None, surface=None, vmin=None, vmax=None,
+                     cmap="viridis", levels=12, figsize_in=(6.4, 5.6), dpi=100,
+                     value_fmt="{:.1f}"):
+    """Thickness map of one wafer as a matplotlib Figure (Agg canvas, no pyplot).
+
+    Parameters
+    ----------
+    thickness_nm : array_like, shape (n_sites,)
+        Thickness in nm, NaN for a missing site.
+    ok : array_like of bool or None, shape (n_sites,)
+        Fit-quality flag; None = all ok. Unusable sites are drawn as grey crosses.
+    x_mm, y_mm : array_like, shape (n_sites,)
+        Site coordinates in mm (wafer-centre origin, notch toward -y).
+    diameter_mm, edge_exclusion_mm : float
+        Wafer diameter and edge exclusion in mm.
+    wafer_id : str
+        Shown in the title.
+    slot : int, optional
+        Boat/cassette slot shown in the title.
+    surface : (X_mm, Y_mm, Z_nm), optional
+        A precomputed map in any form ``contourf`` takes: 1-D x (nx,), y (ny,)
+        with Z (ny, nx) as from `tps_surface`, or 2-D meshes as from
+        `PolarSurface.mesh`. Default: `tps_polar_surface` of this wafer.
+    vmin, vmax : float, optional
+        Colour scale limits in nm; default the range of the map and the sites.
+    cmap : str
+        One of `ALLOWED_CMAPS`.
+    levels : int
+        Approximate number of filled contour bands (rounded boundaries).
+    figsize_in : (float, float)
+        Figure size in inches; the PNG is ``figsize_in * dpi`` pixels.
+    dpi : float
+        Resolution in dots per inch.
+    value_fmt : str
+        Format of the site values (nm).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    References
+    ----------
+    .. [1] P. Kovesi, "Good colour maps: how to design them", arXiv:1509.03700
+       (2015) (perceptual uniformity; why rainbow maps mislead).
+    .. [2] J. R. Nuñez, C. R. Anderton and R. S. Renslow, "Optimizing colormaps
+       with consideration for color vision deficiency", PLoS ONE 13, e0199239
+       (2018) (cividis).
+    """
+    d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
+    cm = _colormap(cmap)
+    t, good, x, y, single = lot_arrays(thickness_nm, ok, x_mm, y_mm)
+    if not single and t.shape[0] != 1:
+        raise FilmmapInputError("wafer_map_figure draws one wafer: thickness must be 1-D",
+                                field="thickness_nm")
+    t, good = t[0], good[0]
+    use = good & inside_edge_exclusion(x, y, d, ee)
+    if surface is None:
+        gx, gy, z = tps_polar_surface(t, good, x, y, d, ee).mesh()
+    else:
+        gx, gy, z = (np.asarray(a, dtype=float) for a in surface)
+    lo, hi = _value_range(z, t[use])
+    bounds, norm = _levels(lo if vmin is None else float(vmin),
+                           hi if vmax is None else float(vmax), levels)
+
+    fig = Figure(figsize=figsize_in, dpi=dpi)
+    FigureCanvasAgg(fig)
+    ax = fig.add_axes((0.05, 0.05, 0.72, 0.81))
+    cax = fig.add_axes((0.80, 0.14, 0.03, 0.64))
+    mappable = _draw_wafer(ax, d, ee, gx, gy, z, x, y, t, use, norm, cm, bounds, True,
+                           value_fmt, 5.5)
+    fig.colorbar(mappable, cax=cax, ticks=bounds[::max(1, len(bounds) // 7)])
+    cax.set_ylabel(COLORBAR_LABEL, fontsize=9)
+    cax.tick_params(labelsize=7)
+    ax.set_axis_off()       # tick machinery is most of the render time; the notch orients
+    ax.text(-1.04 * d / 2, -1.04 * d / 2, f"Ø {d:g} mm, edge exclusion {ee:g} mm, notch at -y",
+            fontsize=7, color="0.3", ha="left", va="bottom")
+    st = within_wafer_stats(t, good, x, y, d, ee)
+    head = f"Wafer {wafer_id}" + ("" if slot is None else f"  slot {slot}")
+    fig.suptitle(f"{head}\nmean {st.mean_nm:.2f} ± {st.sigma_nm:.2f} nm (1σ), "
+                 f"NU {st.nu_pct:.2f} %, {int(st.sites_used)} sites", fontsize=10)
+    return fig
+
+
+def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
+                      wafer_ids=None, slots=None, surface=None, ncols=None, cmap="viridis",
+                      levels=12, panel_in=2.0, dpi=100, title=None):
+    """Every wafer of a lot in a grid, on one common colour scale with one colour bar.
+
+    Parameters
+    ----------
+    thickness_nm : array_like, shape (W, n_sites)
+        Thickness in nm, NaN for a missing site.
+    ok : array_like of bool or None
+        Fit-quality flag broadcastable to ``thickness_nm``; None = all ok.
+    x_mm, y_mm : array_like, shape (n_sites,)
+        Site coordinates in mm.
+    diameter_mm, edge_exclusion_mm : float
+        Wafer diameter and edge exclusion in mm.
+    wafer_ids : sequence of str, length W, optional
+        Panel labels; default "1".."W".
+    slots : sequence of int, length W, optional
+        Slots shown with the ids.
+    surface : PolarSurface or Surface, optional
+        Precomputed map of the lot; default `tps_polar_surface`.
+    ncols : int, optional
+        Panels per row; default ceil(sqrt(W)).
+    cmap : str
+        One of `ALLOWED_CMAPS`.
+    levels : int
+        Filled contour bands.
+    panel_in : float
+        Panel size in inches.
+    dpi : float
+        Resolution in dots per inch.
+    title : str, optional
+        Sheet title.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    References
+    ----------
+    .. [1] E. R. Tufte, Envisioning Information (Graphics Press, 1990),
+       "small multiples": a shared scale makes panels comparable.
+    """
+    d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
+    cm = _colormap(cmap)
+    t, good, x, y, _ = lot_arrays(thickness_nm, ok, x_mm, y_mm)
+    W = t.shape[0]
+    ids = [str(i + 1) for i in range(W)] if wafer_ids is None else [str(v) for v in wafer_ids]
+    if len(ids) != W or (slots is not None and len(slots) != W):
+        raise FilmmapInputError(f"wafer_ids and slots need one entry per wafer ({W})",
+                                field="wafer_ids")
+    use = good & inside_edge_exclusion(x, y, d, ee)
+    s = tps_polar_surface(t, good, x, y, d, ee) if surface is None else surface
+    meshes = [_mesh(s, i, W) for i in range(W)]
+    bounds, norm = _levels(*_value_range(*[m[2] for m in meshes], t[use]), levels)
+    st = within_wafer_stats(t, good, x, y, d, ee)
+    ncols = int(np.ceil(np.sqrt(W))) if ncols is None else max(1, int(ncols))
+    nrows = max(1, int(np.ceil(W / ncols)))
+    bar_in, head_in, cap_in = 1.1, 0.5 if title else 0.15, 0.45
+    width = ncols * panel_in + bar_in
+    height = nrows * (panel_in + cap_in) + head_in
+    fig = Figure(figsize=(width, height), dpi=dpi)
+    FigureCanvasAgg(fig)
+    for i in range(W):
+        row, col = divmod(i, ncols)
+        left = col * panel_in / width
+        bottom = 1 - (head_in + (row + 1) * (panel_in + cap_in) - 0.05) / height
+        ax = fig.add_axes((left + 0.04 * panel_in / width, bottom,
+                           0.92 * panel_in / width, 0.92 * panel_in / height))
+        _draw_wafer(ax, d, ee, *meshes[i], x, y, t[i], use[i], norm, cm, bounds, False, "", 0)
+        ax.set_axis_off()
+        label = ids[i] + ("" if slots is None else f" (slot {slots[i]})")
+        ax.set_title(f"{label}\nNU {st.nu_pct[i]:.2f} %", fontsize=7, pad=2)
+    cax = fig.add_axes((1 - 0.75 * bar_in / width, 0.15, 0.18 * bar_in / width, 0.7))
+    fig.colorbar(ScalarMappable(norm=norm, cmap=cm), cax=cax,
+                 ticks=bounds[::max(1, len(bounds) // 7)])
+    cax.set_ylabel(COLORBAR_LABEL, fontsize=9)
+    cax.tick_params(labelsize=7)
+    if title:
+        fig.suptitle(title, fontsize=11, y=1 - 0.1 / height, va="top")
+    return fig
+
+
+def save_figure(fig, path, dpi=None):
+    """Write a figure as PNG atomically: a temporary file in the same folder, then os.replace.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    path : str or path-like
+        Destination ``.png``; its folder must exist.
+    dpi : float, optional
+        Resolution; default the figure's own.
+
+    Returns
+    -------
+    pathlib.Path
+        ``path``. Readers never see a half-written file; on error the
+        temporary file is removed and the destination is left untouched.
+
+    References
+    ----------
+    .. [1] Python documentation, os.replace (atomic rename on POSIX and Windows
+       when source and destination are on the same file system).
+    """
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}.tmp")
+    try:
+        with open(tmp, "xb") as fh:
+            fig.savefig(fh, format="png", dpi=dpi if dpi is not None else fig.dpi,
+                        pil_kwargs={"compress_level": 3})
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return path
+
+
+def render_wafer_png(path, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm,
+                     **kwargs):
+    """`wafer_map_figure` written atomically to ``path`` (PNG); keyword arguments pass through.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Destination ``.png``.
+    thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm
+        As for `wafer_map_figure` (one wafer, nm and mm).
+    **kwargs
+        Passed to `wafer_map_figure`.
+
+    Returns
+    -------
+    pathlib.Path
+
+    References
+    ----------
+    .. [1] Common practice, no source.
+    """
+    fig = wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm,
+                           **kwargs)
+    return save_figure(fig, path)
+
+
+def _render_task(task):
+    path, args, kwargs = task
+    return str(render_wafer_png(path, *args, **kwargs))
+
+
+def safe_filename(text):
+    """A file-name-safe form of a wafer id: characters other than letters, digits, . _ - become _.
+
+    Parameters
+    ----------
+    text : str
+
+    Returns
+    -------
+    str
+
+    References
+    ----------
+    .. [1] Common practice, no source.
+    """
+    name = re.sub(r"[^A-Za-z0-9._-]", "_", str(text)).lstrip(".")
+    return name or "_"
+
+
+def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
+                      wafer_ids, slots=None, workers=2, surface=None, common_scale=False,
+                      mp_context=None, **kwargs):
+    """One map PNG per wafer, rendered in parallel worker processes, each written atomically.
+
+    Parameters
+    ----------
+    out_dir : str or path-like
+        Output folder (created if missing); files are ``<wafer_id>.png``
+        (see `safe_filename`).
+    thickness_nm : array_like, shape (W, n_sites)
+        Thickness in nm, NaN for a missing site.
+    ok : array_like of bool or None
+        Fit-quality flag broadcastable to ``thickness_nm``; None = all ok.
+    x_mm, y_mm : array_like, shape (n_sites,)
+        Site coordinates in mm.
+    diameter_mm, edge_exclusion_mm : float
+        Wafer diameter and edge exclusion in mm.
+    wafer_ids : sequence of str, length W
+        Wafer ids (titles and file names; must give distinct file names).
+    slots : sequence of int, length W, optional
+        Slots for the titles.
+    workers : int
+        Worker processes (``concurrent.futures.ProcessPoolExecutor``); 1 renders
+        in this process.
+    surface : PolarSurface or Surface, optional
+        Precomputed map of the lot (default: `tps_polar_surface`, computed
+        once here for all wafers, vectorised).
+    common_scale : bool
+        Use one colour scale for the whole lot instead of one per wafer.
+    mp_context : multiprocessing context, optional
+        Start method for the workers (default: the platform's).
+    **kwargs
+        Passed to `wafer_map_figure` (cmap, levels, figsize_in, dpi, ...).
+
+    Returns
+    -------
+    list of pathlib.Path
+        The written files, in wafer order.
+
+    References
+    ----------
+    .. [1] Python documentation, concurrent.futures.ProcessPoolExecutor.
+    """
+    d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
+    if "cmap" in kwargs:
+        _colormap(kwargs["cmap"])
+    t, good, x, y, _ = lot_arrays(thickness_nm, ok, x_mm, y_mm)
+    W = t.shape[0]
+    ids = [str(v) for v in wafer_ids]
+    if len(ids) != W or (slots is not None and len(slots) != W):
+        raise FilmmapInputError(f"wafer_ids and slots need one entry per wafer ({W})",
+                                field="wafer_ids")
+    names = [safe_filename(i) + ".png" for i in ids]
+    if len(set(names)) != W:
+        raise FilmmapInputError("wafer ids must give distinct file names", field="wafer_ids")
+    workers = int(workers)
+    if workers < 1:
+        raise FilmmapInputError("workers must be >= 1", field="workers")
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    s = tps_polar_surface(t, good, x, y, d, ee) if surface is None else surface
+    meshes = [_mesh(s, i, W) for i in range(W)]
+    if common_scale:
+        use = good & inside_edge_exclusion(x, y, d, ee)
+        lo, hi = _value_range(*[m[2] for m in meshes], t[use])
+        kwargs.setdefault("vmin", lo)
+        kwargs.setdefault("vmax", hi)
+    tasks = []
+    for i in range(W):
+        kw = dict(kwargs, wafer_id=ids[i], slot=None if slots is None else slots[i],
+                  surface=meshes[i])
+        tasks.append((out / names[i], (t[i], good[i], x, y, d, ee), kw))
+    if workers == 1 or W == 1:
+        return [Path(_render_task(task)) for task in tasks]
+    chunk = max(1, W // (4 * workers))
+    with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context) as pool:
+        return [Path(p) for p in pool.map(_render_task, tasks, chunksize=chunk)]

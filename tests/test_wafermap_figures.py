@@ -1,0 +1,125 @@
+"""Wafer-map figures: PNG files, sizes, colour maps, common lot scale, atomic writes."""
+
+import os
+
+import matplotlib.image as mpimg
+import numpy as np
+import pytest
+
+from filmmap.errors import FilmmapInputError
+from filmmap.wafermap.figures import (ALLOWED_CMAPS, COLORBAR_LABEL, lot_contact_sheet,
+                                      render_wafer_png, render_wafer_pngs, save_figure,
+                                      wafer_map_figure, wafer_outline)
+from filmmap.wafermap.sites import polar_sites
+
+D, EE = 300.0, 3.0
+SITES = polar_sites(49, D, EE)
+RAINBOWS = {"jet", "rainbow", "hsv", "gist_rainbow", "nipy_spectral", "turbo"}
+
+
+def _lot(n=3):
+    rng = np.random.default_rng(0)
+    x, y = SITES.x_mm, SITES.y_mm
+    return 100 + 0.01 * x + 1e-4 * (x**2 + y**2) + rng.normal(0, 0.2, (n, 49))
+
+
+def _cmaps(fig):
+    names = []
+    for ax in fig.axes:
+        for artist in list(ax.collections) + list(ax.images):
+            if hasattr(artist, "get_cmap") and artist.get_array() is not None:
+                names.append(artist.get_cmap().name)
+    return names
+
+
+def test_single_wafer_png(tmp_path):
+    # common practice, no source: a readable PNG of figsize * dpi pixels
+    t = _lot(1)[0]
+    t[5] = np.nan
+    path = render_wafer_png(tmp_path / "w.png", t, None, SITES.x_mm, SITES.y_mm, D, EE,
+                            wafer_id="W07", slot=7, figsize_in=(6.4, 5.6), dpi=50)
+    assert path.stat().st_size > 1000
+    img = mpimg.imread(path)
+    assert img.shape[:2] == (280, 320)
+    assert img[..., :3].std() > 0.05                 # not a blank canvas
+    assert sorted(os.listdir(tmp_path)) == ["w.png"]  # no temporary file left behind
+
+
+def test_figure_content_and_colormap():
+    # Kovesi (2015) / Nunez et al. (2018): only perceptually uniform maps, never a rainbow
+    t = _lot(1)[0]
+    fig = wafer_map_figure(t, None, SITES.x_mm, SITES.y_mm, D, EE, wafer_id="W07", slot=7,
+                           cmap="cividis")
+    names = _cmaps(fig)
+    assert names and set(names) <= set(ALLOWED_CMAPS) and not set(names) & RAINBOWS
+    title = fig._suptitle.get_text()
+    assert "W07" in title and "slot 7" in title and "±" in title
+    texts = [tx.get_text() for tx in fig.axes[0].texts]
+    labels = [tx for tx in texts if tx.replace(".", "", 1).isdigit()]
+    assert labels == [f"{v:.1f}" for v in t]           # every site labelled with its value
+    assert fig.axes[1].get_ylabel() == COLORBAR_LABEL
+    with pytest.raises(FilmmapInputError):
+        wafer_map_figure(t, None, SITES.x_mm, SITES.y_mm, D, EE, cmap="jet")
+
+
+def test_outline_notch_at_minus_y():
+    # common practice, no source: the notch points toward -y
+    x, y = wafer_outline(D)
+    r = np.hypot(x, y)
+    k = np.argmin(r)
+    assert r[k] < D / 2 * 0.99 and x[k] == pytest.approx(0.0) and y[k] < 0
+
+
+def test_contact_sheet_common_scale(tmp_path):
+    # Tufte (1990), small multiples: one colour scale, one colour bar for the lot
+    t = _lot(5)
+    t[2] += 3.0                                      # one wafer much thicker
+    fig = lot_contact_sheet(t, None, SITES.x_mm, SITES.y_mm, D, EE,
+                            wafer_ids=[f"W{i}" for i in range(5)], slots=[1, 2, 3, 4, 5],
+                            title="lot A", dpi=40)
+    bars = [ax for ax in fig.axes if ax.get_ylabel() == COLORBAR_LABEL]
+    assert len(bars) == 1
+    panels = [ax for ax in fig.axes if ax not in bars]
+    assert len(panels) == 5
+    limits = {(round(c.norm.vmin, 9), round(c.norm.vmax, 9))
+              for ax in panels for c in ax.collections
+              if hasattr(c, "norm") and c.get_array() is not None}
+    assert len(limits) == 1
+    vmin, vmax = limits.pop()
+    assert vmin <= np.nanmin(t) and vmax >= np.nanmax(t)
+    assert set(_cmaps(fig)) <= set(ALLOWED_CMAPS)
+    img = mpimg.imread(save_figure(fig, tmp_path / "sheet.png"))
+    w_in, h_in = fig.get_size_inches()
+    assert img.shape[:2] == (round(h_in * 40), round(w_in * 40))
+
+
+def test_parallel_render(tmp_path):
+    # Python docs, concurrent.futures: two worker processes, one PNG per wafer
+    t = _lot(3)
+    paths = render_wafer_pngs(tmp_path / "maps", t, None, SITES.x_mm, SITES.y_mm, D, EE,
+                              wafer_ids=["A/1", "A2", "A3"], slots=[1, 2, 3], workers=2, dpi=30)
+    assert [p.name for p in paths] == ["A_1.png", "A2.png", "A3.png"]
+    assert sorted(os.listdir(tmp_path / "maps")) == ["A2.png", "A3.png", "A_1.png"]
+    for p in paths:
+        assert mpimg.imread(p).shape[:2] == (168, 192)
+    with pytest.raises(FilmmapInputError):
+        render_wafer_pngs(tmp_path, t, None, SITES.x_mm, SITES.y_mm, D, EE,
+                          wafer_ids=["a", "a", "b"])
+
+
+def test_atomic_write_keeps_old_file_on_failure(tmp_path):
+    # Python docs, os.replace: the destination changes only when the new file is complete
+    dest = tmp_path / "w.png"
+    dest.write_bytes(b"old")
+
+    class Broken:
+        dpi = 72
+
+        def savefig(self, fh, **kwargs):
+            fh.write(b"partial")
+            raise RuntimeError("disk full")
+
+    with pytest.raises(RuntimeError):
+        save_figure(Broken(), dest)
+    assert dest.read_bytes() == b"old"
+    assert os.listdir(tmp_path) == ["w.png"]
