@@ -1,0 +1,52 @@
+"""Figures of a reduced lot: one map per wafer and a lot contact sheet (PNG)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from filmmap.outputs import coordinate_groups
+from filmmap.wafermap.figures import lot_contact_sheet, render_wafer_pngs, save_figure
+
+
+def write_figures(ds, config, outdir, workers=1):
+    """Render wafer maps (figures/<wafer>.png) and the contact sheet (contact_sheet.png).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The lot dataset (see `filmmap.io.results.lot_dataset`).
+    config : LotConfig
+        For the wafer diameter and edge exclusion.
+    outdir : path-like
+        Output folder.
+    workers : int
+        Processes rendering wafer maps.
+
+    Returns
+    -------
+    dict {name: path}
+    """
+    outdir = Path(outdir)
+    m = config.measurement
+    t, ok = ds["thickness"].values, ds["fit_ok"].values
+    wafers, slots = ds.wafer.values, ds.slot.values
+    written = {}
+    fig_dir = outdir / "figures"
+    for rows, x, y, present in coordinate_groups(ds["x_mm"].values, ds["y_mm"].values):
+        paths = render_wafer_pngs(fig_dir, np.where(present, t[rows], np.nan), ok[rows] & present,
+                                  x, y, m.wafer_diameter_mm, m.edge_exclusion_mm,
+                                  wafer_ids=[str(w) for w in wafers[rows]],
+                                  slots=[int(s) for s in slots[rows]], workers=workers)
+        for w, path in zip(wafers[rows], paths):
+            written[f"figures/{Path(path).name}"] = path
+    groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
+    if len(groups) == 1:
+        rows, x, y, present = groups[0]
+        fig = lot_contact_sheet(np.where(present, t, np.nan), ok & present, x, y,
+                                m.wafer_diameter_mm, m.edge_exclusion_mm,
+                                wafer_ids=[str(w) for w in wafers], slots=[int(s) for s in slots],
+                                title=f"lot {config.lot.id}: thickness (nm), common scale")
+        written["contact_sheet.png"] = save_figure(fig, outdir / "contact_sheet.png")
+    return written

@@ -1,0 +1,165 @@
+"""Results on disk: the labelled lot dataset (lot.nc) and the per-wafer summary.csv."""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import io
+import json
+
+import numpy as np
+import xarray as xr
+
+from filmmap import __version__
+from filmmap.io.atomic import atomic_path, write_text_atomic
+
+FIT_QUALITY_DEFINITION = ("reduced chi-square: sum(w r^2) / (points - parameters), w = 1/sigma^2 "
+                          "from the noise model; about 1 when the model explains the data to the noise")
+
+
+def _layer_var(name, names, top):
+    """Variable name of a fitted parameter: 'thickness' for the top fitted layer."""
+    if name == top:
+        return "thickness"
+    if name.startswith("thickness[") and name.endswith("]"):
+        return "thickness_" + name[len("thickness["):-1]
+    return name.replace("[", "_").replace("]", "")
+
+
+def lot_dataset(reduction, roles=None):
+    """Labelled dataset of a reduced lot, dims (wafer, site).
+
+    Parameters
+    ----------
+    reduction : filmmap.reduce.LotReduction
+    roles : dict {wafer: role}, optional
+        'product', 'monitor' or 'dummy' per wafer.
+
+    Returns
+    -------
+    xarray.Dataset
+        ``thickness`` / ``thickness_sigma`` (nm, the top fitted layer), one
+        ``thickness_<layer>`` pair per further fitted layer, ``fit_quality``,
+        ``fit_ok``, ``fit_note``, ``rms_residual``, ``iterations``; coordinates
+        ``wafer``, ``slot`` (on wafer), ``site``, ``x_mm``, ``y_mm`` (on wafer, site).
+        Sites a wafer lacks are NaN with ``fit_ok`` false and note "not measured".
+    """
+    s = reduction.sites
+    config = reduction.config
+    # wafers in boat order, then by id
+    wafer_ids, first_idx = np.unique(s.wafer, return_index=True)
+    wafer_slot = s.slot[first_idx]
+    order = np.lexsort((wafer_ids, wafer_slot))
+    wafer_ids, wafer_slot = wafer_ids[order], wafer_slot[order]
+    site_ids = np.unique(s.site)
+    wi = {w: i for i, w in enumerate(wafer_ids)}
+    si = {v: j for j, v in enumerate(site_ids)}
+    rows = np.array([wi[w] for w in s.wafer])
+    cols = np.array([si[v] for v in s.site])
+    shape = (wafer_ids.size, site_ids.size)
+
+    def grid(values, fill, dtype=float):
+        out = np.full(shape, fill, dtype=dtype)
+        out[rows, cols] = values
+        return out
+
+    top = next((n for n in s.names if n.startswith("thickness[")), s.names[0])
+    data_vars = {}
+    for k, name in enumerate(s.names):
+        var = _layer_var(name, s.names, top)
+        unit = "nm" if name.startswith("thickness") else ("1" if "offset" not in name else "fraction")
+        data_vars[var] = (("wafer", "site"), grid(s.values[:, k], np.nan),
+                          {"units": unit, "long_name": f"fitted {name}",
+                           "note": "NaN where the fit is not ok (see fit_note)"})
+        data_vars[var + "_sigma"] = (("wafer", "site"), grid(s.sigma[:, k], np.nan),
+                                     {"units": unit, "long_name": f"standard uncertainty of {name}",
+                                      "definition": "sqrt(diag((J^T W J)^-1) * reduced chi-square)"})
+    data_vars["fit_quality"] = (("wafer", "site"), grid(s.reduced_chi2, np.nan),
+                                {"units": "1", "long_name": "reduced chi-square",
+                                 "definition": FIT_QUALITY_DEFINITION})
+    data_vars["rms_residual"] = (("wafer", "site"), grid(s.rms_residual, np.nan),
+                                 {"units": "fraction" if config.measurement.technique == "reflectance"
+                                  else "degree", "long_name": "root-mean-square residual"})
+    data_vars["iterations"] = (("wafer", "site"), grid(s.iterations, -1, int),
+                               {"units": "1", "long_name": "Levenberg-Marquardt iterations"})
+    data_vars["fit_ok"] = (("wafer", "site"), grid(s.ok, False, bool),
+                           {"units": "1", "long_name": "fit accepted"})
+    note = np.full(shape, "not measured", dtype=object)
+    note[rows, cols] = s.note
+    data_vars["fit_note"] = (("wafer", "site"), note.astype(str),
+                             {"units": "1", "long_name": "why the fit is not ok ('' when ok)"})
+    coords = {
+        "wafer": ("wafer", wafer_ids.astype(str), {"long_name": "wafer id"}),
+        "site": ("site", site_ids.astype(int), {"long_name": "site number"}),
+        "slot": ("wafer", wafer_slot.astype(int), {"long_name": "boat slot, 1 = load/door end",
+                                                    "units": "1"}),
+        "x_mm": (("wafer", "site"), grid(s.x_mm, np.nan), {"units": "mm",
+                                                           "long_name": "site x from wafer centre"}),
+        "y_mm": (("wafer", "site"), grid(s.y_mm, np.nan),
+                 {"units": "mm", "long_name": "site y from wafer centre, notch toward -y"}),
+    }
+    if roles is not None:
+        coords["role"] = ("wafer", np.array([roles.get(w, "product") for w in wafer_ids]).astype(str),
+                          {"long_name": "product, monitor or dummy"})
+    m = config.measurement
+    attrs = {
+        "title": f"filmmap thickness results for lot {config.lot.id}",
+        "lot_id": config.lot.id,
+        "furnace": config.lot.furnace or "",
+        "run_date": str(config.lot.run_date or ""),
+        "technique": m.technique,
+        "angle_deg": float(m.angle_deg),
+        "wafer_diameter_mm": float(m.wafer_diameter_mm),
+        "edge_exclusion_mm": float(m.edge_exclusion_mm),
+        "stack": "\n".join(reduction.stack.describe()),
+        "fitted_parameters": json.dumps(s.names),
+        "software": f"filmmap {__version__}",
+        "input_files_sha256": json.dumps([{"file": f, "sha256": h} for f, h in reduction.inputs]),
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "wavelength_range_nm": json.dumps([float(reduction.wavelength_nm[0]),
+                                           float(reduction.wavelength_nm[-1])]),
+    }
+    return xr.Dataset(data_vars, coords=coords, attrs=attrs)
+
+
+def spectra_dataset(reduction, lot_ds):
+    """Measured and model spectra with residuals, dims (wafer, site, point), for inspection."""
+    s = reduction.sites
+    wi = {w: i for i, w in enumerate(lot_ds.wafer.values)}
+    sj = {v: j for j, v in enumerate(lot_ds.site.values)}
+    rows = np.array([wi[w] for w in s.wafer])
+    cols = np.array([sj[v] for v in s.site])
+    M = s.measured_spectra.shape[1]
+    meas = np.full((lot_ds.sizes["wafer"], lot_ds.sizes["site"], M), np.nan)
+    model = meas.copy()
+    meas[rows, cols] = s.measured_spectra
+    model[rows, cols] = s.model_spectra
+    wl = reduction.wavelength_nm
+    quantity = (["R"] * wl.size if M == wl.size else ["psi"] * wl.size + ["delta"] * wl.size)
+    point_wl = np.tile(wl, M // wl.size)
+    resid = meas - model
+    if M != wl.size:
+        resid[..., wl.size:] = np.mod(resid[..., wl.size:] + 180.0, 360.0) - 180.0
+    return xr.Dataset(
+        {"measured": (("wafer", "site", "point"), meas), "model": (("wafer", "site", "point"), model),
+         "residual": (("wafer", "site", "point"), resid)},
+        coords={"wafer": lot_ds.wafer.values, "site": lot_ds.site.values,
+                "wavelength_nm": ("point", point_wl, {"units": "nm"}),
+                "quantity": ("point", np.array(quantity))},
+        attrs={"note": "R as a fraction; psi and delta in degrees; model at the unchecked best fit"})
+
+
+def write_netcdf_atomic(ds, path):
+    """Write a dataset as NetCDF4 (through h5netcdf) to a temporary file, then rename it."""
+    with atomic_path(path) as tmp:
+        ds.to_netcdf(tmp, engine="h5netcdf")
+    return path
+
+
+def write_csv_atomic(path, header, rows):
+    """Write rows (sequences) under a header as UTF-8 CSV, atomically."""
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(header)
+    writer.writerows(rows)
+    return write_text_atomic(path, buf.getvalue())

@@ -1,0 +1,275 @@
+"""Reduce a lot: lot file + spectra files -> every site's thickness, on disk.
+
+The Python API behind ``filmmap reduce``. Spectra files stream through in
+batches of whole files (wafers): each batch is read, converted to
+reflectance if it holds raw intensities, and fitted; only the small per-site
+results are kept, so memory stays bounded by the batch, not the lot. With
+``workers > 1`` batches are read and fitted in separate processes.
+"""
+
+from __future__ import annotations
+
+import os
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+
+import numpy as np
+
+from filmmap.errors import FilmmapInputError
+from filmmap.fitting import fit_spectra, free_parameters
+from filmmap.io.lotfile import read_lot_file
+from filmmap.io.spectra_csv import check_tables, read_spectra_csv, read_spectrum_file
+from filmmap.optics import Layer, Stack
+
+BATCH_SPECTRA = 1200
+"""Spectra per fitting batch: large enough for the batched fitter's speed, small
+enough that memory does not grow with the lot."""
+
+
+@dataclass
+class SiteResults:
+    """Per-site fit results of a lot, one row per measured site (all files)."""
+
+    wafer: np.ndarray
+    slot: np.ndarray
+    site: np.ndarray
+    x_mm: np.ndarray
+    y_mm: np.ndarray
+    values: np.ndarray
+    sigma: np.ndarray
+    reduced_chi2: np.ndarray
+    rms_residual: np.ndarray
+    iterations: np.ndarray
+    ok: np.ndarray
+    note: np.ndarray
+    file: np.ndarray
+    line: np.ndarray
+    names: list
+    model_spectra: np.ndarray | None = None
+    measured_spectra: np.ndarray | None = None
+
+
+@dataclass
+class LotReduction:
+    """What `reduce_lot` produced."""
+
+    config: object
+    stack: Stack
+    sites: SiteResults
+    inputs: list = field(default_factory=list)
+    outputs: dict = field(default_factory=dict)
+    wavelength_nm: np.ndarray | None = None
+
+
+def build_stack(config):
+    """Optical stack and free parameters from a lot file's [stack] (and [measurement]).
+
+    Returns
+    -------
+    stack : Stack
+    free : list of FreeParameter
+    layer_names : list of str
+        Unique names of the layers, top first.
+    """
+    names, layers = [], []
+    for i, lc in enumerate(config.stack.layers):
+        base = lc.model.name
+        name = base if base not in names else f"{base}_{i + 1}"
+        names.append(name)
+        layers.append(Layer(lc.model, lc.thickness_nm or 0.0, name))
+    stack = Stack(config.stack.substrate, layers)
+    fit_layers = [i for i, lc in enumerate(config.stack.layers) if lc.fit]
+    nominal = {i: lc.thickness_nm for i, lc in enumerate(config.stack.layers)
+               if lc.fit and lc.thickness_nm is not None and lc.search_nm is None}
+    search = {i: lc.search_nm for i, lc in enumerate(config.stack.layers)
+              if lc.fit and lc.search_nm is not None}
+    # a layer with both a nominal and search_nm: search_nm bounds, the nominal breaks ties
+    free = free_parameters(stack, layers=fit_layers, nominal=nominal or None,
+                           search_nm=search or None,
+                           offset=bool(getattr(config.measurement, "fit_offset", False)))
+    free = [replace(f, start=config.stack.layers[f.layer].thickness_nm)
+            if f.kind == "thickness" and f.start is None else f for f in free]
+    return stack, free, names
+
+
+def intensity_to_reflectance(counts, dark, reference, R_si_model):
+    """Absolute reflectance from raw detector counts.
+
+    R = (I - I_dark) / (I_ref - I_dark) * R_Si,model, with I_ref the counts on a
+    bare-silicon reference wafer and R_Si,model that wafer's modelled
+    reflectance (common practice of spectral reflectometry, no source).
+
+    Parameters
+    ----------
+    counts : numpy.ndarray (n, m)
+        Sample counts.
+    dark, reference : numpy.ndarray (m,)
+        Dark and bare-Si reference counts.
+    R_si_model : numpy.ndarray (m,)
+        Modelled reflectance of bare Si at the measurement angle (fraction).
+    """
+    span = reference - dark
+    with np.errstate(divide="ignore", invalid="ignore"):
+        R = (counts - dark) / span * R_si_model
+    return np.where(span > 0, R, np.nan)
+
+
+def _fit_batch(task):
+    """Read, convert and fit a batch of files (runs in a worker process or inline)."""
+    (paths, technique, unit, angle, stack, free, dark, ref, keep_spectra, threads) = task
+    tables = [read_spectra_csv(p, "intensity" if dark is not None else technique, unit)
+              for p in paths]
+    wl = tables[0].wavelength_nm
+    for t in tables[1:]:
+        if t.wavelength_nm.size != wl.size or not np.allclose(t.wavelength_nm, wl, rtol=1e-9, atol=0):
+            raise FilmmapInputError(f"wavelength set differs from {tables[0].path}", file=t.path)
+    if technique == "reflectance":
+        if dark is not None:
+            counts = np.concatenate([t.data["I"] for t in tables])
+            bare = Stack(stack.substrate, [], stack.ambient)
+            R_si = bare.reflectance(wl, angle)
+            data = intensity_to_reflectance(counts, dark, ref, R_si)
+        else:
+            data = np.concatenate([t.data["R"] for t in tables])
+    else:
+        data = (np.concatenate([t.data["psi"] for t in tables]),
+                np.concatenate([t.data["delta"] for t in tables]))
+    res = fit_spectra(stack, wl, data, technique, angle, free=free, workers=threads)
+    out = dict(values=res.values, sigma=res.sigma, reduced_chi2=res.reduced_chi2,
+               rms_residual=res.rms_residual, iterations=res.iterations, ok=res.ok,
+               note=res.reason, names=res.names, wavelength_nm=wl)
+    if keep_spectra:
+        from filmmap.fitting import SpectralModel
+        model = SpectralModel(stack, wl, angle, technique, free)
+        P = np.where(np.isfinite(res.unchecked_values), res.unchecked_values, 0.0)
+        out["model"] = model.evaluate(P)
+        out["measured"] = data if technique == "reflectance" else np.concatenate(data, axis=1)
+    # the tables travel back without their spectra: only the row metadata is needed
+    meta = [dict(path=t.path, sha256=t.sha256, technique=t.technique, wafer=t.wafer, slot=t.slot,
+                 site=t.site, x_mm=t.x_mm, y_mm=t.y_mm, wavelength_nm=t.wavelength_nm,
+                 line=t.line) for t in tables]
+    return out, meta
+
+
+class _Meta:
+    """Row metadata of a spectra table (a SpectraTable without its spectra)."""
+
+    def __init__(self, d):
+        self.__dict__.update(d)
+        self.data = {}
+
+    @property
+    def n_rows(self):
+        return int(self.slot.size)
+
+    def where(self, row):
+        return f"{self.path}:{int(self.line[row])}"
+
+
+def _batches(files, rows_hint=49):
+    per = max(1, BATCH_SPECTRA // rows_hint)
+    return [files[i:i + per] for i in range(0, len(files), per)]
+
+
+def _dark_and_reference(config, stack_wl=None):
+    m = config.measurement
+    dark_file = getattr(m, "dark_file", None)
+    ref_file = getattr(m, "reference_file", None)
+    if (dark_file is None) != (ref_file is None):
+        raise FilmmapInputError("raw-intensity mode needs both dark_file and reference_file",
+                                file=config.path, field="measurement")
+    if dark_file is None:
+        return None, None, []
+    dark = read_spectrum_file(dark_file)
+    ref = read_spectrum_file(ref_file)
+    if dark.wavelength_nm.size != ref.wavelength_nm.size or not np.allclose(
+            dark.wavelength_nm, ref.wavelength_nm, rtol=1e-9, atol=0):
+        raise FilmmapInputError(f"wavelengths differ from the dark spectrum {dark.path}",
+                                file=ref.path)
+    return dark, ref, [dark, ref]
+
+
+def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None):
+    """Fit every spectrum of a lot.
+
+    Parameters
+    ----------
+    lot_file : str or path-like
+        The lot file (TOML).
+    workers : int
+        Processes fitting batches of wafers (1 = in this process, with threads).
+    keep_spectra : bool
+        Keep measured and model spectra for inspection (memory grows with the lot).
+    progress : callable, optional
+        Called with the number of wafers (files) finished after each batch.
+
+    Returns
+    -------
+    LotReduction
+    """
+    config = read_lot_file(lot_file)
+    stack, free, _names = build_stack(config)
+    m = config.measurement
+    dark, ref, extra_inputs = _dark_and_reference(config)
+    angle = float(m.angle_deg)
+    files = list(m.files)
+    batches = _batches(files)
+    threads = 1 if workers > 1 else None
+    tasks = [(b, m.technique, m.reflectance_unit, angle, stack, free,
+              None if dark is None else dark.counts, None if ref is None else ref.counts,
+              keep_spectra, threads) for b in batches]
+    # material validity is checked once, up front, with the first file's wavelengths
+    first = read_spectra_csv(files[0], "intensity" if dark is not None else m.technique,
+                             m.reflectance_unit)
+    for medium in [stack.ambient, *[layer.material for layer in stack.layers], stack.substrate]:
+        try:
+            medium.check_range(first.wavelength_nm)
+        except FilmmapInputError as exc:
+            raise FilmmapInputError(exc.reason, file=files[0], field="wavelength") from None
+    if dark is not None and (dark.wavelength_nm.size != first.wavelength_nm.size or not np.allclose(
+            dark.wavelength_nm, first.wavelength_nm, rtol=1e-9, atol=0)):
+        raise FilmmapInputError(f"wavelengths differ from the dark spectrum {dark.path}",
+                                file=files[0])
+    results, metas = [], []
+    if workers > 1 and len(tasks) > 1:
+        with ProcessPoolExecutor(max_workers=workers) as pool:
+            for out, meta in pool.map(_fit_batch, tasks):
+                results.append(out)
+                metas.extend(_Meta(d) for d in meta)
+                if progress:
+                    progress(len(meta))
+    else:
+        for task in tasks:
+            out, meta = _fit_batch(task)
+            results.append(out)
+            metas.extend(_Meta(d) for d in meta)
+            if progress:
+                progress(len(meta))
+    boat = config.boat.slots if config.boat is not None else None
+    check_tables(metas, m.wafer_diameter_mm, boat)
+
+    def cat(key):
+        return np.concatenate([r[key] for r in results])
+
+    def mcat(key):
+        return np.concatenate([getattr(t, key) for t in metas])
+
+    sites = SiteResults(
+        wafer=mcat("wafer").astype(str), slot=mcat("slot"), site=mcat("site"),
+        x_mm=mcat("x_mm"), y_mm=mcat("y_mm"), values=cat("values"), sigma=cat("sigma"),
+        reduced_chi2=cat("reduced_chi2"), rms_residual=cat("rms_residual"),
+        iterations=cat("iterations"), ok=cat("ok"), note=cat("note").astype(str),
+        file=np.concatenate([np.full(t.n_rows, str(t.path)) for t in metas]),
+        line=mcat("line"), names=results[0]["names"],
+        model_spectra=cat("model") if keep_spectra else None,
+        measured_spectra=cat("measured") if keep_spectra else None)
+    inputs = [(str(config.path), config.sha256)] + [(str(t.path), t.sha256) for t in metas] + [
+        (str(s.path), s.sha256) for s in extra_inputs]
+    return LotReduction(config=config, stack=stack, sites=sites, inputs=inputs,
+                        wavelength_nm=results[0]["wavelength_nm"])
+
+
+def default_workers():
+    """Worker processes by default: 1 (the fitter already uses both cores by threads)."""
+    return 1 if (os.cpu_count() or 1) <= 2 else 2
