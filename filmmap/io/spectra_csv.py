@@ -1,0 +1,844 @@
+"""Strict, fast readers for measured spectra: one CSV file per group of wafers.
+
+File format (filmmap's own)
+---------------------------
+UTF-8 text (a leading byte-order mark is ignored), comma separated, LF,
+CRLF (or bare CR) line ends.  Lines whose first non-blank character is ``#`` before the
+header are comments; blank lines are ignored everywhere.  One header row,
+then one row per measured site.  Columns, in any order:
+
+``wafer``
+    Wafer id (text; printable, not empty).
+``slot``
+    Boat position, a positive integer (1 = load/door end).
+``site``
+    Site number on the wafer, an integer.
+``x_mm``, ``y_mm``
+    Site position from the wafer centre in mm, notch toward -y.
+``R@<nm>``
+    Reflectance at wavelength ``<nm>`` (e.g. ``R@400``, ``R@400.5``), as a
+    fraction 0-1, or in percent when read with ``reflectance_unit="percent"``
+    (then converted to a fraction).  Technique ``"reflectance"``.
+``psi@<nm>``, ``delta@<nm>``
+    Ellipsometric angles in degrees, the same wavelength set for both.
+    Technique ``"ellipsometry"``.
+``I@<nm>``
+    Raw detector intensity in counts (converted to reflectance elsewhere).
+    Technique ``"intensity"``.
+
+Spectral columns may come in any order: the reader sorts them by wavelength
+(the sort is lossless, and interleaved ``psi``/``delta`` layouts are common),
+so `SpectraTable.wavelength_nm` is always strictly increasing.  Two columns of
+one quantity at the same wavelength (``R@400`` and ``R@400.0``) are rejected.
+Any other column name is rejected, with the closest known name suggested.
+
+A single dark or reference spectrum (`read_spectrum_file`) uses the same
+layout with only ``I@<nm>`` columns and exactly one data row::
+
+    # dark spectrum, shutter closed, 20 ms
+    I@400,I@401,I@402
+    101.5,99.8,100.2
+
+Every problem raises `filmmap.errors.FilmmapInputError` naming the file and
+the line (and column) concerned and saying what was expected.
+"""
+
+from __future__ import annotations
+
+import codecs
+import csv
+import difflib
+import hashlib
+import math
+import os
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from filmmap.errors import FilmmapInputError
+
+__all__ = ["SpectraTable", "Spectrum", "read_spectra_csv", "read_spectrum_file", "check_tables",
+           "TECHNIQUES", "REFLECTANCE_UNITS", "REQUIRED_COLUMNS", "DEFAULT_MAX_BYTES"]
+
+#: Largest input file read by default (bytes); larger files are refused.
+DEFAULT_MAX_BYTES = 512 * 2**20
+
+#: Techniques a spectra file can be read as.
+TECHNIQUES = ("reflectance", "ellipsometry", "intensity")
+
+#: Accepted values of ``reflectance_unit``.
+REFLECTANCE_UNITS = ("fraction", "percent")
+
+#: Columns every spectra file must have.
+REQUIRED_COLUMNS = ("wafer", "slot", "site", "x_mm", "y_mm")
+
+#: Spectral column prefixes of each technique.
+_PREFIXES = {"reflectance": ("R",), "ellipsometry": ("psi", "delta"), "intensity": ("I",)}
+_TECHNIQUE_OF_PREFIX = {p: t for t, ps in _PREFIXES.items() for p in ps}
+
+#: Largest plausible reflectance given as a fraction: above it the file is
+#: almost surely in percent.  Measured values slightly above 1 (noise,
+#: calibration) are accepted.
+_MAX_FRACTION = 1.5
+
+#: Ranges (degrees) accepted for the ellipsometric angles; delta is accepted
+#: in both the (-180, 180] and [0, 360) conventions.
+_PSI_RANGE = (0.0, 90.0)
+_DELTA_RANGE = (-180.0, 360.0)
+
+#: Largest accepted |slot| and |site| (keeps them exact in a 64-bit int).
+_MAX_INDEX = 10**9
+
+#: Slack (mm) when testing "inside the wafer": a site exactly on the edge
+#: counts as inside despite float rounding.
+_RADIUS_SLACK_MM = 1e-6
+
+_NUMBER = re.compile(
+    r"[+-]?(?:(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|nan|inf|infinity)", re.IGNORECASE | re.ASCII)
+_WAVELENGTH = re.compile(r"(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)
+_DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+", re.ASCII)
+
+
+@dataclass(frozen=True, eq=False)
+class SpectraTable:
+    """The contents of one spectra CSV file, one row per measured site.
+
+    Attributes
+    ----------
+    path : pathlib.Path
+        The file read.
+    sha256 : str
+        Hex SHA-256 of the file bytes (provenance).
+    technique : str
+        ``"reflectance"``, ``"ellipsometry"`` or ``"intensity"``.
+    wafer : numpy.ndarray of str, shape (n_rows,)
+        Wafer id of each row.
+    slot : numpy.ndarray of int, shape (n_rows,)
+        Boat slot (1 = load/door end).
+    site : numpy.ndarray of int, shape (n_rows,)
+        Site number.
+    x_mm, y_mm : numpy.ndarray of float, shape (n_rows,)
+        Site position from the wafer centre in mm (notch toward -y).
+    wavelength_nm : numpy.ndarray of float, shape (n_wl,)
+        Strictly increasing wavelengths in nm.
+    data : dict of str to numpy.ndarray, each shape (n_rows, n_wl)
+        ``{"R": reflectance as a fraction}``, ``{"psi": deg, "delta": deg}``
+        or ``{"I": counts}``.
+    line : numpy.ndarray of int, shape (n_rows,)
+        1-based line number of each row in the file.
+
+    Notes
+    -----
+    Treat the arrays as read-only: they are the measured data.
+    """
+
+    path: Path
+    sha256: str
+    technique: str
+    wafer: np.ndarray
+    slot: np.ndarray
+    site: np.ndarray
+    x_mm: np.ndarray
+    y_mm: np.ndarray
+    wavelength_nm: np.ndarray
+    data: dict
+    line: np.ndarray
+
+    @property
+    def n_rows(self):
+        """Number of measured sites (rows)."""
+        return int(self.slot.size)
+
+    @property
+    def n_wavelengths(self):
+        """Number of wavelengths."""
+        return int(self.wavelength_nm.size)
+
+    def where(self, row):
+        """``"file:line"`` of a row index, for messages."""
+        return f"{self.path}:{int(self.line[row])}"
+
+
+@dataclass(frozen=True, eq=False)
+class Spectrum:
+    """A single dark or reference intensity spectrum.
+
+    Attributes
+    ----------
+    path : pathlib.Path
+        The file read.
+    sha256 : str
+        Hex SHA-256 of the file bytes.
+    wavelength_nm : numpy.ndarray of float, shape (n_wl,)
+        Strictly increasing wavelengths in nm.
+    counts : numpy.ndarray of float, shape (n_wl,)
+        Detector intensity in counts.
+    line : int
+        1-based line number of the data row.
+    """
+
+    path: Path
+    sha256: str
+    wavelength_nm: np.ndarray
+    counts: np.ndarray
+    line: int
+
+
+# --------------------------------------------------------------------------- file level
+
+def _read_bytes(path, max_bytes):
+    """Read a whole file read-only, refusing directories and files over ``max_bytes``."""
+    if max_bytes is None or not int(max_bytes) > 0:
+        raise ValueError("max_bytes must be a positive number of bytes")
+    max_bytes = int(max_bytes)
+    try:
+        size = os.stat(path).st_size
+        if size > max_bytes:
+            raise FilmmapInputError(
+                f"file is {size} bytes, larger than the limit of {max_bytes} bytes; "
+                "pass a larger max_bytes if this file is genuine", file=path)
+        with open(path, "rb") as fh:
+            raw = fh.read(max_bytes + 1)
+    except FilmmapInputError:
+        raise
+    except IsADirectoryError:
+        raise FilmmapInputError("expected a file, found a directory", file=path) from None
+    except OSError as exc:
+        raise FilmmapInputError(f"cannot read file: {exc.strerror or exc}", file=path) from None
+    if len(raw) > max_bytes:
+        raise FilmmapInputError(f"file grew beyond the limit of {max_bytes} bytes while reading",
+                                file=path)
+    return raw
+
+
+def _decode(raw, path):
+    """Bytes -> text (UTF-8, optional BOM); say so when the file is not UTF-8 text."""
+    if raw.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
+        raise FilmmapInputError("file is UTF-16 encoded; expected UTF-8 text (save as UTF-8 CSV)",
+                                file=path, line=1)
+    nul = raw.find(b"\x00")
+    if nul >= 0:
+        raise FilmmapInputError(
+            "file contains NUL bytes: binary data (or UTF-16 text without a byte-order mark), "
+            "not a UTF-8 CSV text file",
+            file=path, line=raw.count(b"\n", 0, nul) + 1)
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise FilmmapInputError(
+            f"not UTF-8 text: invalid byte 0x{raw[exc.start]:02x} at byte offset {exc.start}; "
+            "expected a UTF-8 CSV text file (binary data or another encoding?)",
+            file=path, line=raw.count(b"\n", 0, exc.start) + 1) from None
+    if text.startswith("\ufeff"):
+        text = text[1:]
+    if "\r" in text:
+        text = text.replace("\r\n", "\n").replace("\r", "\n")
+    return text
+
+
+def _header_and_rows(text, path):
+    """Split text into the header line and the (line number, text) of each data row."""
+    if not text.strip():
+        raise FilmmapInputError("empty file; expected a header row and data rows", file=path)
+    lines = text.split("\n")
+    header_at = None
+    for i, line in enumerate(lines):
+        stripped = line.strip()
+        if not stripped or stripped.startswith("#"):
+            continue
+        header_at = i
+        break
+    if header_at is None:
+        raise FilmmapInputError("no header row: the file holds only comments and blank lines",
+                                file=path)
+    rows, numbers = [], []
+    for i in range(header_at + 1, len(lines)):
+        line = lines[i]
+        if line and not line.isspace():
+            rows.append(line)
+            numbers.append(i + 1)
+    return header_at + 1, lines[header_at], rows, numbers
+
+
+def _split_csv_line(line, path, lineno):
+    try:
+        return next(csv.reader([line], strict=True))
+    except (csv.Error, StopIteration) as exc:
+        raise FilmmapInputError(f"malformed CSV quoting ({exc}); expected comma-separated cells",
+                                file=path, line=lineno) from None
+
+
+def _separator_problem(header_line, first_row):
+    """A message when the file is semicolon- or tab-separated, else None."""
+    for sep, name in ((";", "semicolon"), ("\t", "tab")):
+        if header_line.count(sep) > header_line.count(","):
+            msg = f"the file looks {name}-separated; filmmap expects comma-separated CSV"
+            if first_row is not None and any(_DECIMAL_COMMA.fullmatch(c.strip())
+                                             for c in first_row.split(sep)):
+                msg += " with decimal points (this file also uses decimal commas, e.g. 0,45)"
+            return msg
+    return None
+
+
+# --------------------------------------------------------------------------- header
+
+def _suggest(name):
+    """Closest known column name, or None."""
+    known = list(REQUIRED_COLUMNS)
+    base, sep, rest = name.partition("@")
+    if sep:
+        known += [f"{p}@{rest.strip()}" for p in ("R", "psi", "delta", "I")]
+    else:
+        # 'R400' or 'psi 400' -> 'R@400'
+        m = re.fullmatch(r"([A-Za-z]+)[\s_:-]*([\d.]+)", name)
+        if m:
+            for p in ("R", "psi", "delta", "I"):
+                if m.group(1).lower() == p.lower():
+                    return f"{p}@{m.group(2)}"
+    match = difflib.get_close_matches(name, known, n=1, cutoff=0.6)
+    if not match and sep:
+        match = [p + "@" + rest.strip() for p in ("R", "psi", "delta", "I")
+                 if base.strip().lower() == p.lower()]
+    return match[0] if match else None
+
+
+#: Parsed headers by (header text, technique, required columns): the files of
+#: a lot share one header, and splitting and classifying 600 column names costs
+#: as much as parsing several data rows.
+_HEADER_CACHE: dict = {}
+_HEADER_CACHE_SIZE = 64
+
+
+def _parse_header(header_text, first_row, path, lineno, technique, required):
+    """Split, check and classify the header line, with a small cache of successful results.
+
+    Returns
+    -------
+    names : list of str
+        Stripped column names.
+    fixed, spectral : dict
+        See `_classify_header` (fresh copies on every call).
+    """
+    key = (header_text, technique, required)
+    hit = _HEADER_CACHE.get(key)
+    if hit is None:
+        cells = _split_csv_line(header_text, path, lineno)
+        problem = _separator_problem(header_text, first_row)
+        if problem:
+            raise FilmmapInputError(problem, file=path, line=lineno)
+        if cells and _NUMBER.fullmatch(cells[0].strip()):
+            expected = (", ".join(required) + " and " if required else "") + ", ".join(
+                f"{p}@<nm>" for p in _PREFIXES[technique])
+            raise FilmmapInputError(
+                f"no header row: line {lineno} looks like data; expected a header naming the "
+                f"columns {expected}", file=path, line=lineno)
+        fixed, spectral = _classify_header(cells, path, lineno, technique, required)
+        hit = (tuple(c.strip() for c in cells), fixed, spectral)
+        if len(_HEADER_CACHE) >= _HEADER_CACHE_SIZE:
+            _HEADER_CACHE.clear()
+        _HEADER_CACHE[key] = hit
+    names, fixed, spectral = hit
+    return (list(names), dict(fixed),
+            {p: (wl.copy(), list(cols)) for p, (wl, cols) in spectral.items()})
+
+
+def _classify_header(cells, path, lineno, technique, required):
+    """Classify header cells.
+
+    Returns
+    -------
+    fixed : dict
+        Required column name -> column index.
+    spectral : dict
+        Prefix -> (wavelengths sorted increasing, column indices in that order).
+    """
+    allowed = _PREFIXES[technique]
+    expected = ", ".join(f"{p}@<nm>" for p in allowed)
+    fixed, by_prefix = {}, {p: [] for p in allowed}
+    for j, raw_name in enumerate(cells):
+        name = raw_name.strip()
+        col = j + 1
+        if not name:
+            raise FilmmapInputError(
+                f"empty column name in header column {col}"
+                + (" (trailing comma?)" if col == len(cells) else "")
+                + f"; expected {', '.join(required)} and {expected} columns",
+                file=path, line=lineno, field=f"column {col}")
+        if name in required:
+            if name in fixed:
+                raise FilmmapInputError(
+                    f"duplicate column {name!r} (header columns {fixed[name] + 1} and {col})",
+                    file=path, line=lineno, field=name)
+            fixed[name] = j
+            continue
+        prefix, sep, rest = name.partition("@")
+        if sep and prefix in _TECHNIQUE_OF_PREFIX:
+            if prefix not in allowed:
+                raise FilmmapInputError(
+                    f"column {name!r} belongs to technique {_TECHNIQUE_OF_PREFIX[prefix]!r}, but "
+                    f"this file is read as technique {technique!r}, which expects {expected} "
+                    "columns",
+                    file=path, line=lineno, field=name)
+            rest = rest.strip()
+            wl = float(rest) if _WAVELENGTH.fullmatch(rest) else math.nan
+            if not (math.isfinite(wl) and wl > 0):
+                raise FilmmapInputError(
+                    f"column {name!r}: expected {prefix}@<wavelength in nm>, a positive number "
+                    f"such as {prefix}@400.5", file=path, line=lineno, field=name)
+            by_prefix[prefix].append((wl, j, name))
+            continue
+        hint = _suggest(name)
+        raise FilmmapInputError(
+            f"unknown column {name!r}" + (f"; did you mean {hint!r}?" if hint else "")
+            + f" (expected {', '.join(required)} and {expected} columns)",
+            file=path, line=lineno, field=name)
+    missing = [c for c in required if c not in fixed]
+    if missing:
+        raise FilmmapInputError(
+            f"missing required column {missing[0]!r}"
+            + (f" (also missing: {', '.join(missing[1:])})" if len(missing) > 1 else "")
+            + f"; the header needs {', '.join(required)} and {expected} columns",
+            file=path, line=lineno, field=missing[0])
+    spectral = {}
+    for prefix, cols in by_prefix.items():
+        if not cols:
+            raise FilmmapInputError(
+                f"no {prefix}@<nm> columns; technique {technique!r} expects {expected} columns",
+                file=path, line=lineno, field=f"{prefix}@<nm>")
+        cols.sort(key=lambda c: c[0])
+        for a, b in zip(cols, cols[1:]):
+            if a[0] == b[0]:
+                raise FilmmapInputError(
+                    f"duplicate wavelength {a[0]:g} nm: columns {a[2]!r} (column {a[1] + 1}) and "
+                    f"{b[2]!r} (column {b[1] + 1}); expected each wavelength once",
+                    file=path, line=lineno, field=b[2])
+        spectral[prefix] = (np.array([c[0] for c in cols]), [c[1] for c in cols])
+    if technique == "ellipsometry":
+        psi, delta = (set(spectral[p][0].tolist()) for p in ("psi", "delta"))
+        for have, lack, other in ((psi, delta, "delta"), (delta, psi, "psi")):
+            alone = sorted(have - lack)
+            if alone:
+                this = "psi" if other == "delta" else "delta"
+                raise FilmmapInputError(
+                    f"column {this}@{alone[0]:g} has no matching {other}@{alone[0]:g} column"
+                    + (f" ({len(alone)} wavelengths lack one)" if len(alone) > 1 else "")
+                    + "; expected psi and delta at the same wavelengths",
+                    file=path, line=lineno, field=f"{this}@{alone[0]:g}")
+    return fixed, spectral
+
+
+# --------------------------------------------------------------------------- numeric block
+
+def _count_problem(ncells, ncols, row_text):
+    if row_text.lstrip().startswith("#"):
+        return (f"row has {ncells} cells but the header has {ncols} columns; '#' comment lines "
+                "are allowed only before the header")
+    if ncells < ncols:
+        return (f"row has {ncells} cells but the header has {ncols} columns: "
+                "truncated row (file cut short or cells missing)")
+    msg = f"row has {ncells} cells but the header has {ncols} columns"
+    if ";" in row_text:
+        msg += "; the row contains semicolons, filmmap expects comma separators"
+    else:
+        msg += ("; extra commas - if the file uses decimal commas (0,45), save it with decimal "
+                "points (0.45)")
+    return msg
+
+
+def _cell_problem(cell, name):
+    s = cell.strip()
+    if not s:
+        return f"empty cell in column {name!r}; expected a number"
+    msg = f"non-numeric cell {cell!r} in column {name!r}; expected a number"
+    if _DECIMAL_COMMA.fullmatch(s):
+        msg += " (decimal comma? filmmap expects a decimal point, e.g. 0.45)"
+    return msg
+
+
+def _block_slow(rows, numbers, ncols, text_cols, num_cols, names, path):
+    """Cell-by-cell parse with exact diagnostics (quoted data, or after a fast-path failure)."""
+    texts = [[] for _ in text_cols]
+    block = np.empty((len(rows), len(num_cols)))
+    for r, (row, lineno) in enumerate(zip(rows, numbers)):
+        cells = _split_csv_line(row, path, lineno)
+        if len(cells) != ncols:
+            raise FilmmapInputError(_count_problem(len(cells), ncols, row), file=path, line=lineno)
+        for t, j in enumerate(text_cols):
+            texts[t].append(cells[j].strip())
+        for c, j in enumerate(num_cols):
+            cell = cells[j]
+            s = cell.strip()
+            if not _NUMBER.fullmatch(s):
+                raise FilmmapInputError(_cell_problem(cell, names[j]), file=path, line=lineno,
+                                        field=names[j])
+            block[r, c] = float(s)
+    return texts, block
+
+
+def _block_fast(rows, numbers, ncols, text_cols, num_cols, names, path):
+    """Parse the data rows: text columns by str.split, numbers by one np.loadtxt call."""
+    if any('"' in row for row in rows):
+        return _block_slow(rows, numbers, ncols, text_cols, num_cols, names, path)
+    commas = ncols - 1
+    for row, lineno in zip(rows, numbers):
+        if row.count(",") != commas:
+            raise FilmmapInputError(_count_problem(row.count(",") + 1, ncols, row),
+                                    file=path, line=lineno)
+    texts = []
+    for j in text_cols:
+        texts.append([row.split(",", j + 1)[j].strip() for row in rows])
+    try:
+        block = np.loadtxt(rows, delimiter=",", usecols=num_cols, dtype=float, comments=None,
+                           ndmin=2, quotechar=None)
+    except (ValueError, OverflowError):
+        # locate the offending cell precisely (and apply the exact same number syntax)
+        return _block_slow(rows, numbers, ncols, text_cols, num_cols, names, path)
+    return texts, block
+
+
+def _first_bad(mask):
+    """(row, column) of the first True in a 2-D mask, row-major, or None."""
+    if not mask.any():
+        return None
+    r = int(np.argmax(mask.any(axis=1)))
+    return r, int(np.argmax(mask[r]))
+
+
+def _check_finite(block, numbers, num_cols, names, path):
+    bad = _first_bad(~np.isfinite(block))
+    if bad is not None:
+        r, c = bad
+        v = block[r, c]
+        what = "NaN" if np.isnan(v) else ("+inf" if v > 0 else "-inf")
+        name = names[num_cols[c]]
+        raise FilmmapInputError(f"{what} in column {name!r}; expected a finite number",
+                                file=path, line=numbers[r], field=name)
+
+
+def _check_integers(values, name, numbers, path, positive):
+    ok = (values == np.round(values)) & (np.abs(values) <= _MAX_INDEX)
+    if positive:
+        ok &= values >= 1
+    if not ok.all():
+        r = int(np.argmin(ok))
+        kind = "a positive integer (1 = load/door end)" if positive else "an integer"
+        raise FilmmapInputError(f"{name} {values[r]:g} is not {kind}", file=path,
+                                line=numbers[r], field=name)
+    return values.astype(np.int64)
+
+
+def _check_range(values, lo, hi, col_names, numbers, path, message):
+    """Reject the first value outside [lo, hi] (None = unbounded), naming line and column.
+
+    ``message`` is formatted with ``value`` and ``column``.
+    """
+    mask = np.zeros(values.shape, dtype=bool)
+    if lo is not None:
+        mask |= values < lo
+    if hi is not None:
+        mask |= values > hi
+    bad = _first_bad(mask)
+    if bad is not None:
+        r, c = bad
+        text = message.format(value=f"{values[r, c]:g}", column=repr(col_names[c]))
+        raise FilmmapInputError(text, file=path, line=numbers[r], field=col_names[c])
+
+
+def _check_wafer_ids(wafer, numbers, path):
+    for r, w in enumerate(wafer):
+        if not w:
+            raise FilmmapInputError("empty wafer id; expected a text id", file=path,
+                                    line=numbers[r], field="wafer")
+        if not w.isprintable():
+            raise FilmmapInputError(f"wafer id {w!r} contains non-printable characters",
+                                    file=path, line=numbers[r], field="wafer")
+
+
+def _check_rows_consistent(rows, who):
+    """Within/across-file row checks.
+
+    Parameters
+    ----------
+    rows : iterable of (wafer, slot, site, where)
+        ``where`` is ``(file, line)``.
+    who : str
+        ``"file"`` (one file: an error names the file and the line) or ``"lot"``.
+    """
+    by_site, slot_of_wafer, wafer_of_slot = {}, {}, {}
+    for wafer, slot, site, where in rows:
+        wafer = str(wafer)
+        key = (wafer, site)
+        if key in by_site:
+            first = by_site[key]
+            raise FilmmapInputError(
+                f"duplicate wafer {wafer!r} site {site}: also at {_loc(first, where, who)}; "
+                "expected each (wafer, site) once", file=where[0], line=where[1], field="site")
+        by_site[key] = where
+        seen = slot_of_wafer.get(wafer)
+        if seen is None:
+            slot_of_wafer[wafer] = (slot, where)
+        elif seen[0] != slot:
+            raise FilmmapInputError(
+                f"wafer {wafer!r} is in slot {slot} here but in slot {seen[0]} at "
+                f"{_loc(seen[1], where, who)}; expected one slot per wafer",
+                file=where[0], line=where[1], field="slot")
+        seen = wafer_of_slot.get(slot)
+        if seen is None:
+            wafer_of_slot[slot] = (wafer, where)
+        elif seen[0] != wafer:
+            raise FilmmapInputError(
+                f"slot {slot} holds wafer {wafer!r} here but wafer {seen[0]!r} at "
+                f"{_loc(seen[1], where, who)}; expected one wafer per slot",
+                file=where[0], line=where[1], field="slot")
+
+
+def _loc(first, where, who):
+    if who == "file" or str(first[0]) == str(where[0]):
+        return f"line {first[1]}"
+    return f"{first[0]}:{first[1]}"
+
+
+# --------------------------------------------------------------------------- public readers
+
+def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEFAULT_MAX_BYTES):
+    """Read one spectra CSV file (format in the module docstring).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The CSV file; opened read-only, never modified.
+    technique : {"reflectance", "ellipsometry", "intensity"}
+        What the spectral columns hold: ``R@<nm>``, ``psi@<nm>``/``delta@<nm>``
+        or ``I@<nm>``.
+    reflectance_unit : {"fraction", "percent"}
+        Unit of the ``R@`` values in the file; percent is converted to a fraction.
+    max_bytes : int
+        Refuse files larger than this many bytes (default 512 MiB).
+
+    Returns
+    -------
+    SpectraTable
+
+    Raises
+    ------
+    FilmmapInputError
+        Any problem with the file, naming the file, line and column.
+    ValueError
+        A bad ``technique``, ``reflectance_unit`` or ``max_bytes`` argument
+        (a programming error, not bad input).
+
+    Notes
+    -----
+    Reflectance must be >= 0 and, as a fraction, <= 1.5 (a larger value means
+    the file is in percent).  In percent mode, values must be <= 150 and a file
+    whose values are all <= 1.5 is rejected as probably holding fractions.
+    psi must lie in [0, 90] deg and delta in [-180, 360] deg.  Rows must have
+    distinct (wafer, site), one slot per wafer and one wafer per slot.
+    """
+    if technique not in TECHNIQUES:
+        raise ValueError(f"technique must be one of {TECHNIQUES}, got {technique!r}")
+    if reflectance_unit not in REFLECTANCE_UNITS:
+        raise ValueError(f"reflectance_unit must be one of {REFLECTANCE_UNITS}, "
+                         f"got {reflectance_unit!r}")
+    path = Path(path)
+    raw = _read_bytes(path, max_bytes)
+    sha = hashlib.sha256(raw).hexdigest()
+    text = _decode(raw, path)
+    hline, header_text, rows, numbers = _header_and_rows(text, path)
+    names, fixed, spectral = _parse_header(header_text, rows[0] if rows else None, path, hline,
+                                           technique, REQUIRED_COLUMNS)
+    if not rows:
+        raise FilmmapInputError("no data rows after the header; expected one row per site",
+                                file=path, line=hline)
+    prefixes = _PREFIXES[technique]
+    num_cols = [fixed["slot"], fixed["site"], fixed["x_mm"], fixed["y_mm"]]
+    for p in prefixes:
+        num_cols += spectral[p][1]
+    (wafer,), block = _block_fast(rows, numbers, len(names), [fixed["wafer"]], num_cols, names,
+                                  path)
+    _check_finite(block, numbers, num_cols, names, path)
+    _check_wafer_ids(wafer, numbers, path)
+    slot = _check_integers(block[:, 0], "slot", numbers, path, positive=True)
+    site = _check_integers(block[:, 1], "site", numbers, path, positive=False)
+    wavelength = spectral[prefixes[0]][0]
+    n_wl = wavelength.size
+    data = {}
+    for k, p in enumerate(prefixes):
+        start = 4 + k * n_wl
+        values = block[:, start:start + n_wl]
+        col_names = [names[j] for j in spectral[p][1]]
+        if p == "R":
+            unit = "%" if reflectance_unit == "percent" else ""
+            _check_range(values, 0.0, None, col_names, numbers, path,
+                         "negative reflectance {value}" + unit + " in column {column}; "
+                         "expected reflectance >= 0")
+            if reflectance_unit == "fraction":
+                _check_range(values, None, _MAX_FRACTION, col_names, numbers, path,
+                             "reflectance {value} in column {column} is above "
+                             f"{_MAX_FRACTION:g}, too large for a fraction 0-1; if the file is "
+                             'in percent, set reflectance_unit = "percent" in the lot file')
+            else:
+                _check_range(values, None, 100 * _MAX_FRACTION, col_names, numbers, path,
+                             "reflectance {value}% in column {column} is above "
+                             f"{100 * _MAX_FRACTION:g}%; expected percent 0-100")
+                if values.max() <= _MAX_FRACTION:
+                    raise FilmmapInputError(
+                        f"all reflectance values are <= {_MAX_FRACTION:g} although the lot says "
+                        'reflectance_unit = "percent"; the file looks like fractions 0-1 - set '
+                        'reflectance_unit = "fraction"', file=path, line=numbers[0])
+                values = values / 100.0
+        elif p == "psi":
+            _check_range(values, *_PSI_RANGE, col_names, numbers, path,
+                         "psi {value} deg in column {column} is outside "
+                         f"[{_PSI_RANGE[0]:g}, {_PSI_RANGE[1]:g}] deg")
+        elif p == "delta":
+            _check_range(values, *_DELTA_RANGE, col_names, numbers, path,
+                         "delta {value} deg in column {column} is outside "
+                         f"[{_DELTA_RANGE[0]:g}, {_DELTA_RANGE[1]:g}] deg")
+        data[p] = np.ascontiguousarray(values)
+    wafer = np.array(wafer, dtype=str)
+    line = np.asarray(numbers, dtype=np.int64)
+    _check_rows_consistent(
+        zip(wafer.tolist(), slot.tolist(), site.tolist(), ((path, n) for n in numbers)), "file")
+    return SpectraTable(path=path, sha256=sha, technique=technique, wafer=wafer, slot=slot,
+                        site=site, x_mm=np.ascontiguousarray(block[:, 2]),
+                        y_mm=np.ascontiguousarray(block[:, 3]), wavelength_nm=wavelength,
+                        data=data, line=line)
+
+
+def read_spectrum_file(path, max_bytes=DEFAULT_MAX_BYTES):
+    """Read a single dark or reference intensity spectrum.
+
+    Format: ``#`` comment lines, a header of only ``I@<nm>`` columns (any
+    order; sorted by wavelength, duplicates rejected), then exactly one data
+    row of finite numbers (counts).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The file; opened read-only.
+    max_bytes : int
+        Refuse files larger than this many bytes.
+
+    Returns
+    -------
+    Spectrum
+
+    Raises
+    ------
+    FilmmapInputError
+        Any problem with the file, naming the file and line.
+    """
+    path = Path(path)
+    raw = _read_bytes(path, max_bytes)
+    sha = hashlib.sha256(raw).hexdigest()
+    text = _decode(raw, path)
+    hline, header_text, rows, numbers = _header_and_rows(text, path)
+    names, _, spectral = _parse_header(header_text, rows[0] if rows else None, path, hline,
+                                       "intensity", ())
+    if len(rows) != 1:
+        raise FilmmapInputError(
+            f"expected exactly one data row in a dark/reference spectrum file, found {len(rows)}",
+            file=path, line=numbers[1] if len(rows) > 1 else hline)
+    wavelength, cols = spectral["I"]
+    _, block = _block_fast(rows, numbers, len(names), [], cols, names, path)
+    _check_finite(block, numbers, cols, names, path)
+    return Spectrum(path=path, sha256=sha, wavelength_nm=wavelength,
+                    counts=np.ascontiguousarray(block[0]), line=numbers[0])
+
+
+def check_tables(tables, wafer_diameter_mm, boat_slots=None):
+    """Check a lot's spectra tables against each other, the wafer and the boat.
+
+    Parameters
+    ----------
+    tables : sequence of SpectraTable
+        All files of one lot.
+    wafer_diameter_mm : float
+        Wafer diameter in mm; every site must lie within the radius.
+    boat_slots : int, optional
+        Number of boat slots; every slot must lie in ``1..boat_slots``.
+
+    Returns
+    -------
+    None
+
+    Raises
+    ------
+    FilmmapInputError
+        Naming the file(s) and line(s): no tables; mixed techniques; a
+        different wavelength set; a slot outside the boat; a site outside the
+        wafer; a wafer in two files; a wafer in two slots; two wafers in one
+        slot; a duplicate (wafer, site).
+    """
+    tables = list(tables)
+    if not tables:
+        raise FilmmapInputError("no spectra files to check; expected at least one")
+    radius = float(wafer_diameter_mm) / 2.0
+    if not (math.isfinite(radius) and radius > 0):
+        raise FilmmapInputError(f"wafer diameter must be a positive number of mm, "
+                                f"got {wafer_diameter_mm!r}", field="wafer_diameter_mm")
+    seen = {}
+    for t in tables:
+        key = os.path.abspath(t.path)
+        if key in seen:
+            raise FilmmapInputError("file is listed twice; expected each spectra file once",
+                                    file=t.path)
+        seen[key] = t
+    ref = tables[0]
+    for t in tables[1:]:
+        if t.technique != ref.technique:
+            raise FilmmapInputError(
+                f"technique {t.technique!r} differs from {ref.technique!r} of {ref.path}; "
+                "expected all files of a lot to use one technique", file=t.path)
+        same = (t.wavelength_nm.size == ref.wavelength_nm.size
+                and np.allclose(t.wavelength_nm, ref.wavelength_nm, rtol=1e-9, atol=0.0))
+        if not same:
+            raise FilmmapInputError(
+                f"wavelength set differs from {ref.path}: "
+                f"{_describe_difference(t.wavelength_nm, ref.wavelength_nm)}; "
+                "expected the same wavelength columns in every file", file=t.path)
+    for t in tables:
+        if boat_slots is not None:
+            out = (t.slot < 1) | (t.slot > int(boat_slots))
+            if out.any():
+                r = int(np.argmax(out))
+                raise FilmmapInputError(
+                    f"slot {int(t.slot[r])} is outside the boat (slots 1..{int(boat_slots)})",
+                    file=t.path, line=int(t.line[r]), field="slot")
+        rr = np.hypot(t.x_mm, t.y_mm)
+        out = ~(rr <= radius + _RADIUS_SLACK_MM)
+        if out.any():
+            r = int(np.argmax(out))
+            raise FilmmapInputError(
+                f"site {int(t.site[r])} at (x, y) = ({t.x_mm[r]:g}, {t.y_mm[r]:g}) mm lies "
+                f"{rr[r]:g} mm from the centre, outside the wafer radius {radius:g} mm",
+                file=t.path, line=int(t.line[r]), field="x_mm")
+    first_file = {}
+    for t in tables:
+        for w in dict.fromkeys(str(x) for x in t.wafer.tolist()):
+            r = int(np.argmax(t.wafer == w))
+            if w in first_file and str(first_file[w][0]) != str(t.path):
+                other, oline, oslot = first_file[w]
+                slot = int(t.slot[r])
+                if oslot != slot:
+                    msg = (f"wafer {w!r} is in slot {slot} here but in slot {oslot} in "
+                           f"{other}:{oline}; expected one slot per wafer")
+                else:
+                    msg = (f"wafer {w!r} appears in two files: {other}:{oline} and here; "
+                           "expected each wafer in one file")
+                raise FilmmapInputError(msg, file=t.path, line=int(t.line[r]), field="wafer")
+            first_file.setdefault(w, (t.path, int(t.line[r]), int(t.slot[r])))
+    _check_rows_consistent(
+        (row for t in tables for row in zip(t.wafer.tolist(), t.slot.tolist(), t.site.tolist(),
+                                            ((t.path, n) for n in t.line.tolist()))), "lot")
+
+
+def _describe_difference(wl, ref):
+    if wl.size != ref.size:
+        return (f"{wl.size} wavelengths {wl[0]:g}-{wl[-1]:g} nm here, "
+                f"{ref.size} wavelengths {ref[0]:g}-{ref[-1]:g} nm there")
+    i = int(np.argmax(~np.isclose(wl, ref, rtol=1e-9, atol=0.0)))
+    return f"column {i + 1} of the spectrum is at {wl[i]:g} nm here but {ref[i]:g} nm there"
