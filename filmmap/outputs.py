@@ -13,6 +13,21 @@ import numpy as np
 
 from filmmap.io.results import lot_dataset, spectra_dataset, write_csv_atomic, write_netcdf_atomic
 from filmmap.wafermap.stats import within_wafer_stats
+from filmmap.wafermap.surface import tps_loo
+from filmmap.wafermap.zernike import noll_to_nm, radial_profile, zernike_fit
+
+SHAPE_FIGURES = {
+    "tilt_nm": ("tilt_pv_nm", "nm", "tilt peak-to-valley across the measured diameter, "
+                "4 sqrt(a2^2 + a3^2) (Noll 1976 normalisation)"),
+    "tilt_sigma_nm": ("tilt_pv_u_nm", "nm", "standard uncertainty of tilt_nm"),
+    "tilt_direction_deg": ("tilt_direction_deg", "degree",
+                           "direction of increasing thickness, 0 = +x, counter-clockwise"),
+    "defocus_nm": ("defocus_nm", "nm", "centre-to-edge figure of the defocus term, 2 sqrt(3) a4; "
+                   "> 0 thicker at the edge (bowl), < 0 thicker at the centre (dome)"),
+    "defocus_sigma_nm": ("defocus_u_nm", "nm", "standard uncertainty of defocus_nm"),
+    "astig_nm": ("astig_pv_nm", "nm", "astigmatism peak-to-valley at the measured radius"),
+    "astig_angle_deg": ("astig_angle_deg", "degree", "axis of the thick side of the astigmatism"),
+}
 
 SUMMARY_COLUMNS = ["wafer", "slot", "role", "sites_measured", "sites_fit_ok", "sites_used",
                    "mean_nm", "sigma_nm", "nu_pct", "min_nm", "max_nm", "range_nm",
@@ -68,20 +83,73 @@ def coordinate_groups(x_mm, y_mm):
 
 
 def add_wafer_statistics(ds, diameter_mm, edge_exclusion_mm):
-    """Per-wafer within-wafer statistics as variables on the ``wafer`` dim (in place)."""
+    """Per-wafer statistics, Zernike shape, radial profile and map trust, added to ``ds``.
+
+    Adds on ``wafer``: ``mean_nm``, ``sigma_nm``, ``nu_pct``, ``min_nm``, ``max_nm``,
+    ``range_nm``, ``halfrange_pct``, ``sites_used`` (see `filmmap.wafermap.stats`),
+    the shape figures of `SHAPE_FIGURES`, ``map_loo_rms_nm`` (leave-one-out error of
+    the interpolated map); on (``wafer``, ``zernike``): ``zernike_nm`` and
+    ``zernike_sigma_nm`` (Noll 1976 indexing); on (``wafer``, ``ring``):
+    ``radial_mean_nm`` and ``ring_radius_mm``.
+    """
     names = ("mean_nm", "sigma_nm", "nu_pct", "min_nm", "max_nm", "range_nm",
              "halfrange_pct", "sites_used")
-    out = {n: np.full(ds.sizes["wafer"], np.nan) for n in names}
+    W = ds.sizes["wafer"]
+    out = {n: np.full(W, np.nan) for n in names}
+    shape = {n: np.full(W, np.nan) for n in SHAPE_FIGURES}
+    loo = np.full(W, np.nan)
+    zern, zern_u, rings = {}, {}, {}
     t, ok = ds["thickness"].values, ds["fit_ok"].values
     for rows, x, y, present in coordinate_groups(ds["x_mm"].values, ds["y_mm"].values):
-        st = within_wafer_stats(t[rows], ok[rows] & present, x, y, diameter_mm, edge_exclusion_mm)
+        t_g, ok_g = t[rows], ok[rows] & present
+        st = within_wafer_stats(t_g, ok_g, x, y, diameter_mm, edge_exclusion_mm)
         for n in names:
             out[n][rows] = getattr(st, n)
+        if present.sum() >= 3:
+            zf = zernike_fit(t_g, ok_g, x, y, diameter_mm, edge_exclusion_mm)
+            for n, (attr, _u, _d) in SHAPE_FIGURES.items():
+                shape[n][rows] = getattr(zf, attr)
+            for k, r in enumerate(rows):
+                zern[r], zern_u[r] = zf.coefficients_nm[k], zf.uncertainty_nm[k]
+            loo[rows] = tps_loo(t_g, ok_g, x, y, diameter_mm, edge_exclusion_mm).rms_nm
+            rp = radial_profile(t_g, ok_g, x, y, diameter_mm, edge_exclusion_mm)
+            for k, r in enumerate(rows):
+                rings[r] = (rp.radius_mm, rp.mean_nm[k])
     units = {"sites_used": "1", "nu_pct": "percent", "halfrange_pct": "percent"}
     for n in names:
         values = out[n].astype(int) if n == "sites_used" else out[n]
         ds[n] = ("wafer", values, {"units": units.get(n, "nm"), "long_name":
                                    f"within-wafer {n} over usable sites inside the edge exclusion"})
+    for n, (_attr, unit, text) in SHAPE_FIGURES.items():
+        ds[n] = ("wafer", shape[n], {"units": unit, "long_name": text})
+    ds["map_loo_rms_nm"] = ("wafer", loo, {"units": "nm", "long_name":
+                            "leave-one-out rms error of the thin-plate-spline map (Rippa 1999): "
+                            "how far to trust the interpolated map between sites"})
+    J = max((v.size for v in zern.values()), default=0)
+    if J:
+        Z = np.full((W, J), np.nan)
+        Zu = np.full((W, J), np.nan)
+        for r, v in zern.items():
+            Z[r, :v.size], Zu[r, :v.size] = v, zern_u[r]
+        j = np.arange(1, J + 1)
+        nm = [noll_to_nm(k) for k in j]
+        ds = ds.assign_coords(zernike=("zernike", j, {"long_name": "Noll index j (Noll 1976)"}),
+                              zernike_n=("zernike", np.array([a for a, _ in nm])),
+                              zernike_m=("zernike", np.array([b for _, b in nm])))
+        ds["zernike_nm"] = (("wafer", "zernike"), Z, {"units": "nm", "long_name":
+                            "Zernike coefficient a_j over the unit disk of the measured radius, "
+                            "Noll (1976) indexing and normalisation"})
+        ds["zernike_sigma_nm"] = (("wafer", "zernike"), Zu, {"units": "nm", "long_name":
+                                  "standard uncertainty of zernike_nm"})
+    K = max((v[0].size for v in rings.values()), default=0)
+    if K:
+        R = np.full((W, K), np.nan)
+        M = np.full((W, K), np.nan)
+        for r, (rad, mean) in rings.items():
+            R[r, :rad.size], M[r, :rad.size] = rad, mean
+        ds["ring_radius_mm"] = (("wafer", "ring"), R, {"units": "mm", "long_name": "mean radius of the ring"})
+        ds["radial_mean_nm"] = (("wafer", "ring"), M, {"units": "nm", "long_name":
+                                "mean thickness of the usable sites of each ring (radial profile)"})
     return ds
 
 
@@ -107,7 +175,7 @@ def write_lot(reduction, outdir, keep_spectra=False):
     roles = wafer_roles(reduction.config, ids, s.slot[first])
     ds = lot_dataset(reduction, roles)
     m = reduction.config.measurement
-    add_wafer_statistics(ds, m.wafer_diameter_mm, m.edge_exclusion_mm)
+    ds = add_wafer_statistics(ds, m.wafer_diameter_mm, m.edge_exclusion_mm)
     written = WrittenLot(outdir=outdir)
     written.files["lot.nc"] = write_netcdf_atomic(ds, outdir / "lot.nc")
     rows = []

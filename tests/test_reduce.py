@@ -111,6 +111,14 @@ def test_reflectance_lot_round_trip_through_cli(tmp_path):
     inputs = json.loads(ds.attrs["input_files_sha256"])
     assert len(inputs) == 4 and all(len(i["sha256"]) == 64 for i in inputs)
     assert ds.attrs["software"].startswith("filmmap ") and ds.attrs["created"]
+    # within-wafer figures (pinned names) and the shape decomposition on its own dim
+    for name in ("mean_nm", "sigma_nm", "nu_pct", "range_nm", "halfrange_pct", "sites_used"):
+        assert ds[name].dims == ("wafer",), name
+    assert int(ds["sites_used"].sel(wafer="A01")) == 9
+    np.testing.assert_allclose(float(ds["mean_nm"].sel(wafer="A01")),
+                               np.mean(wafers["A01"][1]), atol=0.01)
+    assert ds["zernike_nm"].dims == ("wafer", "zernike") and ds["zernike"].values[0] == 1
+    assert np.isfinite(ds["map_loo_rms_nm"]).all()
     summary = (out / "summary.csv").read_text().splitlines()
     assert len(summary) == 4 and summary[0].startswith("wafer,slot,role")
 

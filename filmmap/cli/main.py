@@ -7,6 +7,7 @@ field; no traceback unless --debug), 1 an unexpected internal error.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import time
 import traceback
@@ -31,8 +32,9 @@ def build_parser():
     red.add_argument("-o", "--output", required=True, metavar="OUTDIR",
                      help="output folder (created if missing)")
     red.add_argument("--no-figures", action="store_true", help="skip the PNG figures")
-    red.add_argument("--workers", type=int, default=1, metavar="N",
-                     help="fit wafers in N processes (default 1, which already uses threads)")
+    red.add_argument("--workers", type=int, default=None, metavar="N",
+                     help="fit wafers in N processes (default: 2 on a machine with 2 or more "
+                          "cores and a lot of 16 or more files, else 1)")
     red.add_argument("--quiet", action="store_true", help="no progress bar or summary")
     red.add_argument("--keep-spectra", action="store_true",
                      help="also write spectra.nc with measured and model spectra and residuals")
@@ -61,10 +63,12 @@ def run_reduce(lotfile, outdir, workers=1, figures=True, quiet=False, keep_spect
     from filmmap.outputs import write_lot
     from filmmap.reduce import reduce_lot
 
-    if workers < 1:
-        raise FilmmapInputError(f"--workers must be >= 1, got {workers}", field="--workers")
     t0 = time.perf_counter()
     n_files = len(read_lot_file(lotfile).measurement.files)
+    if workers is None:
+        workers = 2 if (os.cpu_count() or 1) >= 2 and n_files >= 16 else 1
+    if workers < 1:
+        raise FilmmapInputError(f"--workers must be >= 1, got {workers}", field="--workers")
     bar = _progress_bar(n_files, quiet, "fitting")
     try:
         reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra,
@@ -126,7 +130,7 @@ def cmd_demo(args):
     lot = generate_demo_lot(root / "lot")
     if not args.quiet:
         print(f"invented demo lot written to {lot.parent} (fictional data, not measurements)")
-    reduction, written, seconds = run_reduce(lot, root / "results", 1, not args.no_figures,
+    reduction, written, seconds = run_reduce(lot, root / "results", None, not args.no_figures,
                                              args.quiet, figure_workers=2)
     if not args.quiet:
         print_summary(reduction, written, seconds)

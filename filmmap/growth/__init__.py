@@ -1,4 +1,4 @@
-"""Thermal oxide growth: Deal-Grove kinetics and integration through furnace recipes.
+"""Thermal oxide growth: Deal-Grove kinetics, recipe integration, calibration and advice.
 
 Units: thickness nm, time minutes, temperature degrees Celsius, pressure atm; rate
 constants in the literature's um and hours (see `deal_grove`).
@@ -36,6 +36,21 @@ from filmmap.growth.recipe import (
     thickness_sensitivity_to_temperature,
     validate_steps,
 )
+from filmmap.growth.calibrate import (
+    COUPLING_SHAPES,
+    DEFAULT_INITIAL_NM,
+    SlotCalibration,
+    ZoneFit,
+    calibrate_slots,
+    fit_zones,
+    gain_matrix,
+    normalise_zones,
+    steps_from_config,
+    with_minutes,
+    zones_from_config,
+)
+from filmmap.growth.advice import ADVICE_KEYS, CAUTION, advise, advise_from_config, roles_from_boat
+from filmmap.growth.predict import apply_overrides, predict_by_zone
 
 __all__ = [
     "AMBIENTS", "BOLTZMANN_EV", "DEFAULT_TEMPERATURE_RANGE_C", "ORIENTATIONS", "OXIDANTS",
@@ -46,4 +61,9 @@ __all__ = [
     "rate_constants", "reference_pressure_atm", "step_index", "step_thicknesses",
     "tau_minutes", "thickness_sensitivity_to_minutes", "thickness_sensitivity_to_temperature",
     "validate_steps",
+    # calibration, advice, prediction
+    "ADVICE_KEYS", "CAUTION", "COUPLING_SHAPES", "DEFAULT_INITIAL_NM", "SlotCalibration",
+    "ZoneFit", "advise", "advise_from_config", "apply_overrides", "calibrate_slots",
+    "fit_zones", "gain_matrix", "normalise_zones", "predict_by_zone", "roles_from_boat",
+    "steps_from_config", "with_minutes", "zones_from_config",
 ]

@@ -1,0 +1,421 @@
+"""report.html: one self-contained file for screen and print.
+
+Everything is inside the file: images as ``data:image/png;base64`` URIs, CSS
+inline in ``<style>``, no script, no external font, no link to anything
+outside the page (only ``#`` anchors within it). Every text that comes from
+the input files (lot id, furnace, wafer ids, fit notes, file names, stack
+description, advice values) goes through `html.escape`. Tags are always
+closed, so the page is well-formed for a strict parser.
+
+Sections, in order: header with the verdict and the cautions, slot profile,
+wafer-to-wafer (WTW) table, within-wafer (WIW) table, lot contact sheet, one
+section per wafer, fit quality with the failed sites, warnings and notes,
+advice (only when an advice dict is given, with the cautions beside it),
+provenance. In print, each section starts a new page and a wafer section is
+kept on one page.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import math
+from pathlib import Path
+
+from filmmap.io.atomic import write_text_atomic
+from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS_TITLE
+from filmmap.report.formatting import (MISSING, flag_text, fmt, fmt_in_spec, fmt_wafer,
+                                       is_number)
+from filmmap.report.images import ReportImages
+from filmmap.report.provenance import provenance
+
+#: id and alt text of the slot-profile image.
+SLOT_PROFILE_IMG_ID = "slot-profile"
+SLOT_PROFILE_ALT = "Slot profile: wafer mean thickness against boat slot"
+
+_CSS = """
+:root { --ink: #1d1d1f; --muted: #555; --rule: #c9c9c9; --accent: #3b528b; --band: #eef2e6; }
+* { box-sizing: border-box; }
+body { font-family: sans-serif; color: var(--ink); margin: 0 auto; max-width: 1100px;
+       padding: 1rem 1.5rem 3rem; line-height: 1.4; font-size: 15px; }
+h1 { font-size: 1.6rem; margin: 0.2rem 0; }
+h2 { font-size: 1.25rem; border-bottom: 2px solid var(--accent); padding-bottom: 0.2rem;
+     margin-top: 2.2rem; }
+h3 { font-size: 1.05rem; margin: 1.2rem 0 0.4rem; }
+.meta { color: var(--muted); margin: 0.2rem 0; }
+.verdict { font-size: 1.1rem; font-weight: bold; border-left: 6px solid var(--accent);
+           padding: 0.5rem 0.8rem; background: #f3f4f8; }
+.cautions { border: 2px solid #444; padding: 0.5rem 0.9rem; background: #f7f7f7; }
+.cautions h2, .cautions h3 { border: none; margin-top: 0.3rem; }
+nav ul { list-style: none; padding: 0; display: flex; flex-wrap: wrap; gap: 0.3rem 1rem; }
+nav a { color: var(--accent); }
+table { border-collapse: collapse; margin: 0.4rem 0; font-size: 0.88rem; }
+th, td { border-bottom: 1px solid var(--rule); padding: 0.2rem 0.5rem; text-align: right;
+         vertical-align: top; }
+th { background: #ececec; }
+td.text, th.text { text-align: left; }
+tr.edge td { background: var(--band); }
+tr.excluded td { color: var(--muted); font-style: italic; }
+td.out { font-weight: bold; }
+table.kv th { text-align: left; background: none; font-weight: normal; color: var(--muted); }
+table.kv td { text-align: left; }
+figure { margin: 0.6rem 0; }
+figure img { max-width: 100%; height: auto; border: 1px solid #ddd; }
+figcaption { color: var(--muted); font-size: 0.85rem; }
+.missing { color: var(--muted); font-style: italic; }
+pre { white-space: pre-wrap; word-break: break-all; background: #f5f5f5; padding: 0.5rem;
+      font-size: 0.82rem; }
+code { font-size: 0.82rem; word-break: break-all; }
+.wafer { border-top: 1px solid var(--rule); padding-top: 0.4rem; }
+.wafer-body { display: flex; flex-wrap: wrap; gap: 1rem; align-items: flex-start; }
+.wafer-body figure { flex: 1 1 420px; max-width: 560px; }
+.advice-wrap { display: flex; flex-wrap: wrap; gap: 1rem; align-items: flex-start; }
+.advice-wrap > div { flex: 2 1 420px; }
+.advice-wrap > aside { flex: 1 1 260px; }
+footer { margin-top: 3rem; color: var(--muted); font-size: 0.8rem; }
+@media print {
+  @page { size: A4; margin: 14mm; }
+  body { max-width: none; padding: 0; font-size: 10pt; }
+  nav { display: none; }
+  section { break-before: page; page-break-before: always; }
+  section.first { break-before: auto; page-break-before: auto; }
+  .wafer { break-inside: avoid; page-break-inside: avoid; }
+  .wafer + .wafer { break-before: page; page-break-before: always; }
+  figure, tr, .cautions, .verdict { break-inside: avoid; page-break-inside: avoid; }
+  thead { display: table-header-group; }
+  table { font-size: 8pt; }
+  h2 { break-after: avoid; page-break-after: avoid; }
+  .verdict, .cautions, th { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+}
+"""
+
+
+def e(value):
+    """Escape any value for HTML text or an attribute (quotes included)."""
+    return html.escape(str(value), quote=True)
+
+
+def _data_uri(png):
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+def _img(png, alt, img_id=None, width=None):
+    attrs = f' id="{e(img_id)}"' if img_id else ""
+    attrs += f' width="{int(width)}"' if width else ""
+    return f'<img{attrs} alt="{e(alt)}" src="{_data_uri(png)}">'
+
+
+def _cell(text, cls=None):
+    c = f' class="{cls}"' if cls else ""
+    t = str(text)
+    if t.startswith(MISSING):
+        c = ' class="missing"' if not cls else f' class="{cls} missing"'
+    return f"<td{c}>{e(t)}</td>"
+
+
+def _kv_table(rows, cls="kv"):
+    out = [f'<table class="{cls}"><tbody>']
+    for k, v in rows:
+        out.append(f"<tr><th>{e(k)}</th>{_cell(v, 'text')}</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _cautions_html(title_tag="h2", with_id=True):
+    idattr = ' id="cautions"' if with_id else ""
+    paras = "".join(f"<p>{e(p)}</p>" for p in CAUTION_PARAGRAPHS)
+    return (f'<div class="cautions"{idattr}><{title_tag}>{e(CAUTIONS_TITLE)}</{title_tag}>'
+            f"{paras}</div>")
+
+
+def _advice_value(value, depth=0):
+    """Generic, escaped rendering of an advice value (dict, list, number, text)."""
+    if isinstance(value, dict):
+        rows = "".join(f"<tr><th>{e(k)}</th><td>{_advice_value(v, depth + 1)}</td></tr>"
+                       for k, v in value.items())
+        return f'<table class="kv"><tbody>{rows}</tbody></table>'
+    if isinstance(value, (list, tuple)):
+        if not value:
+            return '<span class="missing">(none)</span>'
+        return "<ul>" + "".join(f"<li>{_advice_value(v, depth + 1)}</li>" for v in value) + "</ul>"
+    if value is None:
+        return f'<span class="missing">{e(MISSING)}</span>'
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, float):
+        return e(f"{value:.6g}") if math.isfinite(value) else f'<span class="missing">{e(MISSING)}</span>'
+    return e(value)
+
+
+def _wtw_rows(view):
+    w, p = view.wtw, view.profile
+    few = "fewer than 2 product wafers with a usable mean"
+    none = "no product wafer with a usable mean"
+    rows = [
+        ("product wafers", f"{w.n_product} ({w.n_used} with a usable mean"
+         + (f", {w.n_missing} left out: {', '.join(w.missing_ids)}" if w.n_missing else "") + ")"),
+        ("monitor wafers (listed, not counted)", str(w.n_monitor)),
+        ("grand mean of product wafer means", fmt(w.grand_mean_nm, 2, "nm", none)),
+        ("WTW sigma (n - 1)", fmt(w.wtw_sigma_nm, 3, "nm", few)),
+        ("WTW NU (100 sigma / mean)", fmt(w.wtw_nu_pct, 3, "%", few)),
+        ("WTW range (max - min)", fmt(w.range_nm, 2, "nm", none)),
+        ("lowest wafer mean", fmt(w.min_nm, 2, "nm", none) + (f" ({w.min_wafer})" if w.min_wafer else "")),
+        ("highest wafer mean", fmt(w.max_nm, 2, "nm", none) + (f" ({w.max_wafer})" if w.max_wafer else "")),
+    ]
+    if view.target_nm is None:
+        rows.append(("in spec", f"{MISSING} (no target given)"))
+    else:
+        rows.append(("target", f"{view.target_nm:g} nm ± {view.tolerance_pct:g} %"))
+        rows.append(("in spec", f"{w.in_spec_count} of {w.n_used} judged product wafers"
+                     + (f"; out of spec: {', '.join(w.out_of_spec_ids)}" if w.out_of_spec_ids else "")))
+    rows += [
+        ("boat", f"{view.boat_size} slots" + ("" if view.boat_from_config
+                                              else " (highest slot; no [boat] in the lot file)")),
+        ("product region / centre slots",
+         (f"slots {p.product_region[0]}-{p.product_region[1]}" if p.product_region else MISSING)
+         + (f" / {p.central_region[0]}-{p.central_region[1]}" if p.central_region else "")),
+        ("reference level (median of centre slots)", fmt(p.reference_nm, 2, "nm", none)),
+        ("robust sigma (1.4826 MAD, floored)", fmt(p.robust_sigma_nm, 3, "nm", none)),
+        ("flag limit", (f"± {p.limit_nm:.2f} nm (k = {p.k:.2f})" if p.limit_nm is not None
+                        else f"{MISSING} (robust rule off)")),
+        ("flagged slots", ", ".join(map(str, p.flagged_slots)) or "none"),
+        ("edge slots, load end", ", ".join(map(str, p.edge_slots_load)) or "none"),
+        ("edge slots, source end", ", ".join(map(str, p.edge_slots_source)) or "none"),
+        ("flat zone", f"slots {p.flat_zone[0]}-{p.flat_zone[1]}" if p.flat_zone else f"{MISSING} (none)"),
+        ("extra dummies suggested (advisory)",
+         f"load end {p.extra_dummies['load']}, source end {p.extra_dummies['source']}"),
+    ]
+    return rows
+
+
+WIW_HEADER = ("wafer", "slot", "role", "mean (nm)", "sigma (nm)", "NU (%)", "range (nm)",
+              "half-range (%)", "sites used", "in spec", "slot flag")
+
+
+def _wiw_cells(view, w):
+    return [w.wafer, str(w.slot), w.role, fmt_wafer(w, "mean_nm", 2), fmt_wafer(w, "sigma_nm", 3),
+            fmt_wafer(w, "nu_pct", 3), fmt_wafer(w, "range_nm", 2),
+            fmt_wafer(w, "halfrange_pct", 3), f"{w.sites_used} of {w.sites_measured}",
+            fmt_in_spec(w.in_spec, w, view.target_nm is not None), flag_text(w)]
+
+
+def _wiw_table(view):
+    out = ["<table><thead><tr>"]
+    out += [f'<th class="text">{e(h)}</th>' if i in (0, 2, 10) else f"<th>{e(h)}</th>"
+            for i, h in enumerate(WIW_HEADER)]
+    out.append("</tr></thead><tbody>")
+    for w in view.wafers:
+        cls = "excluded" if w.excluded else "edge" if w.edge else ""
+        out.append(f'<tr class="{cls}">' if cls else "<tr>")
+        for i, c in enumerate(_wiw_cells(view, w)):
+            klass = "text" if i in (0, 2, 10) else ("out" if i == 9 and w.in_spec is False else None)
+            out.append(_cell(c, klass))
+        out.append("</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _failed_table(sites):
+    out = ['<table><thead><tr><th class="text">wafer</th><th>slot</th><th>site</th>'
+           '<th>x (mm)</th><th>y (mm)</th><th>fit quality</th><th class="text">fit note</th>'
+           "</tr></thead><tbody>"]
+    for f in sites:
+        out.append("<tr>" + _cell(f.wafer, "text") + _cell(f.slot) + _cell(f.site)
+                   + _cell(fmt(f.x_mm, 1)) + _cell(fmt(f.y_mm, 1))
+                   + _cell(fmt(f.fit_quality, 3, reason="no value")) + _cell(f.note, "text")
+                   + "</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _wafer_section(view, images, index, w):
+    png, why = images.wafer_map(w.wafer)
+    fig = (f"<figure>{_img(png, f'Thickness map of wafer {w.wafer}', width=560)}"
+           f"<figcaption>Thickness map, wafer {e(w.wafer)}, slot {w.slot}</figcaption></figure>"
+           if png is not None else f'<p class="missing">No map: {e(why)}</p>')
+    rows = [("slot", str(w.slot)), ("role", w.role),
+            ("mean", fmt_wafer(w, "mean_nm", 2, "nm")), ("sigma", fmt_wafer(w, "sigma_nm", 3, "nm")),
+            ("NU (100 sigma / mean)", fmt_wafer(w, "nu_pct", 3, "%")),
+            ("min / max", f"{fmt_wafer(w, 'min_nm', 2)} / {fmt_wafer(w, 'max_nm', 2)} nm"),
+            ("range", fmt_wafer(w, "range_nm", 2, "nm")),
+            ("half-range", fmt_wafer(w, "halfrange_pct", 3, "%")),
+            ("sites measured / fit ok / used",
+             f"{w.sites_measured} / {w.sites_fit_ok} / {w.sites_used}"),
+            ("in spec", fmt_in_spec(w.in_spec, w, view.target_nm is not None)),
+            ("in lot figures", "yes" if w.in_lot_stats else "no")]
+    if w.flag_reason:
+        rows.append(("slot flag", ("edge slot: " if w.edge else "flagged: ") + w.flag_reason))
+    if w.note:
+        rows.append(("left out", w.note))
+    failed = [f for f in view.failed_sites if f.wafer == w.wafer]
+    fail_html = (f"<h4>Failed sites ({len(failed)})</h4>" + _failed_table(failed)) if failed else ""
+    return (f'<article class="wafer" id="wafer-{index}"><h3>Wafer {e(w.wafer)} '
+            f'<span class="meta">slot {w.slot}, {e(w.role)}</span></h3>'
+            f'<div class="wafer-body">{fig}<div>{_kv_table(rows)}{fail_html}</div></div></article>')
+
+
+def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
+    """The report as one HTML string (see the module docstring).
+
+    Parameters
+    ----------
+    view : LotView
+    ds : xarray.Dataset
+        The lot dataset (fit quality, provenance attributes, maps).
+    images : ReportImages, optional
+        Shared image cache (default: a new one on ``outdir`` at ``dpi``).
+    outdir : path-like, optional
+        Folder with the reduce step's PNGs (contact sheet, wafer maps).
+    advice : dict, optional
+        Next-run advice; shown with the cautions beside it.
+    dpi : float
+        Resolution of images rendered here.
+
+    Returns
+    -------
+    str
+    """
+    images = images or ReportImages(view, ds, outdir, dpi=dpi)
+    prov = provenance(ds, advice)
+    lot = view.lot_id
+    meta = [f"furnace: {view.furnace}" if view.furnace else "furnace: not given",
+            f"run date: {view.run_date}" if view.run_date else "run date: not given",
+            f"{len(view.wafers)} wafers measured, {view.n_sites_measured} sites",
+            f"target {view.target_nm:g} nm ± {view.tolerance_pct:g} %" if view.target_nm is not None
+            else "no target"]
+    nav = [("cautions", "Cautions"), ("profile", "Slot profile"), ("wtw", "WTW"),
+           ("wiw", "WIW table"), ("contact", "Contact sheet"), ("wafers", "Wafers"),
+           ("fit", "Fit quality"), ("warnings", "Warnings")]
+    if advice:
+        nav.append(("advice", "Advice"))
+    nav.append(("provenance", "Provenance"))
+    p = []
+    p.append("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+             "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+             f"<title>filmmap report: lot {e(lot)}</title><style>{_CSS}</style></head><body>")
+    p.append(f'<header id="top"><h1>Lot {e(lot)}</h1>')
+    p.append("".join(f'<p class="meta">{e(m)}</p>' for m in meta))
+    p.append(f'<p class="verdict" id="verdict">{e(view.verdict)}</p>')
+    p.append(_cautions_html())
+    p.append("<nav><ul>" + "".join(f'<li><a href="#{a}">{e(t)}</a></li>' for a, t in nav)
+             + "</ul></nav></header>")
+
+    # slot profile
+    p.append('<section id="profile" class="first"><h2>Slot profile</h2><figure>'
+             + _img(images.slot_profile(), SLOT_PROFILE_ALT, SLOT_PROFILE_IMG_ID)
+             + "<figcaption>Wafer mean thickness against boat slot, error bars ± 1 within-wafer "
+             "sigma. Slot 1 is the load (door) end. Edge slots: flagged product slots "
+             "contiguous with an end of the product region.</figcaption></figure>")
+    if view.profile.reasons:
+        p.append("<h3>Flagged slots</h3><ul>" + "".join(
+            f"<li>slot {s}{' (edge)' if s in view.profile.edge_slots else ''}: {e(r)}</li>"
+            for s, r in view.profile.reasons.items()) + "</ul>")
+    p.append("</section>")
+
+    # WTW and WIW
+    p.append('<section id="wtw"><h2>Wafer to wafer (WTW)</h2>'
+             "<p>Over the product wafers with a usable mean; monitors and dummies are not "
+             "counted.</p>" + _kv_table(_wtw_rows(view)) + "</section>")
+    p.append('<section id="wiw"><h2>Within wafer (WIW), per wafer</h2>'
+             "<p>Over the usable sites of each wafer (accepted fit, inside the edge exclusion); "
+             "sigma is the sample standard deviation, NU = 100 sigma / mean, half-range = "
+             "100 (max - min) / (2 mean). Wafers with fewer than "
+             f"{view.min_sites} usable sites are left out of the lot figures.</p>"
+             + _wiw_table(view) + "</section>")
+
+    # contact sheet
+    png, why = images.contact_sheet()
+    p.append('<section id="contact"><h2>Lot contact sheet</h2>')
+    p.append(f"<figure>{_img(png, f'Contact sheet of lot {lot}', 'contact-sheet')}<figcaption>"
+             "Every wafer on one common thickness scale.</figcaption></figure>" if png is not None
+             else f'<p class="missing">No contact sheet: {e(why)}</p>')
+    p.append("</section>")
+
+    # wafers
+    p.append('<section id="wafers"><h2>Wafers</h2>')
+    p.extend(_wafer_section(view, images, i + 1, w) for i, w in enumerate(view.wafers))
+    p.append("</section>")
+
+    # fit quality
+    fq = images.fit_quality()
+    n_fail = len(view.failed_sites)
+    p.append('<section id="fit"><h2>Fit quality</h2><figure>'
+             + _img(fq, "Histogram of fit quality (reduced chi-square) of every measured site",
+                    "fit-quality")
+             + "<figcaption>Reduced chi-square of every measured site, log scale; about 1 when "
+             "the model explains the data down to the noise.</figcaption></figure>")
+    p.append(f"<h3>Failed sites ({n_fail} of {view.n_sites_measured} measured)</h3>")
+    if n_fail:
+        counts = ", ".join(f"{r}: {c}" for r, c in view.failure_counts.items())
+        p.append(f"<p>By reason: {e(counts)}</p>" + _failed_table(view.failed_sites))
+    else:
+        p.append("<p>None: every measured site has an accepted fit.</p>")
+    p.append("</section>")
+
+    # warnings and notes
+    p.append('<section id="warnings"><h2>Warnings and notes</h2>')
+    p.append("<h3>Warnings</h3>" + ("<ul>" + "".join(f"<li>{e(x)}</li>" for x in view.warnings)
+                                    + "</ul>" if view.warnings else "<p>None.</p>"))
+    if view.notes:
+        p.append("<h3>Notes on the slot profile</h3><ul>"
+                 + "".join(f"<li>{e(x)}</li>" for x in view.notes) + "</ul>")
+    p.append("</section>")
+
+    # advice
+    if advice:
+        p.append('<section id="advice"><h2>Advice for the next run (advisory only)</h2>'
+                 '<div class="advice-wrap"><div>' + _advice_value(dict(advice)) + "</div><aside>"
+                 + _cautions_html("h3", with_id=False) + "</aside></div></section>")
+
+    # provenance
+    p.append('<section id="provenance"><h2>Provenance</h2>')
+    p.append(_kv_table([("software (reduction)", prov["software"]),
+                        ("software (report)", prov["report_software"]),
+                        ("results created", prov["created"] or "not recorded"),
+                        ("report created", prov["report_created"]),
+                        ("technique", prov["technique"] + (f", angle {prov['angle_deg']} deg"
+                                                           if prov["angle_deg"] else "")),
+                        ("wavelength range", prov["wavelength_range_nm"] or "not recorded"),
+                        ("fitted parameters", prov["fitted_parameters"] or "not recorded")]))
+    p.append(f"<h3>Input files ({len(prov['inputs'])})</h3>")
+    if prov["inputs_problem"]:
+        p.append(f'<p class="missing">{e(prov["inputs_problem"])}</p>')
+    if prov["inputs"]:
+        p.append('<table><thead><tr><th class="text">file</th><th class="text">SHA-256</th>'
+                 "</tr></thead><tbody>" + "".join(
+                     f'<tr>{_cell(i["file"], "text")}<td class="text"><code>{e(i["sha256"])}'
+                     "</code></td></tr>" for i in prov["inputs"]) + "</tbody></table>")
+    p.append(f"<h3>Film stack and material sources</h3><pre>{e(prov['stack'])}</pre>")
+    p.append('<h3>Models and their published sources</h3><table><thead><tr>'
+             '<th class="text">model</th><th class="text">source</th></tr></thead><tbody>'
+             + "".join(f"<tr>{_cell(m, 'text')}{_cell(s, 'text')}</tr>" for m, s in prov["models"])
+             + "</tbody></table>")
+    p.append("</section>")
+    p.append(f"<footer>filmmap report of lot {e(lot)}; {e(prov['report_software'])}. "
+             "Advisory only: see the cautions at the top.</footer></body></html>\n")
+    return "".join(p)
+
+
+def write_html_report(view, ds, outdir, *, images=None, advice=None, dpi=100):
+    """Write ``OUTDIR/report.html`` atomically; return its path.
+
+    Parameters
+    ----------
+    view : LotView
+    ds : xarray.Dataset
+    outdir : str or path-like
+        Output folder (must exist); its ``contact_sheet.png`` and
+        ``figures/<wafer>.png`` are embedded when present, rendered otherwise.
+    images : ReportImages, optional
+        Shared image cache (pass the same one to `write_pdf_report`).
+    advice : dict, optional
+        Next-run advice.
+    dpi : float
+        Resolution of images rendered here.
+    """
+    text = render_html(view, ds, images=images, outdir=outdir, advice=advice, dpi=dpi)
+    return write_text_atomic(Path(outdir) / "report.html", text)
+
+
+__all__ = ["render_html", "write_html_report", "SLOT_PROFILE_IMG_ID", "SLOT_PROFILE_ALT", "e",
+           "is_number"]

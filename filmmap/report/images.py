@@ -1,0 +1,128 @@
+"""PNG images of a report, made once and shared by the HTML and PDF writers.
+
+Wafer maps and the lot contact sheet are taken from the files the reduce step
+wrote (``OUTDIR/figures/<wafer>.png``, ``OUTDIR/contact_sheet.png``) when they
+exist, and rendered here otherwise (``render_missing=True``). The slot profile
+and the fit-quality histogram are always rendered from the `LotView`. An image
+that cannot be made is None with a plain-text reason: the report then says
+why, it never shows a placeholder picture.
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import numpy as np
+
+from filmmap.report.fitquality import fit_quality_figure
+from filmmap.report.slotplot import slot_profile_figure
+
+
+def figure_png(fig, dpi=None):
+    """PNG bytes of a matplotlib Figure."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi if dpi is not None else fig.dpi)
+    return buf.getvalue()
+
+
+class ReportImages:
+    """Lazily made, cached PNG images of one lot report.
+
+    Parameters
+    ----------
+    view : LotView
+    ds : xarray.Dataset
+        The lot dataset (thickness, fit_ok, x_mm, y_mm for rendered maps).
+    outdir : str or path-like, optional
+        Output folder where the reduce step wrote its PNGs.
+    dpi : float
+        Resolution of the images rendered here.
+    render_missing : bool
+        Render wafer maps and the contact sheet that are not on disk.
+    """
+
+    def __init__(self, view, ds, outdir=None, *, dpi=100, render_missing=True):
+        self.view, self.ds, self.dpi = view, ds, float(dpi)
+        self.outdir = None if outdir is None else Path(outdir)
+        self.render_missing = bool(render_missing)
+        self._cache = {}
+
+    def _cached(self, key, make):
+        if key not in self._cache:
+            self._cache[key] = make()
+        return self._cache[key]
+
+    def slot_profile(self):
+        """PNG bytes of the slot-profile plot."""
+        return self._cached("slot", lambda: figure_png(slot_profile_figure(self.view,
+                                                                           dpi=self.dpi)))
+
+    def fit_quality(self):
+        """PNG bytes of the fit-quality histogram."""
+        return self._cached("fitq", lambda: figure_png(fit_quality_figure(self.ds, dpi=self.dpi)))
+
+    def _on_disk(self, relpath):
+        if self.outdir is None:
+            return None
+        path = self.outdir / relpath
+        return path.read_bytes() if path.is_file() else None
+
+    def contact_sheet(self):
+        """``(png bytes or None, reason)`` of the lot contact sheet."""
+        return self._cached("sheet", self._make_contact_sheet)
+
+    def _make_contact_sheet(self):
+        data = self._on_disk("contact_sheet.png")
+        if data is not None:
+            return data, ""
+        if not self.render_missing:
+            return None, "contact_sheet.png was not written by the reduce step"
+        from filmmap.outputs import coordinate_groups
+        from filmmap.wafermap.figures import lot_contact_sheet
+
+        ds = self.ds
+        groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
+        if len(groups) != 1:
+            return None, "the wafers do not share one site layout: no common contact sheet"
+        _, x, y, present = groups[0]
+        t, ok = ds["thickness"].values, ds["fit_ok"].values
+        try:
+            fig = lot_contact_sheet(np.where(present, t, np.nan), ok & present, x, y,
+                                    self.view.diameter_mm, self.view.edge_exclusion_mm,
+                                    wafer_ids=[str(w) for w in ds["wafer"].values],
+                                    slots=[int(s) for s in ds["slot"].values],
+                                    dpi=self.dpi, panel_in=1.6,
+                                    title=f"lot {self.view.lot_id}: thickness (nm), common scale")
+            return figure_png(fig), ""
+        except Exception as exc:  # noqa: BLE001 - the report says why, it does not abort
+            return None, f"the contact sheet could not be drawn ({type(exc).__name__}: {exc})"
+
+    def wafer_map(self, wafer):
+        """``(png bytes or None, reason)`` of one wafer's thickness map."""
+        return self._cached(("map", str(wafer)), lambda: self._make_wafer_map(str(wafer)))
+
+    def _make_wafer_map(self, wafer):
+        from filmmap.wafermap.figures import safe_filename, wafer_map_figure
+
+        data = self._on_disk(Path("figures") / (safe_filename(wafer) + ".png"))
+        if data is not None:
+            return data, ""
+        if not self.render_missing:
+            return None, "the reduce step wrote no map for this wafer"
+        ds = self.ds
+        ids = [str(w) for w in ds["wafer"].values]
+        i = ids.index(wafer)
+        x, y = ds["x_mm"].values[i], ds["y_mm"].values[i]
+        present = np.isfinite(x) & np.isfinite(y)
+        t = np.where(present, ds["thickness"].values[i], np.nan)
+        ok = ds["fit_ok"].values[i] & present
+        if not np.any(ok & np.isfinite(t)):
+            return None, "no site with an accepted fit: nothing to map"
+        try:
+            fig = wafer_map_figure(t, ok, np.where(present, x, 0.0), np.where(present, y, 0.0),
+                                   self.view.diameter_mm, self.view.edge_exclusion_mm,
+                                   wafer_id=wafer, slot=int(ds["slot"].values[i]), dpi=self.dpi)
+            return figure_png(fig), ""
+        except Exception as exc:  # noqa: BLE001 - the report says why, it does not abort
+            return None, f"the map could not be drawn ({type(exc).__name__}: {exc})"
