@@ -253,3 +253,14 @@ def test_demo_runs(tmp_path):
     assert bool(ds["fit_ok"].all())
     first = (tmp_path / "demo" / "lot" / "lot.toml").read_text().splitlines()[0]
     assert "INVENTED" in first
+
+
+def test_demo_generator_is_deterministic_and_labelled(tmp_path):
+    from filmmap.demo import generate_demo_lot
+    a = generate_demo_lot(tmp_path / "a").parent
+    b = generate_demo_lot(tmp_path / "b").parent
+    files = sorted(p.relative_to(a) for p in a.rglob("*") if p.is_file())
+    assert len(files) >= 26
+    for rel in files:
+        assert (a / rel).read_bytes() == (b / rel).read_bytes(), rel
+        assert b"INVENTED" in (a / rel).read_bytes()[:200], rel
