@@ -22,7 +22,7 @@ import numpy as np
 import tmm
 from scipy.optimize import least_squares
 
-from filmmap.fitting import fit_spectra
+from filmmap.fitting import default_sigma, fit_spectra
 from filmmap.optics import Layer, Stack
 
 N_SPECTRA = 7350
@@ -63,7 +63,9 @@ def main(repeats=3, sample=3):
     for k in range(sample):
         # the same start for the reference as the truth + 3 nm: inside the right basin,
         # i.e. the reference is spared the global search filmmap does
-        sol = least_squares(lambda p: tmm_R(p[0]) - R[k], x0=[d_true[k] + 3.0], method="lm")
+        sigma = default_sigma("reflectance", R[k:k + 1], WL.size)[0]   # filmmap's weights
+        sol = least_squares(lambda p: (tmm_R(p[0]) - R[k]) / sigma, x0=[d_true[k] + 3.0],
+                            method="lm", xtol=1e-12)
         ref_vals.append(sol.x[0])
     t_ref_per = (time.perf_counter() - t0) / sample
     agree = np.max(np.abs(np.array(ref_vals) - res.values[:sample, 0]))

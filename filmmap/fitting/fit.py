@@ -397,8 +397,11 @@ def _search_and_refine(ctx, y, s, mk):
             P0[:, i] = f.start
 
     # --- local refinement of every kept candidate, all in one batch ---------
-    Pc, chi2c, JTJc, rc, itc, convc = levenberg_marquardt(model, P0, y_clean[rows], sqrt_w[rows],
-                                                          lo, hi, xtol, max_iter=max_iter)
+    # one candidate per spectrum is the common case: then no copy of the data is needed
+    single = rows.size == n and np.array_equal(rows, np.arange(n))
+    Pc, chi2c, JTJc, rc, itc, convc = levenberg_marquardt(
+        model, P0, y_clean if single else y_clean[rows], sqrt_w if single else sqrt_w[rows],
+        lo, hi, xtol, max_iter=max_iter)
 
     # --- choose per spectrum --------------------------------------------------
     dof = np.maximum(n_used - p, 1)
@@ -414,7 +417,7 @@ def _search_and_refine(ctx, y, s, mk):
     thick_idx = next((i for i, f in enumerate(free) if f.kind == "thickness"), 0)
     nominal_first = free[thick_idx].start
     values_raw = Pc[best_of]
-    r_sel = rc[best_of]
+    r_sel = rc if single else rc[best_of]
     chi2_sel = chi2c[best_of]
     JTJ_sel = JTJc[best_of]
     it_sel = itc[best_of]
@@ -489,7 +492,7 @@ def _search_and_refine(ctx, y, s, mk):
     # unweighted rms residual in data units, at the last evaluated point (the
     # final Gauss-Newton step below xtol changes it only in second order)
     with np.errstate(invalid="ignore", divide="ignore"):
-        r_plain = np.where(sw > 0, r_sel / sw, 0.0)
+        r_plain = np.divide(r_sel, sw, out=np.zeros_like(r_sel), where=sw > 0)
     rms = np.sqrt(np.einsum("nm,nm->n", r_plain, r_plain) / np.maximum(n_used, 1))
     return dict(values=values_raw, sigma=sigma_out, reduced_chi2=red, rms=rms,
                 iterations=it_sel, converged=conv_sel, n_used=n_used, reason=reason,
