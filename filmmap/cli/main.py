@@ -60,10 +60,12 @@ def run_reduce(lotfile, outdir, workers=1, figures=True, quiet=False, keep_spect
                figure_workers=None):
     """Reduce a lot and write its outputs; returns (WrittenLot, seconds)."""
     from filmmap.io.lotfile import read_lot_file
+    from filmmap.io.publish import check_outdir, staged_output
     from filmmap.outputs import write_lot
     from filmmap.reduce import reduce_lot
 
     t0 = time.perf_counter()
+    check_outdir(outdir)  # refuse a foreign folder before spending time on fits
     n_files = len(read_lot_file(lotfile).measurement.files)
     if workers is None:
         workers = 2 if (os.cpu_count() or 1) >= 2 and n_files >= 16 else 1
@@ -76,11 +78,14 @@ def run_reduce(lotfile, outdir, workers=1, figures=True, quiet=False, keep_spect
     finally:
         if bar is not None:
             bar.close()
-    written = write_lot(reduction, outdir, keep_spectra=keep_spectra)
-    if figures:
-        from filmmap.figures_out import write_figures
-        written.files.update(write_figures(written.dataset, reduction.config, outdir,
-                                           workers=figure_workers or max(2, workers)))
+    # every output goes to a staging folder that replaces OUTDIR only once complete
+    with staged_output(outdir) as stage:
+        written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+        if figures:
+            from filmmap.figures_out import write_figures
+            written.files.update(write_figures(written.dataset, reduction.config, stage,
+                                               workers=figure_workers or max(2, workers)))
+    written.outdir = Path(outdir)
     return reduction, written, time.perf_counter() - t0
 
 

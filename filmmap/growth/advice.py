@@ -16,11 +16,11 @@ of the same recipe:
    not the spread; to make the answer unique and keep trims small a Tikhonov term of
    ``trim_regularisation`` (default 1e-2) times the mean squared column norm of the data
    term is added.  It selects the smallest trims that flatten the boat and leaves the
-   mean to the time; it shortens each trim by about 1 %, far below the model's
-   accuracy.  (Without it the uniform part of the trims would be set by a second-order
-   effect, the slightly different relative temperature sensitivity of thin and thick
-   slots, which buys almost nothing: on the demo furnace a 0.9 K uniform shift for a
-   0.5 % smaller spread.)
+   mean to the time; it makes each trim about 1 % smaller than the unregularised
+   optimum, far below the model's accuracy.  (Without it the uniform part of the trims
+   would be set by a second-order effect, the slightly different relative temperature
+   sensitivity of thin and thick slots, which buys almost nothing: on the demo furnace a
+   0.9 K uniform shift for a 0.5 % smaller spread.)
    With ``reference_zone`` set, that zone's trim is held at 0 instead and the others
    are trimmed relative to it.
 3. Time: with those trims, the duration of ``adjust_step`` that puts the mean of the
@@ -232,9 +232,11 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     orientation : str
         Silicon orientation, ``"100"`` or ``"111"``.
     initial_nm : float
-        Oxide before the first step, nm (default 1.5, native oxide).
+        Oxide before the first step, nm (default 1.5, native oxide), the same for every
+        wafer.
     pressure_atm : float, mapping or None
-        Oxidant partial pressure, atm, as for `integrate_recipe` (None: reference pressure).
+        Oxidant partial pressure, atm, one value for all wafers, as for
+        `integrate_recipe` (None: reference pressure).
     thin_regime : str
         Initial-regime treatment of dry steps, as for `integrate_recipe`.
     max_offset_C : float
@@ -332,6 +334,7 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
         raise FilmmapInputError(f"reference zone {reference_zone!r} is not a zone "
                                 f"({', '.join(map(repr, names))})", field="reference_zone")
     slots, mean, roles = _check_wafers(slot, mean_nm, role)
+    initial_nm = float(initial_nm)
     m0 = float(st[k].minutes)
     step_name = st[k].name or str(k)
     model = _Model(st, k, orientation, initial_nm, pressure_atm, thin_regime)
@@ -340,7 +343,8 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     cal = calibrate_slots(st, slots, mean, orientation=orientation, initial_nm=initial_nm,
                           pressure_atm=pressure_atm, thin_regime=thin_regime)
     by_slot = {str(int(s)): _f(o) for s, o in zip(slots, cal.offset_C)}
-    weight = np.where(roles == "product", 1.0, np.where(roles == "monitor", float(monitor_weight), 0.0))
+    weight = np.where(roles == "product", 1.0,
+                      np.where(roles == "monitor", float(monitor_weight), 0.0))
     product = (roles == "product") & cal.ok
     n_p = int(product.sum())
     bad_cal = [int(s) for s, status in zip(slots, cal.status) if status not in ("ok", "missing")]
@@ -489,6 +493,11 @@ def roles_from_boat(slot, boat):
     -------
     numpy.ndarray of str
         ``"dummy"``, ``"monitor"`` or ``"product"`` per wafer.
+
+    References
+    ----------
+    .. [1] Dummy wafers at the boat ends, monitors among the product: common practice,
+       no source.
     """
     s = np.asarray(slot).ravel().astype(int)
     if boat is None:

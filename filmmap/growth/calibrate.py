@@ -113,8 +113,8 @@ def normalise_zones(zones):
                 name, first, last = z
             first_i, last_i = int(first), int(last)
         except (KeyError, TypeError, ValueError, AttributeError):
-            raise FilmmapInputError(f"zone {i + 1}: expected (name, first_slot, last_slot), got {z!r}",
-                                    field="zones") from None
+            raise FilmmapInputError(f"zone {i + 1}: expected (name, first_slot, last_slot), "
+                                    f"got {z!r}", field="zones") from None
         if first_i != first or last_i != last or not 1 <= first_i <= last_i:
             raise FilmmapInputError(f"zone {name!r}: slots {first}-{last}; expected whole numbers "
                                     "with 1 <= first_slot <= last_slot", field="zones")
@@ -146,6 +146,11 @@ def steps_from_config(config):
     FilmmapInputError
         When a step fails `validate_steps` (e.g. an oxidising temperature outside the
         model's accepted range).
+
+    References
+    ----------
+    .. [1] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965) (the kinetics
+       the steps feed).
     """
     if not config.recipe:
         return ()
@@ -166,6 +171,10 @@ def zones_from_config(config):
     -------
     tuple of (str, int, int)
         Empty when the lot file has no ``[furnace]`` table.
+
+    References
+    ----------
+    .. [1] Zone-to-slot model: common practice, no source.
     """
     if config.furnace is None:
         return ()
@@ -187,6 +196,10 @@ def with_minutes(steps, step, minutes):
     Returns
     -------
     tuple of Step
+
+    References
+    ----------
+    .. [1] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965).
     """
     k = step_index(steps, step)
     out = list(steps)
@@ -278,6 +291,10 @@ class SlotCalibration:
         ``"no-convergence"`` (the root finder ran out of iterations; not expected).
     search_C : (float, float)
         Offset range searched, K.
+
+    References
+    ----------
+    .. [1] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965).
     """
 
     slot: np.ndarray
@@ -457,6 +474,10 @@ class ZoneFit:
         Transition width of the gain model, slots.
     shape : str
         Transition shape of the gain model.
+
+    References
+    ----------
+    .. [1] Zone-to-slot coupling model: common practice, no source.
     """
 
     names: tuple
@@ -475,7 +496,8 @@ class ZoneFit:
 
     def as_dict(self):
         """Zone name -> relative error in K (None where undetermined)."""
-        return {n: (None if not np.isfinite(e) else float(e)) for n, e in zip(self.names, self.error_C)}
+        return {n: (float(e) if np.isfinite(e) else None)
+                for n, e in zip(self.names, self.error_C)}
 
 
 def fit_zones(slot, offset_C, zones, weight=None, *, width_slots=0.0, shape="logistic",

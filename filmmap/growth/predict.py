@@ -57,6 +57,11 @@ def apply_overrides(steps, overrides):
     FilmmapInputError
         For an unknown step, a key that does not fit the step (``at_C`` on a ramp, say),
         or a value that fails validation (``field='overrides.<step>.<key>'``).
+
+    References
+    ----------
+    .. [1] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965) (the kinetics
+       the steps feed).
     """
     out = list(steps)
     changed = []
