@@ -40,6 +40,17 @@ def build_parser():
                      help="also write spectra.nc with measured and model spectra and residuals")
     red.add_argument("--debug", action="store_true", help="show tracebacks")
 
+    pred = sub.add_parser("predict", help="predicted thickness by zone for the lot file's recipe")
+    pred.add_argument("lotfile", help="lot file (TOML) with [[recipe.step]]")
+    pred.add_argument("--set", action="append", default=[], metavar="STEP.FIELD=VALUE",
+                      help="what-if change of a step, e.g. --set wet.minutes=170 or "
+                           "--set wet.at_C=1005 (repeatable)")
+    pred.add_argument("--trim", action="append", default=[], metavar="ZONE=KELVIN",
+                      help="what-if zone trim, e.g. --trim load=+2 (repeatable)")
+    pred.add_argument("--advice", metavar="ADVICE_JSON",
+                      help="use the calibrated furnace profile of an advice.json")
+    pred.add_argument("--debug", action="store_true", help="show tracebacks")
+
     demo = sub.add_parser("demo", help="generate the invented demo lot and reduce it")
     demo.add_argument("-o", "--output", default="filmmap-demo", metavar="DIR",
                       help="folder for the demo lot (DIR/lot) and its results (DIR/results)")
@@ -81,12 +92,58 @@ def run_reduce(lotfile, outdir, workers=1, figures=True, quiet=False, keep_spect
     # every output goes to a staging folder that replaces OUTDIR only once complete
     with staged_output(outdir) as stage:
         written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+        advice = write_advice(reduction.config, written, stage)
+        if advice is not None:
+            written.files["advice.json"] = stage / "advice.json"
+        written.advice = advice
         if figures:
             from filmmap.figures_out import write_figures
             written.files.update(write_figures(written.dataset, reduction.config, stage,
                                                workers=figure_workers or max(2, workers)))
     written.outdir = Path(outdir)
     return reduction, written, time.perf_counter() - t0
+
+
+MIN_SITES_FOR_LOT = 5
+"""A wafer with fewer usable sites is left out of lot statistics and advice."""
+
+
+def write_advice(config, written, folder):
+    """advice.json when the lot file has a recipe and a target; returns the advice or None."""
+    import json
+
+    import numpy as np
+
+    from filmmap.growth.advice import advise_from_config
+    from filmmap.io.atomic import write_text_atomic
+
+    if not config.recipe or config.target is None:
+        return None
+    ds = written.dataset
+    usable = ds["sites_used"].values >= MIN_SITES_FOR_LOT
+    mean = np.where(usable, ds["mean_nm"].values, np.nan)
+    advice = advise_from_config(config, ds["slot"].values, mean, ds["role"].values,
+                                n_failed_sites=written.n_failed, n_sites=written.n_sites)
+    for w in ds.wafer.values[~usable]:
+        advice["warnings"].append(f"wafer {w} has fewer than {MIN_SITES_FOR_LOT} usable sites "
+                                  "and was left out of the calibration")
+    write_text_atomic(folder / "advice.json", json.dumps(advice, indent=1, allow_nan=False) + "\n")
+    return advice
+
+
+def print_advice(advice, stream=sys.stdout):
+    """A few lines of advice with its caution (the full record is advice.json)."""
+    p = stream.write
+    p(f"  advice (advisory only): {advice['adjust_step']} {advice['minutes_now']:.1f} -> "
+      f"{advice['minutes_next']:.1f} min")
+    if advice["zone_offsets_C"]:
+        p("; zone trims " + ", ".join(f"{k} {v:+.2f} C" for k, v in advice["zone_offsets_C"].items()))
+    p("\n")
+    now, nxt = advice["predicted_wtw_pct_now"], advice["predicted_wtw_pct_next"]
+    if now is not None and nxt is not None:
+        p(f"  predicted WTW: {now:.2f} % now -> {nxt:.2f} % next\n")
+    for w in advice["warnings"]:
+        p(f"  warning: {w}\n")
 
 
 def print_summary(reduction, written, seconds, stream=sys.stdout):
@@ -111,6 +168,8 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
         p(f"    {name}\n")
     if n_maps:
         p(f"    figures/  ({n_maps} wafer maps, PNG)\n")
+    if getattr(written, "advice", None):
+        print_advice(written.advice, stream)
     p(f"  done in {seconds:.1f} s\n")
 
 
@@ -143,13 +202,72 @@ def cmd_demo(args):
     return 0
 
 
+def _parse_assignments(items, option, kind):
+    out = {}
+    for item in items:
+        key, sep, value = item.partition("=")
+        try:
+            number = float(value)
+        except ValueError:
+            number = None
+        if not sep or number is None:
+            raise FilmmapInputError(f"expected {kind}=NUMBER, got {item!r}", field=option)
+        out[key.strip()] = number
+    return out
+
+
+def cmd_predict(args):
+    import json
+
+    from filmmap.growth.predict import predict_by_zone
+    from filmmap.io.lotfile import read_lot_file
+
+    config = read_lot_file(args.lotfile)
+    overrides = {}
+    for key, value in _parse_assignments(args.set, "--set", "STEP.FIELD").items():
+        step, dot, fld = key.rpartition(".")
+        if not dot:
+            raise FilmmapInputError(f"expected STEP.FIELD=NUMBER, got {key!r}", field="--set")
+        overrides.setdefault(step, {})[fld] = value
+    trims = _parse_assignments(args.trim, "--trim", "ZONE")
+    slot_offsets = None
+    if args.advice:
+        try:
+            with open(args.advice, encoding="utf-8") as fh:
+                slot_offsets = json.load(fh)["effective_offset_C_by_slot"]
+        except (OSError, ValueError, KeyError) as exc:
+            raise FilmmapInputError(f"cannot read effective_offset_C_by_slot: {exc}",
+                                    file=args.advice) from None
+    table = predict_by_zone(config, overrides or None, trims or None, slot_offsets_C=slot_offsets)
+    print(f"lot {config.lot.id}: predicted oxide by zone for the recipe"
+          + (" with changes" if overrides or trims else " as written"))
+    for st in table["recipe"]:
+        temp = (f"{st['at_C']:g} C" if st.get("at_C") is not None
+                else f"{st.get('from_C')}->{st.get('to_C')} C")
+        print(f"  step {st['name']:<14} {st['ambient']:<4} {st['minutes']:8.1f} min  {temp}"
+              + ("   (changed)" if st.get("changed") else ""))
+    print(f"  {'zone':<10} {'slots':>7} {'trim K':>7} {'mean nm':>9} {'min':>8} {'max':>8} {'vs target':>9}")
+    for z in table["zones"]:
+        dev = "" if z["deviation_pct"] is None else f"{z['deviation_pct']:+.2f} %"
+        print(f"  {z['zone']:<10} {z['first_slot']:>3}-{z['last_slot']:<3} {z['trim_C']:>7.2f} "
+              f"{z['mean_nm']:>9.2f} {z['min_nm']:>8.2f} {z['max_nm']:>8.2f} {dev:>9}")
+    if table["product_mean_nm"] is not None:
+        wtw = table["product_wtw_pct"]
+        print(f"  product mean {table['product_mean_nm']:.2f} nm"
+              + (f", WTW {wtw:.2f} %" if wtw is not None else ""))
+    for note in table["notes"]:
+        print(f"  note: {note}")
+    print(CAUTION)
+    return 0
+
+
 def main(argv=None):
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.command is None:
         parser.print_help()
         return 0
-    handler = {"reduce": cmd_reduce, "demo": cmd_demo}[args.command]
+    handler = {"reduce": cmd_reduce, "demo": cmd_demo, "predict": cmd_predict}[args.command]
     try:
         return handler(args)
     except FilmmapInputError as exc:

@@ -1,0 +1,50 @@
+"""advice.json from `filmmap reduce` and the `filmmap predict` command, on the invented demo lot."""
+
+import json
+
+import pytest
+
+from filmmap.demo import demo_temperature_offset_C, generate_demo_lot
+
+from test_reduce import run_cli
+
+PINNED = ["adjust_step", "minutes_now", "minutes_next", "zone_offsets_C",
+          "effective_offset_C_by_slot", "predicted_wtw_pct_now", "predicted_wtw_pct_next",
+          "warnings"]
+
+
+@pytest.fixture(scope="module")
+def demo_results(tmp_path_factory):
+    root = tmp_path_factory.mktemp("demo")
+    lot = generate_demo_lot(root / "lot")
+    r = run_cli("reduce", lot, "-o", root / "out", "--no-figures")
+    assert r.returncode == 0, r.stderr
+    return lot, root / "out", r.stdout
+
+
+def test_reduce_writes_pinned_advice(demo_results):
+    lot, out, stdout = demo_results
+    advice = json.loads((out / "advice.json").read_text())
+    assert list(advice)[:len(PINNED)] == PINNED
+    assert advice["adjust_step"] == "wet" and advice["minutes_now"] == 115.0
+    assert set(advice["zone_offsets_C"]) == {"load", "center", "source"}
+    assert all(abs(v) <= 5.0 for v in advice["zone_offsets_C"].values())   # max_offset_C
+    assert abs(advice["minutes_next"] / advice["minutes_now"] - 1) <= 0.15   # max_time_change_pct
+    # the invented tube is cold at the load end: the oxide thermometer reads it (demo.py's profile)
+    eff = {int(k): v for k, v in advice["effective_offset_C_by_slot"].items() if v is not None}
+    assert eff[4] < eff[25] - 2.0
+    true_diff = demo_temperature_offset_C(4) - demo_temperature_offset_C(25)
+    assert abs((eff[4] - eff[25]) - true_diff) < 0.5
+    assert advice["zone_offsets_C"]["load"] > advice["zone_offsets_C"]["source"]
+    assert advice["predicted_wtw_pct_next"] < advice["predicted_wtw_pct_now"]
+    assert "advisory only" in stdout
+
+
+def test_predict_prints_zones_and_caution(demo_results):
+    lot, out, _ = demo_results
+    r = run_cli("predict", lot, "--set", "wet.minutes=130", "--trim", "load=+2",
+                "--advice", out / "advice.json")
+    assert r.returncode == 0, r.stderr
+    assert "(changed)" in r.stdout and "load" in r.stdout and "never drives equipment" in r.stdout
+    bad = run_cli("predict", lot, "--set", "nosuchstep.minutes=10")
+    assert bad.returncode == 2 and "nosuchstep" in bad.stderr
