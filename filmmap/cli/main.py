@@ -90,22 +90,35 @@ def run_reduce(lotfile, outdir, workers=1, figures=True, quiet=False, keep_spect
         if bar is not None:
             bar.close()
     # every output goes to a staging folder that replaces OUTDIR only once complete
+    from filmmap.report import lot_view, write_summary_csv, write_summary_json
+
     with staged_output(outdir) as stage:
         written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+        view = lot_view(written.dataset, reduction.config, min_sites=MIN_SITES_FOR_LOT)
+        written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
+        written.files["summary.json"] = write_summary_json(view, stage)
         advice = write_advice(reduction.config, written, stage)
         if advice is not None:
             written.files["advice.json"] = stage / "advice.json"
         written.advice = advice
+        written.view = view
         if figures:
             from filmmap.figures_out import write_figures
+            from filmmap.report import ReportImages, write_html_report, write_pdf_report
+
             written.files.update(write_figures(written.dataset, reduction.config, stage,
                                                workers=figure_workers or max(2, workers)))
+            images = ReportImages(view, written.dataset, stage)
+            written.files["report.html"] = write_html_report(view, written.dataset, stage,
+                                                             images=images, advice=advice)
+            written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
+                                                           images=images, advice=advice)
     written.outdir = Path(outdir)
     return reduction, written, time.perf_counter() - t0
 
 
-MIN_SITES_FOR_LOT = 5
-"""A wafer with fewer usable sites is left out of lot statistics and advice."""
+from filmmap.report.lotview import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT  # noqa: E402
+# a wafer with fewer usable sites is left out of lot statistics and advice
 
 
 def write_advice(config, written, folder):
@@ -157,6 +170,11 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
     if written.failures:
         p("  failures by reason: " + ", ".join(f"{k} x{v}" for k, v in written.failures.items()) + "\n")
     p(f"  mean thickness (all ok sites): {written.mean_nm:.2f} nm\n")
+    view = getattr(written, "view", None)
+    if view is not None:
+        p(f"  verdict: {view.verdict}\n")
+        for w in view.warnings[:5]:
+            p(f"  warning: {w}\n")
     if "role" in ds.coords:
         prod = ds["mean_nm"].where(ds["role"] == "product")
         if prod.notnull().any():

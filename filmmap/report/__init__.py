@@ -1,1 +1,77 @@
+"""Lot view and report: summary.json, summary.csv rows, report.html and report.pdf.
 
+Typical use after a reduce (``ds`` = the lot dataset, ``config`` = the lot
+configuration, ``outdir`` = the output folder holding the PNG figures)::
+
+    from filmmap.report import write_reports
+    paths = write_reports(ds, config, outdir)             # advice=... when available
+
+or step by step::
+
+    view = lot_view(ds, config)                           # LotView
+    write_summary_json(view, outdir)
+    images = ReportImages(view, ds, outdir)               # shared PNG cache
+    write_html_report(view, ds, outdir, images=images)
+    write_pdf_report(view, ds, outdir, images=images)
+"""
+
+from pathlib import Path
+
+from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS, CAUTIONS_TITLE
+from filmmap.report.fitquality import draw_fit_quality, fit_quality_figure
+from filmmap.report.html import render_html, write_html_report
+from filmmap.report.images import ReportImages
+from filmmap.report.lotview import DEFAULT_MIN_SITES, FailedSite, LotView, WaferLine, lot_view
+from filmmap.report.pdf import BASE_LOT_PAGES, lot_page_count, pdf_page_plan, write_pdf_report
+from filmmap.report.slotplot import draw_slot_profile, slot_profile_figure
+from filmmap.report.summary_json import (SUMMARY_CSV_COLUMNS, summary_csv_rows, summary_dict,
+                                         wafer_rows, write_summary_csv, write_summary_json)
+
+
+def write_reports(ds, config, outdir, *, advice=None, min_sites=DEFAULT_MIN_SITES, dpi=100,
+                  pdf=True, html=True):
+    """Write summary.json, report.html and report.pdf for a reduced lot.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The lot dataset (as written to lot.nc).
+    config : LotConfig
+        The lot configuration.
+    outdir : str or path-like
+        Output folder (must exist); PNGs already there are embedded.
+    advice : dict, optional
+        Next-run advice to show (with the cautions).
+    min_sites : int
+        Fewest usable sites for a wafer to enter the lot statistics.
+    dpi : float
+        Resolution of images rendered for the report.
+    pdf, html : bool
+        Write report.pdf / report.html.
+
+    Returns
+    -------
+    dict
+        ``{"summary.json": path, "report.html": path, "report.pdf": path}``
+        (the written ones) and ``"view"``: the `LotView`.
+    """
+    outdir = Path(outdir)
+    view = lot_view(ds, config, min_sites=min_sites)
+    out = {"summary.json": write_summary_json(view, outdir)}
+    images = ReportImages(view, ds, outdir, dpi=dpi)
+    if html:
+        out["report.html"] = write_html_report(view, ds, outdir, images=images, advice=advice)
+    if pdf:
+        out["report.pdf"] = write_pdf_report(view, ds, outdir, images=images, advice=advice)
+    out["view"] = view
+    return out
+
+
+__all__ = [
+    "lot_view", "LotView", "WaferLine", "FailedSite", "DEFAULT_MIN_SITES",
+    "summary_dict", "wafer_rows", "summary_csv_rows", "write_summary_json", "write_summary_csv",
+    "SUMMARY_CSV_COLUMNS", "slot_profile_figure", "draw_slot_profile", "fit_quality_figure",
+    "draw_fit_quality", "render_html", "write_html_report", "write_pdf_report", "pdf_page_plan",
+    "lot_page_count", "BASE_LOT_PAGES", "ReportImages", "CAUTIONS", "CAUTION_PARAGRAPHS",
+    "CAUTIONS_TITLE", "write_reports",
+]

@@ -16,6 +16,7 @@ import matplotlib
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter
 
 from filmmap.report.lotview import NOT_MEASURED
 
@@ -23,6 +24,14 @@ X_LABEL = "Fit quality: reduced χ² (log scale)"
 Y_LABEL = "Sites"
 
 _VIRIDIS = matplotlib.colormaps["viridis"]
+
+
+def _minor_label(value, _pos=None):
+    """Label the 2 and 5 minor ticks of a log axis in plain numbers ('0.2', '5', '20')."""
+    if not value > 0:
+        return ""
+    mantissa = value / 10 ** math.floor(math.log10(value) + 1e-9)
+    return f"{value:g}" if round(mantissa) in (2, 5) else ""
 
 
 def fit_quality_values(ds):
@@ -72,6 +81,9 @@ def draw_fit_quality(ax, ds, *, fontsize=8):
         ax.hist(data, bins=bins, stacked=True, color=colours, label=labels, edgecolor="white",
                 linewidth=0.4)
         ax.set_xscale("log")
+        plain = FuncFormatter(lambda v, _pos: f"{v:g}")
+        ax.xaxis.set_major_formatter(plain)
+        ax.xaxis.set_minor_formatter(FuncFormatter(_minor_label))
         ax.axvline(1.0, color="black", lw=0.9, ls="--", label="reduced χ² = 1 (noise level)")
         ax.legend(fontsize=fontsize - 0.5, frameon=False, loc="upper right")
     else:
@@ -83,7 +95,7 @@ def draw_fit_quality(ax, ds, *, fontsize=8):
                 fontsize=fontsize - 1, color="0.3")
     ax.set_xlabel(X_LABEL, fontsize=fontsize + 1)
     ax.set_ylabel(Y_LABEL, fontsize=fontsize + 1)
-    ax.tick_params(labelsize=fontsize)
+    ax.tick_params(which="both", labelsize=fontsize)
     return ax
 
 

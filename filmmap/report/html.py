@@ -19,13 +19,12 @@ from __future__ import annotations
 
 import base64
 import html
-import math
 from pathlib import Path
 
 from filmmap.io.atomic import write_text_atomic
 from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS_TITLE
-from filmmap.report.formatting import (MISSING, flag_text, fmt, fmt_in_spec, fmt_wafer,
-                                       is_number)
+from filmmap.report.formatting import (MISSING, compact_dict_text, flag_text, fmt, fmt_in_spec,
+                                       fmt_wafer, is_long_scalar_dict, scalar_text, wtw_rows)
 from filmmap.report.images import ReportImages
 from filmmap.report.provenance import provenance
 
@@ -63,6 +62,7 @@ figure { margin: 0.6rem 0; }
 figure img { max-width: 100%; height: auto; border: 1px solid #ddd; }
 figcaption { color: var(--muted); font-size: 0.85rem; }
 .missing { color: var(--muted); font-style: italic; }
+.compact { font-size: 0.82rem; margin: 0; }
 pre { white-space: pre-wrap; word-break: break-all; background: #f5f5f5; padding: 0.5rem;
       font-size: 0.82rem; }
 code { font-size: 0.82rem; word-break: break-all; }
@@ -130,6 +130,8 @@ def _cautions_html(title_tag="h2", with_id=True):
 
 def _advice_value(value, depth=0):
     """Generic, escaped rendering of an advice value (dict, list, number, text)."""
+    if depth and is_long_scalar_dict(value):
+        return f'<p class="compact">{e(compact_dict_text(value))}</p>'
     if isinstance(value, dict):
         rows = "".join(f"<tr><th>{e(k)}</th><td>{_advice_value(v, depth + 1)}</td></tr>"
                        for k, v in value.items())
@@ -138,54 +140,8 @@ def _advice_value(value, depth=0):
         if not value:
             return '<span class="missing">(none)</span>'
         return "<ul>" + "".join(f"<li>{_advice_value(v, depth + 1)}</li>" for v in value) + "</ul>"
-    if value is None:
-        return f'<span class="missing">{e(MISSING)}</span>'
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, float):
-        return e(f"{value:.6g}") if math.isfinite(value) else f'<span class="missing">{e(MISSING)}</span>'
-    return e(value)
-
-
-def _wtw_rows(view):
-    w, p = view.wtw, view.profile
-    few = "fewer than 2 product wafers with a usable mean"
-    none = "no product wafer with a usable mean"
-    rows = [
-        ("product wafers", f"{w.n_product} ({w.n_used} with a usable mean"
-         + (f", {w.n_missing} left out: {', '.join(w.missing_ids)}" if w.n_missing else "") + ")"),
-        ("monitor wafers (listed, not counted)", str(w.n_monitor)),
-        ("grand mean of product wafer means", fmt(w.grand_mean_nm, 2, "nm", none)),
-        ("WTW sigma (n - 1)", fmt(w.wtw_sigma_nm, 3, "nm", few)),
-        ("WTW NU (100 sigma / mean)", fmt(w.wtw_nu_pct, 3, "%", few)),
-        ("WTW range (max - min)", fmt(w.range_nm, 2, "nm", none)),
-        ("lowest wafer mean", fmt(w.min_nm, 2, "nm", none) + (f" ({w.min_wafer})" if w.min_wafer else "")),
-        ("highest wafer mean", fmt(w.max_nm, 2, "nm", none) + (f" ({w.max_wafer})" if w.max_wafer else "")),
-    ]
-    if view.target_nm is None:
-        rows.append(("in spec", f"{MISSING} (no target given)"))
-    else:
-        rows.append(("target", f"{view.target_nm:g} nm ± {view.tolerance_pct:g} %"))
-        rows.append(("in spec", f"{w.in_spec_count} of {w.n_used} judged product wafers"
-                     + (f"; out of spec: {', '.join(w.out_of_spec_ids)}" if w.out_of_spec_ids else "")))
-    rows += [
-        ("boat", f"{view.boat_size} slots" + ("" if view.boat_from_config
-                                              else " (highest slot; no [boat] in the lot file)")),
-        ("product region / centre slots",
-         (f"slots {p.product_region[0]}-{p.product_region[1]}" if p.product_region else MISSING)
-         + (f" / {p.central_region[0]}-{p.central_region[1]}" if p.central_region else "")),
-        ("reference level (median of centre slots)", fmt(p.reference_nm, 2, "nm", none)),
-        ("robust sigma (1.4826 MAD, floored)", fmt(p.robust_sigma_nm, 3, "nm", none)),
-        ("flag limit", (f"± {p.limit_nm:.2f} nm (k = {p.k:.2f})" if p.limit_nm is not None
-                        else f"{MISSING} (robust rule off)")),
-        ("flagged slots", ", ".join(map(str, p.flagged_slots)) or "none"),
-        ("edge slots, load end", ", ".join(map(str, p.edge_slots_load)) or "none"),
-        ("edge slots, source end", ", ".join(map(str, p.edge_slots_source)) or "none"),
-        ("flat zone", f"slots {p.flat_zone[0]}-{p.flat_zone[1]}" if p.flat_zone else f"{MISSING} (none)"),
-        ("extra dummies suggested (advisory)",
-         f"load end {p.extra_dummies['load']}, source end {p.extra_dummies['source']}"),
-    ]
-    return rows
+    text = scalar_text(value)
+    return f'<span class="missing">{e(text)}</span>' if text == MISSING else e(text)
 
 
 WIW_HEADER = ("wafer", "slot", "role", "mean (nm)", "sigma (nm)", "NU (%)", "range (nm)",
@@ -208,7 +164,8 @@ def _wiw_table(view):
         cls = "excluded" if w.excluded else "edge" if w.edge else ""
         out.append(f'<tr class="{cls}">' if cls else "<tr>")
         for i, c in enumerate(_wiw_cells(view, w)):
-            klass = "text" if i in (0, 2, 10) else ("out" if i == 9 and w.in_spec is False else None)
+            klass = ("text" if i in (0, 2, 10)
+                     else "out" if i == 9 and w.in_spec is False else None)
             out.append(_cell(c, klass))
         out.append("</tr>")
     out.append("</tbody></table>")
@@ -234,7 +191,8 @@ def _wafer_section(view, images, index, w):
            f"<figcaption>Thickness map, wafer {e(w.wafer)}, slot {w.slot}</figcaption></figure>"
            if png is not None else f'<p class="missing">No map: {e(why)}</p>')
     rows = [("slot", str(w.slot)), ("role", w.role),
-            ("mean", fmt_wafer(w, "mean_nm", 2, "nm")), ("sigma", fmt_wafer(w, "sigma_nm", 3, "nm")),
+            ("mean", fmt_wafer(w, "mean_nm", 2, "nm")),
+            ("sigma", fmt_wafer(w, "sigma_nm", 3, "nm")),
             ("NU (100 sigma / mean)", fmt_wafer(w, "nu_pct", 3, "%")),
             ("min / max", f"{fmt_wafer(w, 'min_nm', 2)} / {fmt_wafer(w, 'max_nm', 2)} nm"),
             ("range", fmt_wafer(w, "range_nm", 2, "nm")),
@@ -281,8 +239,8 @@ def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
     meta = [f"furnace: {view.furnace}" if view.furnace else "furnace: not given",
             f"run date: {view.run_date}" if view.run_date else "run date: not given",
             f"{len(view.wafers)} wafers measured, {view.n_sites_measured} sites",
-            f"target {view.target_nm:g} nm ± {view.tolerance_pct:g} %" if view.target_nm is not None
-            else "no target"]
+            (f"target {view.target_nm:g} nm ± {view.tolerance_pct:g} %"
+             if view.target_nm is not None else "no target")]
     nav = [("cautions", "Cautions"), ("profile", "Slot profile"), ("wtw", "WTW"),
            ("wiw", "WIW table"), ("contact", "Contact sheet"), ("wafers", "Wafers"),
            ("fit", "Fit quality"), ("warnings", "Warnings")]
@@ -315,7 +273,7 @@ def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
     # WTW and WIW
     p.append('<section id="wtw"><h2>Wafer to wafer (WTW)</h2>'
              "<p>Over the product wafers with a usable mean; monitors and dummies are not "
-             "counted.</p>" + _kv_table(_wtw_rows(view)) + "</section>")
+             "counted.</p>" + _kv_table(wtw_rows(view)) + "</section>")
     p.append('<section id="wiw"><h2>Within wafer (WIW), per wafer</h2>'
              "<p>Over the usable sites of each wafer (accepted fit, inside the edge exclusion); "
              "sigma is the sample standard deviation, NU = 100 sigma / mean, half-range = "
@@ -417,5 +375,4 @@ def write_html_report(view, ds, outdir, *, images=None, advice=None, dpi=100):
     return write_text_atomic(Path(outdir) / "report.html", text)
 
 
-__all__ = ["render_html", "write_html_report", "SLOT_PROFILE_IMG_ID", "SLOT_PROFILE_ALT", "e",
-           "is_number"]
+__all__ = ["render_html", "write_html_report", "SLOT_PROFILE_IMG_ID", "SLOT_PROFILE_ALT", "e"]

@@ -214,18 +214,22 @@ class LotView:
         parts = []
         if w.n_product == 0:
             parts.append("no product wafers in the lot: nothing to judge")
+        elif w.n_used == 0:
+            parts.append(f"none of the {w.n_product} product wafers has a usable mean "
+                         f"(at least {self.min_sites} usable sites): nothing to judge")
         elif self.target_nm is None:
             parts.append(f"no target given: {w.n_product} product wafer(s), in-spec not judged")
         else:
             parts.append(f"{w.in_spec_count} of {w.n_product} product wafers in spec "
                          f"(target {self.target_nm:g} nm ± {self.tolerance_pct:g} %)")
-        if w.n_missing:
+        if w.n_missing and w.n_used:
             parts.append(f"{w.n_missing} product wafer(s) not judged (too few usable sites)")
         if w.n_used >= 2 and math.isfinite(w.wtw_nu_pct):
             parts.append(f"WTW NU {w.wtw_nu_pct:.2f} %")
         if w.n_used:
             if p.edge_slots_load:
-                parts.append("edge slots at the load end: " + ", ".join(map(str, p.edge_slots_load)))
+                parts.append("edge slots at the load end: "
+                             + ", ".join(map(str, p.edge_slots_load)))
             if p.edge_slots_source:
                 parts.append("edge slots at the source end: "
                              + ", ".join(map(str, p.edge_slots_source)))

@@ -1,4 +1,4 @@
-"""Provenance of a report: input files and their SHA-256, software, stack, models and their sources."""
+"""Provenance of a report: input files with SHA-256, software, stack, models and their sources."""
 
 from __future__ import annotations
 

@@ -155,21 +155,22 @@ def draw_slot_profile(ax, view, *, legend=True, fontsize=8):
                               mew=0.6, ls="none", label="monitor (not in lot figures)"))
     x, m, _ = pick(lambda w: w.edge and shown(w))
     if x.size:
-        ax.plot(x, m, ls="none", marker="s", ms=10, mfc=COLOURS["edge"], mec="black", mew=0.9,
-                zorder=2)
+        ax.plot(x, m, ls="none", marker="s", ms=10, color=COLOURS["edge"], mfc=COLOURS["edge"],
+                mec="black", mew=0.9, zorder=2)
         for run in _runs([int(v) for v in x]):
             lo = min(mi for xi, mi in zip(x, m) if run[0] <= xi <= run[-1])
             label = f"edge slot {run[0]}" if len(run) == 1 else f"edge slots {run[0]}-{run[-1]}"
             ax.annotate(label, ((run[0] + run[-1]) / 2, lo), xytext=(0, -14),
                         textcoords="offset points", ha="center", va="top",
                         fontsize=fontsize - 1)
-        handles.append(Line2D([], [], ls="none", marker="s", ms=8, mfc=COLOURS["edge"],
-                              mec="black", mew=0.9, label="edge slot"))
+        handles.append(Line2D([], [], ls="none", marker="s", ms=8, color=COLOURS["edge"],
+                              mfc=COLOURS["edge"], mec="black", mew=0.9, label="edge slot"))
     x, m, _ = pick(lambda w: w.flagged and not w.edge and shown(w))
     if x.size:
-        ax.plot(x, m, ls="none", marker="o", ms=11, mfc="none", mec="black", mew=1.0, zorder=4)
-        handles.append(Line2D([], [], ls="none", marker="o", ms=9, mfc="none", mec="black",
-                              mew=1.0, label="flagged slot (not at an end)"))
+        ax.plot(x, m, ls="none", marker="o", ms=11, color="black", mfc="none", mec="black",
+                mew=1.0, zorder=4)
+        handles.append(Line2D([], [], ls="none", marker="o", ms=9, color="black", mfc="none",
+                              mec="black", mew=1.0, label="flagged slot (not at an end)"))
     ex = [w.slot for w in view.wafers if w.excluded and w.role != "dummy"]
     if ex:
         ax.plot(ex, [0.03] * len(ex), transform=xt, ls="none", marker="x", ms=6,

@@ -133,9 +133,25 @@ def summary_dict(view):
             "summary_format": SUMMARY_FORMAT}
 
 
+def _dumps(obj, level=0):
+    """Strict JSON; a list or object holding only scalars goes on one line (one wafer per line)."""
+    def scalar(v):
+        return not isinstance(v, (dict, list, tuple))
+
+    if scalar(obj) or (all(scalar(v) for v in (obj.values() if isinstance(obj, dict) else obj))):
+        return json.dumps(obj, ensure_ascii=False, allow_nan=False)
+    pad, inner = "  " * level, "  " * (level + 1)
+    if isinstance(obj, dict):
+        items = [f"{inner}{json.dumps(str(k), ensure_ascii=False)}: {_dumps(v, level + 1)}"
+                 for k, v in obj.items()]
+        return "{\n" + ",\n".join(items) + "\n" + pad + "}"
+    items = [f"{inner}{_dumps(v, level + 1)}" for v in obj]
+    return "[\n" + ",\n".join(items) + "\n" + pad + "]"
+
+
 def summary_json_text(view):
-    """summary.json as text (UTF-8, indented, no NaN: strict JSON)."""
-    return json.dumps(summary_dict(view), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+    """summary.json as text: UTF-8, strict JSON (no NaN), one wafer per line."""
+    return _dumps(summary_dict(view)) + "\n"
 
 
 def write_summary_json(view, outdir):

@@ -220,7 +220,7 @@ def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_m
     st = within_wafer_stats(t, good, x, y, d, ee)
     head = f"Wafer {wafer_id}" + ("" if slot is None else f"  slot {slot}")
     fig.suptitle(f"{head}\nmean {st.mean_nm:.2f} ± {st.sigma_nm:.2f} nm (1σ), "
-                 f"NU {st.nu_pct:.2f} %, {int(st.sites_used)} sites", fontsize=10)
+                 f"NU {st.nu_pct:.2f} %, {int(st.sites_used)} sites", fontsize=10, parse_math=False)
     return fig
 
 
@@ -296,14 +296,14 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
         _draw_wafer(ax, d, ee, *meshes[i], x, y, t[i], use[i], norm, cm, bounds, False, "", 0)
         ax.set_axis_off()
         label = ids[i] + ("" if slots is None else f" (slot {slots[i]})")
-        ax.set_title(f"{label}\nNU {st.nu_pct[i]:.2f} %", fontsize=7, pad=2)
+        ax.set_title(f"{label}\nNU {st.nu_pct[i]:.2f} %", fontsize=7, pad=2, parse_math=False)
     cax = fig.add_axes((1 - 0.75 * bar_in / width, 0.15, 0.18 * bar_in / width, 0.7))
     fig.colorbar(ScalarMappable(norm=norm, cmap=cm), cax=cax,
                  ticks=bounds[::max(1, len(bounds) // 7)])
     cax.set_ylabel(COLORBAR_LABEL, fontsize=9)
     cax.tick_params(labelsize=7)
     if title:
-        fig.suptitle(title, fontsize=11, y=1 - 0.1 / height, va="top")
+        fig.suptitle(title, fontsize=11, y=1 - 0.1 / height, va="top", parse_math=False)
     return fig
 
 
