@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from filmmap.io.results import lot_dataset, spectra_dataset, write_csv_atomic, write_netcdf_atomic
+from filmmap.io.results import lot_dataset, spectra_dataset, write_netcdf_atomic
 from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_loo
 from filmmap.wafermap.zernike import noll_to_nm, radial_profile, zernike_fit
@@ -28,11 +28,6 @@ SHAPE_FIGURES = {
     "astig_nm": ("astig_pv_nm", "nm", "astigmatism peak-to-valley at the measured radius"),
     "astig_angle_deg": ("astig_angle_deg", "degree", "axis of the thick side of the astigmatism"),
 }
-
-SUMMARY_COLUMNS = ["wafer", "slot", "role", "sites_measured", "sites_fit_ok", "sites_used",
-                   "mean_nm", "sigma_nm", "nu_pct", "min_nm", "max_nm", "range_nm",
-                   "halfrange_pct"]
-
 
 @dataclass
 class WrittenLot:
@@ -154,7 +149,7 @@ def add_wafer_statistics(ds, diameter_mm, edge_exclusion_mm):
 
 
 def write_lot(reduction, outdir, keep_spectra=False):
-    """Write lot.nc and summary.csv (and spectra.nc) for a reduced lot.
+    """Write lot.nc (and spectra.nc) for a reduced lot; summary files come from the lot view.
 
     Parameters
     ----------
@@ -178,13 +173,6 @@ def write_lot(reduction, outdir, keep_spectra=False):
     ds = add_wafer_statistics(ds, m.wafer_diameter_mm, m.edge_exclusion_mm)
     written = WrittenLot(outdir=outdir)
     written.files["lot.nc"] = write_netcdf_atomic(ds, outdir / "lot.nc")
-    rows = []
-    measured = (ds["fit_note"] != "not measured").sum("site").values
-    fit_ok = ds["fit_ok"].sum("site").values
-    for i, w in enumerate(ds.wafer.values):
-        rows.append([w, int(ds.slot.values[i]), str(ds.role.values[i]), int(measured[i]),
-                     int(fit_ok[i])] + [_fmt(ds[c].values[i]) for c in SUMMARY_COLUMNS[5:]])
-    written.files["summary.csv"] = write_csv_atomic(outdir / "summary.csv", SUMMARY_COLUMNS, rows)
     if keep_spectra and s.measured_spectra is not None:
         written.files["spectra.nc"] = write_netcdf_atomic(spectra_dataset(reduction, ds),
                                                           outdir / "spectra.nc")
@@ -196,10 +184,3 @@ def write_lot(reduction, outdir, keep_spectra=False):
     written.failures = dict(zip(reasons.tolist(), counts.tolist()))
     written.dataset = ds
     return written
-
-
-def _fmt(v):
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    v = float(v)
-    return "" if not np.isfinite(v) else f"{v:.4f}"

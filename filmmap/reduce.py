@@ -12,7 +12,7 @@ from __future__ import annotations
 import os
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field, replace
-from pathlib import Path
+
 
 import numpy as np
 
@@ -117,13 +117,13 @@ def intensity_to_reflectance(counts, dark, reference, R_si_model):
 
 def _fit_batch(task):
     """Read, convert and fit a batch of files (runs in a worker process or inline)."""
-    (paths, technique, unit, angle, stack, free, dark, ref, keep_spectra, threads) = task
+    (paths, technique, unit, angle, stack, free, dark, ref, keep_spectra, threads, diameter_mm) = task
     tables = [read_spectra_csv(p, "intensity" if ref is not None else technique,
                                unit if ref is None else "fraction") for p in paths]
     wl = tables[0].wavelength_nm
-    for t in tables[1:]:
-        if t.wavelength_nm.size != wl.size or not np.allclose(t.wavelength_nm, wl, rtol=1e-9, atol=0):
-            raise FilmmapInputError(f"wavelength set differs from {tables[0].path}", file=t.path)
+    if any(t.wavelength_nm.size != wl.size or not np.allclose(t.wavelength_nm, wl, rtol=1e-9, atol=0)
+           for t in tables[1:]):
+        check_tables(tables, diameter_mm)  # names the file and the first differing column
     if technique == "reflectance":
         if ref is not None:
             counts = np.concatenate([t.data["I"] for t in tables])
@@ -215,7 +215,8 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None):
     batches = _batches(files)
     threads = 1 if workers > 1 else None
     tasks = [(b, m.technique, m.reflectance_unit, angle, stack, free, dark,
-              None if ref is None else ref.counts, keep_spectra, threads) for b in batches]
+              None if ref is None else ref.counts, keep_spectra, threads, m.wafer_diameter_mm)
+             for b in batches]
     # material validity is checked once, up front, with the first file's wavelengths
     first = read_spectra_csv(files[0], m.file_technique, m.reflectance_unit)
     for medium in [stack.ambient, *[layer.material for layer in stack.layers], stack.substrate]:

@@ -7,9 +7,7 @@ field; no traceback unless --debug), 1 an unexpected internal error.
 from __future__ import annotations
 
 import argparse
-import os
 import sys
-import time
 import traceback
 from pathlib import Path
 
@@ -67,81 +65,13 @@ def _progress_bar(total, quiet, desc):
     return tqdm(total=total, desc=desc, unit="wafer", leave=False, disable=None)
 
 
-def run_reduce(lotfile, outdir, workers=1, figures=True, quiet=False, keep_spectra=False,
+def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_spectra=False,
                figure_workers=None):
-    """Reduce a lot and write its outputs; returns (WrittenLot, seconds)."""
-    from filmmap.io.lotfile import read_lot_file
-    from filmmap.io.publish import check_outdir, staged_output
-    from filmmap.outputs import write_lot
-    from filmmap.reduce import reduce_lot
+    """`filmmap.pipeline.reduce_to_folder` with a progress bar unless quiet."""
+    from filmmap.pipeline import reduce_to_folder
 
-    t0 = time.perf_counter()
-    check_outdir(outdir)  # refuse a foreign folder before spending time on fits
-    n_files = len(read_lot_file(lotfile).measurement.files)
-    if workers is None:
-        workers = 2 if (os.cpu_count() or 1) >= 2 and n_files >= 16 else 1
-    if workers < 1:
-        raise FilmmapInputError(f"--workers must be >= 1, got {workers}", field="--workers")
-    bar = _progress_bar(n_files, quiet, "fitting")
-    try:
-        reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra,
-                               progress=(bar.update if bar is not None else None))
-    finally:
-        if bar is not None:
-            bar.close()
-    # every output goes to a staging folder that replaces OUTDIR only once complete
-    from filmmap.report import lot_view, write_summary_csv, write_summary_json
-
-    with staged_output(outdir) as stage:
-        written = write_lot(reduction, stage, keep_spectra=keep_spectra)
-        view = lot_view(written.dataset, reduction.config, min_sites=MIN_SITES_FOR_LOT)
-        written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
-        written.files["summary.json"] = write_summary_json(view, stage)
-        advice = write_advice(reduction.config, written, stage)
-        if advice is not None:
-            written.files["advice.json"] = stage / "advice.json"
-        written.advice = advice
-        written.view = view
-        if figures:
-            from filmmap.figures_out import write_figures
-            from filmmap.report import ReportImages, write_html_report, write_pdf_report
-
-            written.files.update(write_figures(written.dataset, reduction.config, stage,
-                                               workers=figure_workers or max(2, workers)))
-            images = ReportImages(view, written.dataset, stage)
-            written.files["report.html"] = write_html_report(view, written.dataset, stage,
-                                                             images=images, advice=advice)
-            written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
-                                                           images=images, advice=advice)
-    written.outdir = Path(outdir)
-    return reduction, written, time.perf_counter() - t0
-
-
-from filmmap.report.lotview import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT  # noqa: E402
-# a wafer with fewer usable sites is left out of lot statistics and advice
-
-
-def write_advice(config, written, folder):
-    """advice.json when the lot file has a recipe and a target; returns the advice or None."""
-    import json
-
-    import numpy as np
-
-    from filmmap.growth.advice import advise_from_config
-    from filmmap.io.atomic import write_text_atomic
-
-    if not config.recipe or config.target is None:
-        return None
-    ds = written.dataset
-    usable = ds["sites_used"].values >= MIN_SITES_FOR_LOT
-    mean = np.where(usable, ds["mean_nm"].values, np.nan)
-    advice = advise_from_config(config, ds["slot"].values, mean, ds["role"].values,
-                                n_failed_sites=written.n_failed, n_sites=written.n_sites)
-    for w in ds.wafer.values[~usable]:
-        advice["warnings"].append(f"wafer {w} has fewer than {MIN_SITES_FOR_LOT} usable sites "
-                                  "and was left out of the calibration")
-    write_text_atomic(folder / "advice.json", json.dumps(advice, indent=1, allow_nan=False) + "\n")
-    return advice
+    return reduce_to_folder(lotfile, outdir, workers, figures, keep_spectra, figure_workers,
+                            progress=None if quiet else (lambda n: _progress_bar(n, quiet, "fitting")))
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -256,7 +186,12 @@ def cmd_predict(args):
         except (OSError, ValueError, KeyError) as exc:
             raise FilmmapInputError(f"cannot read effective_offset_C_by_slot: {exc}",
                                     file=args.advice) from None
-    table = predict_by_zone(config, overrides or None, trims or None, slot_offsets_C=slot_offsets)
+    try:
+        table = predict_by_zone(config, overrides or None, trims or None, slot_offsets_C=slot_offsets)
+    except FilmmapInputError as exc:
+        if exc.file is not None:
+            raise
+        raise FilmmapInputError(exc.reason, file=args.lotfile, field=exc.field) from None
     print(f"lot {config.lot.id}: predicted oxide by zone for the recipe"
           + (" with changes" if overrides or trims else " as written"))
     for st in table["recipe"]:

@@ -17,10 +17,18 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from filmmap.errors import FilmmapInputError
 from filmmap.fitting.lm import levenberg_marquardt, weighted_residual
 from filmmap.fitting.model import ELLIPSOMETRY, REFLECTANCE, FreeParameter, SpectralModel
 from filmmap.fitting.search import build_library, grid_step_nm, local_minima, ncs, \
     parabolic_vertex, score_library
+
+POOR_FIT_CHI2 = 10.0
+"""Default limit on the reduced chi-square: an rms residual above about 3 noise sigmas
+marks the fit "poor fit" (a flat or foreign spectrum fits no film that well)."""
+
+MAX_GRID_POINTS = 20000
+"""Largest global-search grid per thickness (about 0.3 mm of oxide at the default fineness)."""
 
 DEFAULT_SEARCH_NM = (0.0, 6000.0)
 """Search range (nm) for a thickness with neither nominal nor search_nm given."""
@@ -174,7 +182,7 @@ def _as_data(technique, data, m):
 
 def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0, free=None,
                 nominal=None, search_nm=None, sigma=None, mask=None, exclude_bands_nm=(),
-                robust=False, poor_fit_chi2=100.0, max_iter=40, max_candidates=32,
+                robust=False, poor_fit_chi2=POOR_FIT_CHI2, max_iter=40, max_candidates=32,
                 polarization="u", grid_fineness=16.0, workers=None, block_rows=1024):
     """Fit the free parameters of a stack to a batch of spectra.
 
@@ -255,6 +263,11 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
         if f.kind == "thickness":
             step = grid_step_nm(model, f.layer, grid_fineness)
             count = max(2, int(np.ceil((f.hi - f.lo) / step)) + 1)
+            if count > MAX_GRID_POINTS:
+                raise FilmmapInputError(
+                    f"search range {f.lo:g}-{f.hi:g} nm of {f.name} needs {count} grid points "
+                    f"(more than {MAX_GRID_POINTS}); expected a range a film can have",
+                    field="search_nm")
             grids.append(np.linspace(f.lo, f.hi, count))
         else:
             grids.append(np.array([f.start]))

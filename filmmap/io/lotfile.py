@@ -102,6 +102,8 @@ import tomllib
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath, PureWindowsPath
 
+import numpy as np
+
 from filmmap.errors import FilmmapInputError
 from filmmap.materials import Cauchy, Material, Tabulated, available, get_material
 
@@ -847,6 +849,12 @@ def _read_layer(rd, t, where, folder, allow_outside, lot_path):
         rng = _pair(rd, ct, "range_nm", cw, default=(200.0, 2000.0))
         cauchy = CauchySpec(A=a, B_um2=b, C_um4=c, range_nm=rng)
         model = Cauchy(name, a, b, c, range_nm=rng, source=f"Cauchy coefficients from {lot_path}")
+        probe = np.linspace(rng[0], rng[1], 64)
+        n_probe = model(probe).real
+        if not np.all(n_probe >= 1.0):
+            bad = probe[np.argmin(n_probe)]
+            rd.fail(f"Cauchy index n = A + B/lambda^2 + C/lambda^4 falls to {n_probe.min():.3g} at "
+                    f"{bad:.0f} nm; expected n >= 1 over range_nm [{rng[0]:g}, {rng[1]:g}] nm", cw)
         source = "cauchy"
     else:
         model = _registry_material(rd, name, f"{where}.material", user_hint=True)
@@ -865,6 +873,10 @@ def _read_layer(rd, t, where, folder, allow_outside, lot_path):
                        thickness_nm=thickness, search_nm=search, fit=bool(fit))
 
 
+MAX_SEARCH_NM = 50000.0
+"""Largest accepted search_nm upper end (50 um, far above any thermal oxide)."""
+
+
 def _pair(rd, t, key, where, default=None):
     """A ``[lo, hi]`` array with 0 < lo < hi (nm)."""
     if key not in t:
@@ -876,6 +888,9 @@ def _pair(rd, t, key, where, default=None):
     lo, hi = float(v[0]), float(v[1])
     if not (math.isfinite(lo) and math.isfinite(hi) and 0 < lo < hi):
         rd.fail(f"{key} = [{lo:g}, {hi:g}]: expected 0 < lo < hi (nm)", field)
+    if key == "search_nm" and hi > MAX_SEARCH_NM:
+        rd.fail(f"{key} = [{lo:g}, {hi:g}]: the upper end is above {MAX_SEARCH_NM:g} nm; expected "
+                "a thickness range a film can have", field)
     return (lo, hi)
 
 
@@ -1149,6 +1164,8 @@ def read_lot_file(path, allow_outside=False, max_bytes=DEFAULT_MAX_LOT_BYTES):
         line = int(m.group(1)) if m else None
         if m:
             msg = msg[:m.start()].rstrip() + f" (column {m.group(2)})"
+        elif "end of document" in msg:
+            line = text.rstrip("\n").count("\n") + 1
         raise FilmmapInputError(f"TOML syntax error: {msg}", file=path, line=line) from None
     rd = _Reader(path, text)
     rd.keys(doc, "", "")

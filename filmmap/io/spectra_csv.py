@@ -328,7 +328,8 @@ def _parse_header(header_text, first_row, path, lineno, technique, required):
         problem = _separator_problem(header_text, first_row)
         if problem:
             raise FilmmapInputError(problem, file=path, line=lineno)
-        if cells and _NUMBER.fullmatch(cells[0].strip()):
+        numeric = [bool(_NUMBER.fullmatch(c.strip())) for c in cells]
+        if cells and (numeric[0] or (len(cells) > 5 and sum(numeric) >= len(cells) - 1)):
             expected = (", ".join(required) + " and " if required else "") + ", ".join(
                 f"{p}@<nm>" for p in _PREFIXES[technique])
             raise FilmmapInputError(
@@ -799,7 +800,8 @@ def check_tables(tables, wafer_diameter_mm, boat_slots=None):
             raise FilmmapInputError(
                 f"wavelength set differs from {ref.path}: "
                 f"{_describe_difference(t.wavelength_nm, ref.wavelength_nm)}; "
-                "expected the same wavelength columns in every file", file=t.path)
+                "expected the same wavelength columns in every file", file=t.path,
+                line=max(1, int(t.line[0]) - 1) if t.line.size else None)
     for t in tables:
         if boat_slots is not None:
             out = (t.slot < 1) | (t.slot > int(boat_slots))

@@ -110,6 +110,13 @@ class Tabulated(Material):
             if len(cells) < 3 or not all(np.isfinite(rows[-1])):
                 raise FilmmapInputError("expected three finite numbers wavelength_nm,n,k",
                                         file=path, line=lineno)
+            if rows[-1][2] < 0:
+                raise FilmmapInputError(f"k = {rows[-1][2]:g} is negative: k must be >= 0 "
+                                        "(N = n - ik, k absorbs)", file=path, line=lineno)
+            if len(rows) > 1 and rows[-1][0] <= rows[-2][0]:
+                raise FilmmapInputError(
+                    f"wavelength {rows[-1][0]:g} nm does not follow {rows[-2][0]:g} nm; expected "
+                    "strictly increasing wavelengths", file=path, line=lineno)
         if header is None or len(rows) < 2:
             raise FilmmapInputError("n,k table needs a header and at least two rows", file=path)
         data = np.array(rows)

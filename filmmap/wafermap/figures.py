@@ -15,6 +15,7 @@ drawn as a 90 deg V, enlarged to 3 % of the radius (real notches are about
 from __future__ import annotations
 
 import os
+import hashlib
 import re
 import uuid
 from concurrent.futures import ProcessPoolExecutor
@@ -374,7 +375,11 @@ def _render_task(task):
 
 
 def safe_filename(text):
-    """A file-name-safe form of a wafer id: characters other than letters, digits, . _ - become _.
+    """A file-name-safe, distinct form of a wafer id.
+
+    Characters other than letters, digits, . _ - become _; an id that had to be
+    changed, or is longer than 80 characters, gets a short SHA-256 suffix of the
+    original, so distinct ids give distinct names.
 
     Parameters
     ----------
@@ -388,8 +393,14 @@ def safe_filename(text):
     ----------
     .. [1] Common practice, no source.
     """
-    name = re.sub(r"[^A-Za-z0-9._-]", "_", str(text)).lstrip(".")
-    return name or "_"
+    text = str(text)
+    name = re.sub(r"[^A-Za-z0-9._-]", "_", text).lstrip(".")
+    if name != text or len(name) > 80:
+        # an id changed by the clean-up (or cut short) gets a hash of the original, so two
+        # ids never share a file and names stay far below the file-system limit
+        digest = hashlib.sha256(text.encode("utf-8")).hexdigest()[:8]
+        name = f"{name[:80] or '_'}-{digest}"
+    return name
 
 
 def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,

@@ -1,0 +1,938 @@
+"""Run history: an embedded SQLite database of reduced lots, one row per lot and furnace.
+
+The history keeps, for every recorded lot, what the run-to-run controller and the
+control charts need: the lot's identity (lot id, furnace, run date), the recipe as run
+(JSON, with its SHA-256), per-wafer and per-slot summaries, the advice the lot produced,
+the path and SHA-256 of its ``lot.nc``, and three headline figures: the lot mean (nm), the
+wafer-to-wafer non-uniformity WTW (%) and the mean within-wafer non-uniformity WIW (%).
+
+Location.  By default one database per user:
+
+* ``$XDG_DATA_HOME/filmmap/history.sqlite`` when ``XDG_DATA_HOME`` is set (an absolute
+  path, as the XDG Base Directory specification requires);
+* otherwise ``%LOCALAPPDATA%\\filmmap\\history.sqlite`` on Windows;
+* otherwise ``~/.local/share/filmmap/history.sqlite``.
+
+Every function takes a ``db_path`` that overrides it (see `default_history_path`).
+
+Concurrency and durability.  The database runs in write-ahead-log mode (``PRAGMA
+journal_mode=WAL``): readers never block the writer.  Every write is one transaction
+opened with ``BEGIN IMMEDIATE``, which takes the write lock at the start, and each
+connection waits up to ``busy_timeout_s`` (default 60 s) for a lock held by another
+process instead of failing.  A plain (deferred) ``BEGIN`` that first reads and later
+writes can fail with ``SQLITE_BUSY`` at once, without waiting, when another process
+commits in between; ``BEGIN IMMEDIATE`` avoids that.  So two processes recording at the
+same time both succeed, one after the other, and nothing is lost; a write that fails for
+any reason (a bad record, a full disk) is rolled back whole.  ``synchronous=FULL`` makes a
+committed lot survive a power cut.
+
+Schema and migrations.  Table ``schema_version`` holds one row, the schema version.
+`MIGRATIONS` lists one function per step: ``MIGRATIONS[k]`` takes a database from
+version k to k + 1 (version 0 is an empty file).  On every open the missing steps run in
+order, all in one transaction, so a database is either migrated fully or left as it was.
+A database newer than this code is refused rather than guessed at.
+
+Version 1 (the first released schema)
+    ``lots``: one row per (lot_id, furnace) with run_date, recorded_at (UTC, ISO 8601),
+    recipe_json, recipe_sha256, advice_json, lot_nc_path, lot_nc_sha256, lot_mean_nm,
+    wtw_pct, wiw_mean_pct.  ``wafers``: (lot_ref, wafer, slot, role, mean_nm, sigma_nm,
+    nu_pct, sites_used).
+Version 2 (current)
+    ``lots`` gains target_nm, tolerance_pct and applied_trims_json (the zone trims in
+    force during the run, K; needed to separate the furnace's own zone errors from the
+    trims in run-to-run control).  New table ``slots``: (lot_ref, slot, mean_nm,
+    offset_C), back-filled from the wafers and the stored advice's
+    ``effective_offset_C_by_slot``.
+
+Numbers that are missing or not finite are stored as NULL and read back as None.
+
+Units: thickness nm, non-uniformity percent, temperature offsets and trims K.
+
+References
+----------
+.. [1] SQLite documentation, "Write-Ahead Logging" (https://www.sqlite.org/wal.html)
+   and "BEGIN TRANSACTION" (https://www.sqlite.org/lang_transaction.html).
+.. [2] Python documentation, ``sqlite3`` module (timeout, isolation_level=None for
+   explicit transaction control).
+.. [3] XDG Base Directory Specification, version 0.8 (``XDG_DATA_HOME``).
+.. [4] FIPS PUB 180-4, Secure Hash Standard (SHA-256), via `hashlib`.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import hashlib
+import json
+import math
+import os
+import sqlite3
+import tomllib
+from collections.abc import Mapping
+from dataclasses import dataclass, fields
+from pathlib import Path
+
+from filmmap.errors import FilmmapInputError
+
+__all__ = ["CURRENT_VERSION", "MIGRATIONS", "HISTORY_FILENAME", "LotRecord", "SlotSummary",
+           "WaferSummary", "default_history_path", "file_sha256", "lots", "open_history",
+           "make_record", "recipe_sha256", "record_from_outputs", "record_lot", "schema_version"]
+
+#: File name of the default history database.
+HISTORY_FILENAME = "history.sqlite"
+
+#: Default wait for a lock held by another process, seconds.
+DEFAULT_BUSY_TIMEOUT_S = 60.0
+
+
+# --------------------------------------------------------------------------- records
+
+@dataclass(frozen=True)
+class WaferSummary:
+    """Within-wafer summary of one wafer of a recorded lot.
+
+    Attributes
+    ----------
+    wafer : str
+        Wafer id.
+    slot : int
+        Boat slot (1 = load/door end), dimensionless.
+    role : str
+        ``"product"``, ``"monitor"`` or ``"dummy"``.
+    mean_nm, sigma_nm : float or None
+        Within-wafer mean and standard deviation of the thickness, nm.
+    nu_pct : float or None
+        Within-wafer non-uniformity 100 sigma / mean, percent.
+    sites_used : int or None
+        Sites behind the statistics (count).
+
+    References
+    ----------
+    .. [1] Non-uniformity as 100 sigma / mean: common practice, no source.
+    """
+
+    wafer: str
+    slot: int
+    role: str = "product"
+    mean_nm: float | None = None
+    sigma_nm: float | None = None
+    nu_pct: float | None = None
+    sites_used: int | None = None
+
+
+@dataclass(frozen=True)
+class SlotSummary:
+    """One boat slot of a recorded lot.
+
+    Attributes
+    ----------
+    slot : int
+        Boat slot (1 = load/door end), dimensionless.
+    mean_nm : float or None
+        Mean thickness of the wafer in that slot, nm (None: no usable mean).
+    offset_C : float or None
+        Effective temperature offset of the slot read from its oxide by the advice
+        (``effective_offset_C_by_slot``), K; None where not calibrated.
+
+    References
+    ----------
+    .. [1] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965) (the model
+       behind the effective offset).
+    """
+
+    slot: int
+    mean_nm: float | None = None
+    offset_C: float | None = None
+
+
+@dataclass(frozen=True)
+class LotRecord:
+    """Everything the history keeps about one lot.
+
+    Attributes
+    ----------
+    lot_id : str
+        Lot id (non-empty).
+    furnace : str
+        Furnace name; ``""`` when the lot file names none.
+    run_date : str or None
+        Run date (or date and time), ISO 8601, e.g. ``"2026-11-30"``.
+    recipe : list of dict or None
+        The recipe as run: steps with ``name``, ``ambient``, ``minutes`` and ``at_C`` or
+        ``from_C``/``to_C`` (minutes, degrees Celsius).
+    advice : dict or None
+        The advice the lot produced (``advice.json``).
+    lot_nc_path : str or None
+        Absolute path of the lot's ``lot.nc``.
+    lot_nc_sha256 : str or None
+        SHA-256 of that file (hex).
+    lot_mean_nm : float or None
+        Mean of the usable product wafer means, nm.
+    wtw_pct : float or None
+        Wafer-to-wafer non-uniformity of the product wafers, 100 s / mean, percent.
+    wiw_mean_pct : float or None
+        Mean within-wafer non-uniformity of the usable product wafers, percent.
+    target_nm : float or None
+        Target thickness, nm.
+    tolerance_pct : float or None
+        Spec half-width, percent of the target.
+    applied_trims_C : dict or None
+        Zone name -> trim in force during the run, K (None: not known, taken as 0).
+    wafers : tuple of WaferSummary
+    slots : tuple of SlotSummary
+    recorded_at : str or None
+        When the lot was recorded (UTC, ISO 8601); set by the store.
+
+    Notes
+    -----
+    `recipe_sha256` is derived from ``recipe``; it is not a field.
+
+    References
+    ----------
+    .. [1] Wafer-to-wafer and within-wafer non-uniformity: common practice, no source.
+    """
+
+    lot_id: str
+    furnace: str = ""
+    run_date: str | None = None
+    recipe: list | None = None
+    advice: dict | None = None
+    lot_nc_path: str | None = None
+    lot_nc_sha256: str | None = None
+    lot_mean_nm: float | None = None
+    wtw_pct: float | None = None
+    wiw_mean_pct: float | None = None
+    target_nm: float | None = None
+    tolerance_pct: float | None = None
+    applied_trims_C: dict | None = None
+    wafers: tuple = ()
+    slots: tuple = ()
+    recorded_at: str | None = None
+
+    @property
+    def recipe_sha256(self):
+        """SHA-256 (hex) of the canonical JSON of the recipe, None without a recipe."""
+        return recipe_sha256(self.recipe)
+
+    @property
+    def recipe_json(self):
+        """The recipe as canonical JSON text (sorted keys, no spaces), or None."""
+        return _canonical_json(self.recipe)
+
+
+def _canonical_json(value):
+    if value is None:
+        return None
+    return json.dumps(value, sort_keys=True, separators=(",", ":"), allow_nan=False,
+                      ensure_ascii=False)
+
+
+def recipe_sha256(recipe):
+    """SHA-256 of a recipe, independent of key order and whitespace.
+
+    Parameters
+    ----------
+    recipe : list of dict or None
+        Recipe steps (minutes, degrees Celsius).
+
+    Returns
+    -------
+    str or None
+        Hex digest of the UTF-8 canonical JSON (sorted keys, ``","`` and ``":"``
+        separators), None for None.
+
+    References
+    ----------
+    .. [1] FIPS PUB 180-4, Secure Hash Standard.
+    """
+    text = _canonical_json(recipe)
+    return None if text is None else hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def file_sha256(path, chunk=1 << 20):
+    """SHA-256 (hex) of a file's bytes, read in chunks of ``chunk`` bytes.
+
+    References
+    ----------
+    .. [1] FIPS PUB 180-4, Secure Hash Standard.
+    """
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(chunk), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _num(value, name):
+    """float or None (None, NaN and +/-inf are missing)."""
+    if value is None:
+        return None
+    if isinstance(value, bool):
+        raise FilmmapInputError(f"{name} must be a number, got {value!r}", field=name)
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise FilmmapInputError(f"{name} must be a number, got {value!r}", field=name) from None
+    return v if math.isfinite(v) else None
+
+
+def _int(value, name, optional=False):
+    if value is None and optional:
+        return None
+    try:
+        f = float(value)
+    except (TypeError, ValueError):
+        raise FilmmapInputError(f"{name} must be a whole number, got {value!r}",
+                                field=name) from None
+    if optional and not math.isfinite(f):
+        return None
+    if isinstance(value, bool) or not math.isfinite(f) or f != round(f):
+        raise FilmmapInputError(f"{name} must be a whole number, got {value!r}", field=name)
+    return int(f)
+
+
+def _run_date(value):
+    if value is None or value == "":
+        return None
+    if isinstance(value, (_dt.date, _dt.datetime)):
+        return value.isoformat()
+    text = str(value).strip()
+    try:
+        if len(text) == 10:
+            _dt.date.fromisoformat(text)
+        else:
+            _dt.datetime.fromisoformat(text)
+    except ValueError:
+        raise FilmmapInputError(f"run date {value!r} is not an ISO 8601 date such as "
+                                "2026-11-30", field="run_date") from None
+    return text
+
+
+def _json_obj(value, name, kind):
+    if value is None:
+        return None
+    if isinstance(value, str):
+        try:
+            value = json.loads(value)
+        except ValueError as exc:
+            raise FilmmapInputError(f"{name} is not valid JSON: {exc}", field=name) from None
+    if not isinstance(value, kind):
+        raise FilmmapInputError(f"{name} must be a JSON {kind.__name__}, got "
+                                f"{type(value).__name__}", field=name)
+    try:  # must serialise as strict JSON; also a deep copy
+        return json.loads(json.dumps(value, allow_nan=False))
+    except (TypeError, ValueError) as exc:
+        raise FilmmapInputError(f"{name} cannot be stored as JSON: {exc}", field=name) from None
+
+
+def _as_dataclass(cls, item, name):
+    if isinstance(item, cls):
+        data = {f.name: getattr(item, f.name) for f in fields(cls)}
+    elif isinstance(item, Mapping):
+        unknown = set(item) - {f.name for f in fields(cls)}
+        if unknown:
+            raise FilmmapInputError(f"{name}: unknown key(s) {sorted(unknown)}", field=name)
+        data = dict(item)
+    else:
+        raise FilmmapInputError(f"{name}: expected a {cls.__name__} or a mapping, got "
+                                f"{type(item).__name__}", field=name)
+    return data
+
+
+def make_record(record):
+    """Check a lot record and return it as a normalised `LotRecord`.
+
+    Parameters
+    ----------
+    record : LotRecord or mapping
+        The fields of `LotRecord` (``wafers`` and ``slots`` as `WaferSummary` /
+        `SlotSummary` objects or mappings).  Unknown keys are refused.
+
+    Returns
+    -------
+    LotRecord
+        Missing or non-finite numbers as None, the run date as ISO text, the furnace as
+        a string (``""`` when unknown), wafers and slots sorted by slot (then wafer id).
+
+    Raises
+    ------
+    FilmmapInputError
+        For an empty lot id, a bad run date, a wafer or slot listed twice, or a value
+        of the wrong type.
+
+    References
+    ----------
+    .. [1] ISO 8601 dates, via `datetime.date.fromisoformat`.
+    """
+    data = _as_dataclass(LotRecord, record, "record")
+    lot_id = data.get("lot_id")
+    if not isinstance(lot_id, str) or not lot_id.strip():
+        raise FilmmapInputError(f"lot id must be a non-empty string, got {lot_id!r}",
+                                field="lot_id")
+    furnace = data.get("furnace") or ""
+    if not isinstance(furnace, str):
+        raise FilmmapInputError(f"furnace must be a string, got {furnace!r}", field="furnace")
+    wafers = []
+    for i, w in enumerate(data.get("wafers") or ()):
+        d = _as_dataclass(WaferSummary, w, f"wafers[{i}]")
+        wid = d.get("wafer")
+        if not isinstance(wid, str) or not wid:
+            raise FilmmapInputError(f"wafers[{i}]: wafer id must be a non-empty string, got "
+                                    f"{wid!r}", field=f"wafers[{i}].wafer")
+        wafers.append(WaferSummary(
+            wafer=wid, slot=_int(d.get("slot"), f"wafers[{i}].slot"),
+            role=str(d.get("role", "product")),
+            mean_nm=_num(d.get("mean_nm"), f"wafers[{i}].mean_nm"),
+            sigma_nm=_num(d.get("sigma_nm"), f"wafers[{i}].sigma_nm"),
+            nu_pct=_num(d.get("nu_pct"), f"wafers[{i}].nu_pct"),
+            sites_used=_int(d.get("sites_used"), f"wafers[{i}].sites_used", optional=True)))
+    ids = [w.wafer for w in wafers]
+    if len(set(ids)) != len(ids):
+        dup = sorted({v for v in ids if ids.count(v) > 1})
+        raise FilmmapInputError(f"wafer(s) {dup} listed twice", field="wafers")
+    slots = []
+    for i, s in enumerate(data.get("slots") or ()):
+        d = _as_dataclass(SlotSummary, s, f"slots[{i}]")
+        slots.append(SlotSummary(slot=_int(d.get("slot"), f"slots[{i}].slot"),
+                                 mean_nm=_num(d.get("mean_nm"), f"slots[{i}].mean_nm"),
+                                 offset_C=_num(d.get("offset_C"), f"slots[{i}].offset_C")))
+    nums = [s.slot for s in slots]
+    if len(set(nums)) != len(nums):
+        raise FilmmapInputError(f"slot(s) {sorted({v for v in nums if nums.count(v) > 1})} "
+                                "listed twice", field="slots")
+    trims = _json_obj(data.get("applied_trims_C"), "applied_trims_C", dict)
+    if trims is not None:
+        trims = {str(k): _num(v, f"applied_trims_C.{k}") for k, v in trims.items()}
+    return LotRecord(
+        lot_id=lot_id, furnace=furnace, run_date=_run_date(data.get("run_date")),
+        recipe=_json_obj(data.get("recipe"), "recipe", list),
+        advice=_json_obj(data.get("advice"), "advice", dict),
+        lot_nc_path=None if data.get("lot_nc_path") is None else str(data["lot_nc_path"]),
+        lot_nc_sha256=data.get("lot_nc_sha256"),
+        lot_mean_nm=_num(data.get("lot_mean_nm"), "lot_mean_nm"),
+        wtw_pct=_num(data.get("wtw_pct"), "wtw_pct"),
+        wiw_mean_pct=_num(data.get("wiw_mean_pct"), "wiw_mean_pct"),
+        target_nm=_num(data.get("target_nm"), "target_nm"),
+        tolerance_pct=_num(data.get("tolerance_pct"), "tolerance_pct"),
+        applied_trims_C=trims,
+        wafers=tuple(sorted(wafers, key=lambda w: (w.slot, w.wafer))),
+        slots=tuple(sorted(slots, key=lambda s: s.slot)),
+        recorded_at=data.get("recorded_at"))
+
+
+# --------------------------------------------------------------------------- location
+
+def default_history_path(environ=None):
+    """The per-user history database path.
+
+    Parameters
+    ----------
+    environ : mapping, optional
+        Environment to read (default `os.environ`).
+
+    Returns
+    -------
+    pathlib.Path
+        ``$XDG_DATA_HOME/filmmap/history.sqlite`` when ``XDG_DATA_HOME`` is an absolute
+        path; else ``%LOCALAPPDATA%/filmmap/history.sqlite`` on Windows; else
+        ``~/.local/share/filmmap/history.sqlite``.  The folder is not created here.
+
+    References
+    ----------
+    .. [1] XDG Base Directory Specification, version 0.8: a relative ``XDG_DATA_HOME``
+       is invalid and ignored; the default is ``$HOME/.local/share``.
+    """
+    env = os.environ if environ is None else environ
+    xdg = env.get("XDG_DATA_HOME", "")
+    if xdg and os.path.isabs(xdg):
+        return Path(xdg) / "filmmap" / HISTORY_FILENAME
+    if os.name == "nt" and env.get("LOCALAPPDATA"):
+        return Path(env["LOCALAPPDATA"]) / "filmmap" / HISTORY_FILENAME
+    home = env.get("HOME") or os.path.expanduser("~")
+    return Path(home) / ".local" / "share" / "filmmap" / HISTORY_FILENAME
+
+
+def _resolve(db_path):
+    return default_history_path() if db_path is None else Path(db_path)
+
+
+# --------------------------------------------------------------------------- schema
+
+def _migrate_0_to_1(con):
+    """Version 1: lots and wafers."""
+    con.execute("""CREATE TABLE lots (
+        id INTEGER PRIMARY KEY,
+        lot_id TEXT NOT NULL,
+        furnace TEXT NOT NULL DEFAULT '',
+        run_date TEXT,
+        recorded_at TEXT NOT NULL,
+        recipe_json TEXT,
+        recipe_sha256 TEXT,
+        advice_json TEXT,
+        lot_nc_path TEXT,
+        lot_nc_sha256 TEXT,
+        lot_mean_nm REAL,
+        wtw_pct REAL,
+        wiw_mean_pct REAL,
+        UNIQUE (lot_id, furnace))""")
+    con.execute("""CREATE TABLE wafers (
+        lot_ref INTEGER NOT NULL REFERENCES lots(id) ON DELETE CASCADE,
+        wafer TEXT NOT NULL,
+        slot INTEGER NOT NULL,
+        role TEXT NOT NULL,
+        mean_nm REAL,
+        sigma_nm REAL,
+        nu_pct REAL,
+        sites_used INTEGER,
+        PRIMARY KEY (lot_ref, wafer))""")
+    con.execute("CREATE INDEX lots_by_furnace_date ON lots (furnace, run_date)")
+
+
+def _migrate_1_to_2(con):
+    """Version 2: target, tolerance and applied trims on lots; a slots table, back-filled."""
+    con.execute("ALTER TABLE lots ADD COLUMN target_nm REAL")
+    con.execute("ALTER TABLE lots ADD COLUMN tolerance_pct REAL")
+    con.execute("ALTER TABLE lots ADD COLUMN applied_trims_json TEXT")
+    con.execute("""CREATE TABLE slots (
+        lot_ref INTEGER NOT NULL REFERENCES lots(id) ON DELETE CASCADE,
+        slot INTEGER NOT NULL,
+        mean_nm REAL,
+        offset_C REAL,
+        PRIMARY KEY (lot_ref, slot))""")
+    # back-fill: one slot row per wafer, offsets from the stored advice
+    for ref, advice_json in con.execute("SELECT id, advice_json FROM lots").fetchall():
+        by_slot = {}
+        advice = None
+        if advice_json:
+            with contextlib.suppress(ValueError):
+                advice = json.loads(advice_json)
+        if isinstance(advice, dict):
+            by_slot = advice.get("effective_offset_C_by_slot") or {}
+            tgt = _num_or_none(advice.get("target_nm"))
+            if tgt is not None:
+                con.execute("UPDATE lots SET target_nm = ? WHERE id = ?", (tgt, ref))
+        for slot, mean in con.execute("SELECT slot, mean_nm FROM wafers WHERE lot_ref = ? "
+                                      "ORDER BY slot", (ref,)).fetchall():
+            con.execute("INSERT OR IGNORE INTO slots (lot_ref, slot, mean_nm, offset_C) "
+                        "VALUES (?, ?, ?, ?)",
+                        (ref, slot, mean, _num_or_none(by_slot.get(str(slot)))))
+
+
+def _num_or_none(v):
+    try:
+        return _num(v, "value")
+    except FilmmapInputError:
+        return None
+
+
+#: Migration steps: ``MIGRATIONS[k]`` takes the schema from version k to k + 1.
+MIGRATIONS = (_migrate_0_to_1, _migrate_1_to_2)
+
+#: Schema version this code writes.
+CURRENT_VERSION = len(MIGRATIONS)
+
+
+def _read_version(con):
+    has = con.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND "
+                      "name = 'schema_version'").fetchone()
+    if not has:
+        tables = con.execute("SELECT count(*) FROM sqlite_master WHERE type = 'table'").fetchone()
+        if tables[0]:
+            raise FilmmapInputError("this SQLite file is not a filmmap history (it has tables "
+                                    "but no schema_version)", field="db_path")
+        return 0
+    rows = con.execute("SELECT version FROM schema_version").fetchall()
+    if len(rows) != 1:
+        raise FilmmapInputError(f"schema_version has {len(rows)} rows; expected 1",
+                                field="db_path")
+    return int(rows[0][0])
+
+
+@contextlib.contextmanager
+def _transaction(con):
+    """BEGIN IMMEDIATE ... COMMIT, rolled back on any exception."""
+    con.execute("BEGIN IMMEDIATE")
+    try:
+        yield con
+    except BaseException:
+        con.execute("ROLLBACK")
+        raise
+    con.execute("COMMIT")
+
+
+def _migrate(con, path):
+    version = _read_version(con)  # outside a transaction: a cheap check first
+    if version == CURRENT_VERSION:
+        return version
+    with _transaction(con):
+        version = _read_version(con)  # again under the write lock: another process may have won
+        if version > CURRENT_VERSION:
+            raise FilmmapInputError(f"history database schema version {version} is newer than "
+                                    f"this filmmap understands ({CURRENT_VERSION}); upgrade "
+                                    "filmmap", file=path)
+        start = version
+        for k in range(start, CURRENT_VERSION):
+            MIGRATIONS[k](con)
+        if start == 0:
+            con.execute("CREATE TABLE schema_version (version INTEGER NOT NULL)")
+            con.execute("INSERT INTO schema_version (version) VALUES (?)", (CURRENT_VERSION,))
+        else:
+            con.execute("UPDATE schema_version SET version = ?", (CURRENT_VERSION,))
+    return CURRENT_VERSION
+
+
+@contextlib.contextmanager
+def open_history(db_path=None, *, busy_timeout_s=DEFAULT_BUSY_TIMEOUT_S, create=True):
+    """Open (creating and migrating as needed) a history database.
+
+    Parameters
+    ----------
+    db_path : str or path-like, optional
+        Database file; default `default_history_path`.  Its folder is created.
+    busy_timeout_s : float
+        How long to wait for a lock held by another process, seconds.
+    create : bool
+        Create the file when missing (else `FileNotFoundError`).
+
+    Yields
+    ------
+    sqlite3.Connection
+        In autocommit mode (``isolation_level=None``): transactions are explicit.
+
+    Raises
+    ------
+    FilmmapInputError
+        For a file that is not a filmmap history, or whose schema is newer than this
+        code.
+
+    References
+    ----------
+    .. [1] SQLite documentation, "Write-Ahead Logging" and "PRAGMA busy_timeout".
+    """
+    path = _resolve(db_path)
+    if not path.exists():
+        if not create:
+            raise FileNotFoundError(f"no history database at {path}")
+        path.parent.mkdir(parents=True, exist_ok=True)
+    con = sqlite3.connect(str(path), timeout=float(busy_timeout_s), isolation_level=None)
+    try:
+        con.execute(f"PRAGMA busy_timeout = {int(1000 * float(busy_timeout_s))}")
+        try:
+            mode = con.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+        except sqlite3.DatabaseError as exc:
+            raise FilmmapInputError(f"not a usable SQLite database: {exc}", file=path) from None
+        if str(mode).lower() != "wal":
+            raise FilmmapInputError(f"could not switch the history to WAL mode (got {mode!r})",
+                                    file=path)
+        con.execute("PRAGMA synchronous = FULL")
+        con.execute("PRAGMA foreign_keys = ON")
+        _migrate(con, path)
+        yield con
+    finally:
+        con.close()
+
+
+def schema_version(db_path=None):
+    """Schema version of an existing history database (after migration on open).
+
+    Parameters
+    ----------
+    db_path : str or path-like, optional
+        Database file (default `default_history_path`).
+
+    Returns
+    -------
+    int
+        Equal to `CURRENT_VERSION` once opened by this code.
+
+    References
+    ----------
+    .. [1] SQLite documentation, "BEGIN TRANSACTION".
+    """
+    with open_history(db_path, create=False) as con:
+        return _read_version(con)
+
+
+# --------------------------------------------------------------------------- write / read
+
+def _recorded_now():
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="microseconds")
+
+
+def record_lot(db_path, record, *, busy_timeout_s=DEFAULT_BUSY_TIMEOUT_S):
+    """Record one lot; a lot already recorded for the same furnace is replaced.
+
+    Parameters
+    ----------
+    db_path : str or path-like or None
+        History database (None: `default_history_path`); created if missing.
+    record : LotRecord or mapping
+        See `make_record`.
+    busy_timeout_s : float
+        Wait for another process's write lock, seconds.
+
+    Returns
+    -------
+    bool
+        True when a lot with the same ``lot_id`` and ``furnace`` was there and has been
+        replaced (wafers and slots included), False for a new lot.
+
+    Raises
+    ------
+    FilmmapInputError
+        For an invalid record (nothing is written).
+
+    Notes
+    -----
+    The delete of the old lot and the inserts of the new one are one ``BEGIN
+    IMMEDIATE`` transaction: a reader sees the old lot or the new one, never a mix, and
+    a failure leaves the old one in place.
+
+    References
+    ----------
+    .. [1] SQLite documentation, "BEGIN TRANSACTION" (IMMEDIATE) and "Write-Ahead
+       Logging".
+    """
+    rec = make_record(record)
+    recorded_at = _recorded_now()
+    with open_history(db_path, busy_timeout_s=busy_timeout_s) as con, _transaction(con):
+        old = con.execute("SELECT id FROM lots WHERE lot_id = ? AND furnace = ?",
+                          (rec.lot_id, rec.furnace)).fetchone()
+        if old is not None:
+            con.execute("DELETE FROM wafers WHERE lot_ref = ?", (old[0],))
+            con.execute("DELETE FROM slots WHERE lot_ref = ?", (old[0],))
+            con.execute("DELETE FROM lots WHERE id = ?", (old[0],))
+        cur = con.execute(
+            "INSERT INTO lots (lot_id, furnace, run_date, recorded_at, recipe_json, "
+            "recipe_sha256, advice_json, lot_nc_path, lot_nc_sha256, lot_mean_nm, wtw_pct, "
+            "wiw_mean_pct, target_nm, tolerance_pct, applied_trims_json) "
+            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            (rec.lot_id, rec.furnace, rec.run_date, recorded_at, rec.recipe_json,
+             rec.recipe_sha256, _canonical_json(rec.advice), rec.lot_nc_path, rec.lot_nc_sha256,
+             rec.lot_mean_nm, rec.wtw_pct, rec.wiw_mean_pct, rec.target_nm, rec.tolerance_pct,
+             _canonical_json(rec.applied_trims_C)))
+        ref = cur.lastrowid
+        con.executemany(
+            "INSERT INTO wafers (lot_ref, wafer, slot, role, mean_nm, sigma_nm, nu_pct, "
+            "sites_used) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+            [(ref, w.wafer, w.slot, w.role, w.mean_nm, w.sigma_nm, w.nu_pct, w.sites_used)
+             for w in rec.wafers])
+        con.executemany("INSERT INTO slots (lot_ref, slot, mean_nm, offset_C) VALUES (?, ?, ?, ?)",
+                        [(ref, s.slot, s.mean_nm, s.offset_C) for s in rec.slots])
+    return old is not None
+
+
+_LOT_COLUMNS = ("id", "lot_id", "furnace", "run_date", "recorded_at", "recipe_json",
+                "advice_json", "lot_nc_path", "lot_nc_sha256", "lot_mean_nm", "wtw_pct",
+                "wiw_mean_pct", "target_nm", "tolerance_pct", "applied_trims_json")
+
+
+def _loads(text):
+    return None if text is None else json.loads(text)
+
+
+def lots(db_path=None, furnace=None):
+    """The recorded lots, oldest run first.
+
+    Parameters
+    ----------
+    db_path : str or path-like, optional
+        History database (default `default_history_path`).  A missing file is an empty
+        history (nothing is created).
+    furnace : str, optional
+        Only lots of this furnace (``""`` selects lots without a furnace name).
+
+    Returns
+    -------
+    list of LotRecord
+        Ordered by run date (lots without a run date last), then by the time they were
+        recorded, then by lot id; with wafers and slots, and ``recorded_at`` set.
+
+    References
+    ----------
+    .. [1] SQLite documentation, "SELECT" (ORDER BY).
+    """
+    path = _resolve(db_path)
+    if not path.exists():
+        return []
+    where, args = "", ()
+    if furnace is not None:
+        where, args = "WHERE furnace = ?", (str(furnace),)
+    with open_history(path, create=False) as con:
+        con.execute("BEGIN")  # one read snapshot for lots, wafers and slots
+        try:
+            rows = con.execute(f"SELECT {', '.join(_LOT_COLUMNS)} FROM lots {where} "
+                               "ORDER BY run_date IS NULL, run_date, recorded_at, lot_id",
+                               args).fetchall()
+            wafers, slots = {}, {}
+            sub = f"WHERE lot_ref IN (SELECT id FROM lots {where})"
+            for r in con.execute("SELECT lot_ref, wafer, slot, role, mean_nm, sigma_nm, nu_pct, "
+                                 f"sites_used FROM wafers {sub} ORDER BY slot, wafer", args):
+                wafers.setdefault(r[0], []).append(WaferSummary(*r[1:]))
+            for r in con.execute(f"SELECT lot_ref, slot, mean_nm, offset_C FROM slots {sub} "
+                                 "ORDER BY slot", args):
+                slots.setdefault(r[0], []).append(SlotSummary(*r[1:]))
+        finally:
+            con.execute("COMMIT")
+    out = []
+    for r in rows:
+        d = dict(zip(_LOT_COLUMNS, r))
+        out.append(LotRecord(
+            lot_id=d["lot_id"], furnace=d["furnace"], run_date=d["run_date"],
+            recipe=_loads(d["recipe_json"]), advice=_loads(d["advice_json"]),
+            lot_nc_path=d["lot_nc_path"], lot_nc_sha256=d["lot_nc_sha256"],
+            lot_mean_nm=d["lot_mean_nm"], wtw_pct=d["wtw_pct"], wiw_mean_pct=d["wiw_mean_pct"],
+            target_nm=d["target_nm"], tolerance_pct=d["tolerance_pct"],
+            applied_trims_C=_loads(d["applied_trims_json"]),
+            wafers=tuple(wafers.get(d["id"], ())), slots=tuple(slots.get(d["id"], ())),
+            recorded_at=d["recorded_at"]))
+    return out
+
+
+# --------------------------------------------------------------------------- from OUTDIR
+
+def _recipe_from_config(config):
+    steps = []
+    for s in config.recipe:
+        d = {"name": s.name, "ambient": s.ambient, "minutes": float(s.minutes)}
+        if s.at_C is not None:
+            d["at_C"] = float(s.at_C)
+        if s.from_C is not None:
+            d["from_C"], d["to_C"] = float(s.from_C), float(s.to_C)
+        steps.append(d)
+    return steps or None
+
+
+def _lot_file_from_attrs(attrs):
+    """(path, sha256) of the lot file recorded in lot.nc, or (None, None)."""
+    try:
+        inputs = json.loads(attrs.get("input_files_sha256", "[]"))
+        first = inputs[0]
+        return Path(first["file"]), str(first["sha256"])
+    except (ValueError, TypeError, KeyError, IndexError):
+        return None, None
+
+
+def _recipe_and_target_from_lot_file(path, sha256):
+    """Recipe steps, target and tolerance from the lot file, when it is unchanged."""
+    if path is None or not path.is_file() or file_sha256(path) != sha256:
+        return None, None, None
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeError, tomllib.TOMLDecodeError):
+        return None, None, None
+    steps = []
+    for s in (data.get("recipe") or {}).get("step") or []:
+        d = {k: s[k] for k in ("name", "ambient", "minutes", "at_C", "from_C", "to_C") if k in s}
+        for k in ("minutes", "at_C", "from_C", "to_C"):
+            if k in d:
+                d[k] = float(d[k])
+        steps.append(d)
+    target = data.get("target") or {}
+    return (steps or None, target.get("thickness_nm"), target.get("tolerance_pct"))
+
+
+def record_from_outputs(outdir, config=None, *, applied_trims_C=None, min_sites=None):
+    """Build the history record of a reduced lot from its output folder.
+
+    Parameters
+    ----------
+    outdir : str or path-like
+        The folder ``filmmap reduce`` wrote: ``lot.nc`` is required, ``advice.json``
+        is used when present.
+    config : filmmap.io.lotfile.LotConfig, optional
+        The lot file as read by reduce: gives the recipe, target and tolerance.  Without
+        it they are read from the lot file named in ``lot.nc`` (its first input file),
+        provided that file still exists with the SHA-256 recorded there; otherwise the
+        recipe is None and the target comes from the advice.
+    applied_trims_C : mapping, optional
+        Zone name -> trim in force during this run, K (for run-to-run control).
+    min_sites : int, optional
+        Wafers with fewer usable sites are left out of the lot figures (default
+        `filmmap.report.lotview.DEFAULT_MIN_SITES`, the threshold the reduce pipeline
+        uses for lot statistics and advice).
+
+    Returns
+    -------
+    LotRecord
+        ``lot_mean_nm`` and ``wtw_pct`` over the usable product wafers (grand mean and
+        100 s / mean with the n - 1 standard deviation, `filmmap.lotstats.wtw`),
+        ``wiw_mean_pct`` the mean of their ``nu_pct``; one `SlotSummary` per wafer with
+        the advice's effective offset of its slot.
+
+    Raises
+    ------
+    FilmmapInputError
+        When ``lot.nc`` is missing or lacks the pinned variables, or ``advice.json`` is
+        not valid JSON.
+
+    References
+    ----------
+    .. [1] Non-uniformity as 100 sigma / mean with the n - 1 sample standard deviation:
+       common practice, no source.
+    """
+    import numpy as np
+    import xarray as xr
+
+    from filmmap.lotstats.wtw import wafer_to_wafer
+
+    if min_sites is None:
+        from filmmap.report.lotview import DEFAULT_MIN_SITES as min_sites
+    outdir = Path(outdir).absolute()
+    nc = outdir / "lot.nc"
+    if not nc.is_file():
+        raise FilmmapInputError("no lot.nc in the output folder; run filmmap reduce first",
+                                file=outdir)
+    try:
+        with xr.open_dataset(nc) as ds:
+            attrs = dict(ds.attrs)
+            wafer = [str(w) for w in ds["wafer"].values]
+            slot = ds["slot"].values.astype(int)
+            role = ([str(r) for r in ds["role"].values] if "role" in ds.coords
+                    else ["product"] * len(wafer))
+            mean = ds["mean_nm"].values.astype(float)
+            sigma = ds["sigma_nm"].values.astype(float)
+            nu = ds["nu_pct"].values.astype(float)
+            used_sites = ds["sites_used"].values
+    except KeyError as exc:
+        raise FilmmapInputError(f"lot.nc lacks variable {exc}", file=nc) from None
+    except (OSError, ValueError) as exc:
+        raise FilmmapInputError(f"cannot read lot.nc: {exc}", file=nc) from None
+
+    advice = None
+    adv_path = outdir / "advice.json"
+    if adv_path.is_file():
+        try:
+            advice = json.loads(adv_path.read_text(encoding="utf-8"))
+        except ValueError as exc:
+            raise FilmmapInputError(f"advice.json is not valid JSON: {exc}",
+                                    file=adv_path) from None
+    by_slot = (advice or {}).get("effective_offset_C_by_slot") or {}
+
+    if config is not None:
+        recipe = _recipe_from_config(config)
+        target = config.target.thickness_nm if config.target is not None else None
+        tol = config.target.tolerance_pct if config.target is not None else None
+    else:
+        recipe, target, tol = _recipe_and_target_from_lot_file(*_lot_file_from_attrs(attrs))
+    if target is None and advice is not None:
+        target = advice.get("target_nm")
+
+    usable = np.asarray(used_sites, dtype=float) >= min_sites
+    m_use = np.where(usable, mean, np.nan)
+    wtw = wafer_to_wafer(wafer, slot, role, m_use, sigma)
+    prod = np.array([r == "product" for r in role]) & usable & np.isfinite(mean)
+    nu_p = nu[prod & np.isfinite(nu)]
+    wafers = [WaferSummary(wafer=w, slot=int(s), role=r, mean_nm=float(m), sigma_nm=float(sg),
+                           nu_pct=float(n), sites_used=int(u))
+              for w, s, r, m, sg, n, u in zip(wafer, slot, role, mean, sigma, nu, used_sites)]
+    slots = [SlotSummary(slot=int(s), mean_nm=float(m), offset_C=by_slot.get(str(int(s))))
+             for s, m in zip(slot, m_use)]
+    return make_record(LotRecord(
+        lot_id=str(attrs.get("lot_id", "")), furnace=str(attrs.get("furnace", "") or ""),
+        run_date=attrs.get("run_date") or None, recipe=recipe, advice=advice,
+        lot_nc_path=str(nc), lot_nc_sha256=file_sha256(nc),
+        lot_mean_nm=wtw.grand_mean_nm, wtw_pct=wtw.wtw_nu_pct,
+        wiw_mean_pct=float(np.mean(nu_p)) if nu_p.size else None,
+        target_nm=target, tolerance_pct=tol, applied_trims_C=applied_trims_C,
+        wafers=tuple(wafers), slots=tuple(slots)))

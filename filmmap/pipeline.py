@@ -1,0 +1,111 @@
+"""Reduce a lot into its output folder: the whole job behind ``filmmap reduce``, as an API.
+
+    from filmmap.pipeline import reduce_to_folder
+    reduction, written, seconds = reduce_to_folder("lot.toml", "results/")
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from pathlib import Path
+
+import numpy as np
+
+from filmmap.errors import FilmmapInputError
+from filmmap.growth.advice import advise_from_config
+from filmmap.io.atomic import write_text_atomic
+from filmmap.io.lotfile import read_lot_file
+from filmmap.io.publish import check_outdir, staged_output
+from filmmap.outputs import write_lot
+from filmmap.reduce import reduce_lot
+from filmmap.report import lot_view, write_summary_csv, write_summary_json
+from filmmap.report.lotview import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT
+
+# a wafer with fewer usable sites than MIN_SITES_FOR_LOT is left out of lot statistics and advice
+
+def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=False,
+                     figure_workers=None, progress=None):
+    """Reduce a lot and publish every output in ``outdir`` at once.
+
+    Parameters
+    ----------
+    lotfile : path-like
+        Lot file (TOML).
+    outdir : path-like
+        Output folder; replaced whole once the new results are complete.
+    workers : int, optional
+        Fitting processes (default: 2 with 2+ cores and 16+ files, else 1).
+    figures : bool
+        Wafer maps, contact sheet, report.html and report.pdf.
+    keep_spectra : bool
+        Also spectra.nc (measured, model, residual).
+    figure_workers : int, optional
+        Processes rendering maps.
+    progress : callable(total) -> object with update(n) and close(), optional
+        Progress display factory.
+
+    Returns
+    -------
+    (LotReduction, WrittenLot, seconds)
+    """
+
+    t0 = time.perf_counter()
+    check_outdir(outdir)  # refuse a foreign folder before spending time on fits
+    n_files = len(read_lot_file(lotfile).measurement.files)
+    if workers is None:
+        workers = 2 if (os.cpu_count() or 1) >= 2 and n_files >= 16 else 1
+    if workers < 1:
+        raise FilmmapInputError(f"--workers must be >= 1, got {workers}", field="--workers")
+    bar = progress(n_files) if progress is not None else None
+    try:
+        reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra,
+                               progress=(bar.update if bar is not None else None))
+    finally:
+        if bar is not None:
+            bar.close()
+    # every output goes to a staging folder that replaces OUTDIR only once complete
+    with staged_output(outdir) as stage:
+        written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+        view = lot_view(written.dataset, reduction.config, min_sites=MIN_SITES_FOR_LOT)
+        written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
+        written.files["summary.json"] = write_summary_json(view, stage)
+        advice = write_advice(reduction.config, written, stage)
+        if advice is not None:
+            written.files["advice.json"] = stage / "advice.json"
+        written.advice = advice
+        written.view = view
+        if figures:
+            from filmmap.figures_out import write_figures
+            from filmmap.report import ReportImages, write_html_report, write_pdf_report
+
+            written.files.update(write_figures(written.dataset, reduction.config, stage,
+                                               workers=figure_workers or max(2, workers)))
+            images = ReportImages(view, written.dataset, stage)
+            written.files["report.html"] = write_html_report(view, written.dataset, stage,
+                                                             images=images, advice=advice)
+            written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
+                                                           images=images, advice=advice)
+    written.outdir = Path(outdir)
+    return reduction, written, time.perf_counter() - t0
+
+
+
+
+def write_advice(config, written, folder):
+    """advice.json when the lot file has a recipe and a target; returns the advice or None."""
+    if not config.recipe or config.target is None:
+        return None
+    ds = written.dataset
+    usable = ds["sites_used"].values >= MIN_SITES_FOR_LOT
+    mean = np.where(usable, ds["mean_nm"].values, np.nan)
+    advice = advise_from_config(config, ds["slot"].values, mean, ds["role"].values,
+                                n_failed_sites=written.n_failed, n_sites=written.n_sites)
+    for w in ds.wafer.values[~usable]:
+        advice["warnings"].append(f"wafer {w} has fewer than {MIN_SITES_FOR_LOT} usable sites "
+                                  "and was left out of the calibration")
+    write_text_atomic(folder / "advice.json", json.dumps(advice, indent=1, allow_nan=False) + "\n")
+    return advice
+
+
