@@ -109,3 +109,101 @@ def write_advice(config, written, folder):
     return advice
 
 
+
+
+def _reduce_one(task):
+    """One lot of a many-lot run (a worker process, a Dask task or inline)."""
+    lotfile, outdir, figures, keep_spectra = task
+    reduction, written, seconds = reduce_to_folder(lotfile, outdir, workers=1, figures=figures,
+                                                   keep_spectra=keep_spectra, figure_workers=1)
+    return dict(lotfile=str(lotfile), outdir=str(outdir), lot_id=reduction.config.lot.id,
+                n_wafers=written.n_wafers, n_sites=written.n_sites, n_failed=written.n_failed,
+                mean_nm=written.mean_nm, seconds=seconds)
+
+
+def lot_folders(lotfiles, outroot):
+    """Output folder of each lot under OUTROOT: OUTROOT/<lot id> (file-system-safe)."""
+    from filmmap.wafermap.figures import safe_filename
+
+    outroot = Path(outroot)
+    seen = {}
+    folders = []
+    for lf in lotfiles:
+        lot_id = read_lot_file(lf).lot.id
+        if lot_id in seen:
+            raise FilmmapInputError(f"lot id {lot_id!r} is also the id of {seen[lot_id]}; expected "
+                                    "each lot once in a many-lot run", file=lf, field="lot.id")
+        seen[lot_id] = lf
+        folders.append(outroot / safe_filename(lot_id))
+    return folders
+
+
+def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
+                keep_spectra=False, progress=None):
+    """Reduce several lots, each into its own folder OUTROOT/<lot id>, in parallel.
+
+    Parameters
+    ----------
+    lotfiles : sequence of path-like
+    outroot : path-like
+        Parent folder of the lots' output folders.
+    workers : int, optional
+        Local processes (default: the core count, at most the number of lots).
+    scheduler : str, optional
+        Address of a Dask distributed scheduler (``tcp://host:port``): the lots run as
+        tasks on its cluster instead of local processes (needs ``filmmap[cluster]``).
+    figures, keep_spectra : bool
+        As for `reduce_to_folder`.
+    progress : callable, optional
+        Called with one result dict as each lot finishes.
+
+    Returns
+    -------
+    list of dict
+        Per lot, in the order given: lot id, output folder, wafers, sites, failures,
+        mean thickness, seconds. The numbers do not depend on how the lots ran: each lot
+        is the same deterministic computation in a process of its own.
+    """
+    lotfiles = [Path(p) for p in lotfiles]
+    folders = lot_folders(lotfiles, outroot)
+    for f in folders:
+        check_outdir(f)
+    tasks = [(lf, out, figures, keep_spectra) for lf, out in zip(lotfiles, folders)]
+    results = [None] * len(tasks)
+    if scheduler is not None:
+        try:
+            from distributed import Client
+        except ImportError:
+            raise FilmmapInputError("--scheduler needs the optional Dask extra: "
+                                    "pip install 'filmmap[cluster]'", field="--scheduler") from None
+        with Client(scheduler) as client:
+            futures = client.map(_reduce_one, tasks, pure=False)
+            for i, fut in enumerate(futures):
+                results[i] = fut.result()
+                if progress:
+                    progress(results[i])
+        return results
+    if workers is None:
+        workers = min(os.cpu_count() or 1, len(tasks))
+    if workers > 1 and len(tasks) > 1:
+        from concurrent.futures import ProcessPoolExecutor
+
+        with ProcessPoolExecutor(max_workers=workers) as pool:
+            for i, res in enumerate(pool.map(_reduce_one, tasks)):
+                results[i] = res
+                if progress:
+                    progress(res)
+    else:
+        for i, task in enumerate(tasks):
+            results[i] = _reduce_one(task)
+            if progress:
+                progress(results[i])
+    return results
+
+
+def record_history(outdir, config=None, db_path=None, applied_trims_C=None):
+    """Record a reduced lot (its published OUTDIR) in the run history; True if it replaced one."""
+    from filmmap.history import record_from_outputs, record_lot
+
+    record = record_from_outputs(outdir, config, applied_trims_C=applied_trims_C)
+    return record_lot(db_path, record), record

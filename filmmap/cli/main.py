@@ -26,9 +26,18 @@ def build_parser():
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
     red = sub.add_parser("reduce", help="fit every spectrum of a lot and write the results")
-    red.add_argument("lotfile", help="lot file (TOML)")
+    red.add_argument("lotfile", nargs="+", help="lot file(s) (TOML)")
     red.add_argument("-o", "--output", required=True, metavar="OUTDIR",
-                     help="output folder (created if missing)")
+                     help="output folder (created if missing); with several lot files, the "
+                          "parent folder OUTROOT of one folder per lot (OUTROOT/<lot id>)")
+    red.add_argument("--scheduler", metavar="ADDRESS",
+                     help="run the lots on a Dask distributed cluster (needs filmmap[cluster])")
+    red.add_argument("--history", metavar="PATH",
+                     help="run-history database (default: the per-user location, see README)")
+    red.add_argument("--no-history", action="store_true", help="do not record the lot(s)")
+    red.add_argument("--applied-trims", action="append", default=[], metavar="ZONE=KELVIN",
+                     help="zone trims that were in force during this run (for run-to-run "
+                          "control), e.g. --applied-trims load=+2.2 (repeatable)")
     red.add_argument("--no-figures", action="store_true", help="skip the PNG figures")
     red.add_argument("--workers", type=int, default=None, metavar="N",
                      help="fit wafers in N processes (default: 2 on a machine with 2 or more "
@@ -37,6 +46,21 @@ def build_parser():
     red.add_argument("--keep-spectra", action="store_true",
                      help="also write spectra.nc with measured and model spectra and residuals")
     red.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    hist = sub.add_parser("history", help="trend table and control charts of recorded lots")
+    hist.add_argument("--furnace", metavar="NAME", help="only this furnace's lots")
+    hist.add_argument("--history", metavar="PATH", help="run-history database")
+    hist.add_argument("-o", "--output", default="filmmap-history", metavar="DIR",
+                      help="folder for the charts (PNG) and history.html")
+    hist.add_argument("--baseline", type=int, default=20, metavar="N",
+                      help="lots in the baseline window of the control limits (default 20)")
+    hist.add_argument("--ewma-lambda", type=float, default=0.2, metavar="L",
+                      help="EWMA chart weight (default 0.2)")
+    hist.add_argument("--next-run", metavar="LOTFILE",
+                      help="run-to-run estimate for the next run of this lot file's recipe")
+    hist.add_argument("--weight", type=float, default=0.3, metavar="W",
+                      help="run-to-run EWMA weight of the newest lot (default 0.3)")
+    hist.add_argument("--debug", action="store_true", help="show tracebacks")
 
     pred = sub.add_parser("predict", help="predicted thickness by zone for the lot file's recipe")
     pred.add_argument("lotfile", help="lot file (TOML) with [[recipe.step]]")
@@ -128,10 +152,86 @@ def _fail(exc, debug):
 
 
 def cmd_reduce(args):
-    reduction, written, seconds = run_reduce(args.lotfile, args.output, args.workers,
+    trims = _parse_assignments(args.applied_trims, "--applied-trims", "ZONE") or None
+    if len(args.lotfile) > 1 or args.scheduler:
+        return _reduce_many(args, trims)
+    reduction, written, seconds = run_reduce(args.lotfile[0], args.output, args.workers,
                                              not args.no_figures, args.quiet, args.keep_spectra)
     if not args.quiet:
         print_summary(reduction, written, seconds)
+    if not args.no_history:
+        _record(args.output, reduction.config, args.history, trims, args.quiet)
+    return 0
+
+
+def _record(outdir, config, db_path, trims, quiet):
+    from filmmap.pipeline import record_history
+
+    replaced, record = record_history(outdir, config, db_path, trims)
+    if not quiet:
+        what = "replaced its earlier record" if replaced else "recorded"
+        print(f"  history: lot {record.lot_id} {what} in {db_path or 'the default history'}")
+
+
+def _reduce_many(args, trims):
+    from filmmap.io.lotfile import read_lot_file
+    from filmmap.pipeline import reduce_many
+
+    def report(res):
+        if not args.quiet:
+            print(f"  lot {res['lot_id']}: {res['n_wafers']} wafers, {res['n_sites']} sites, "
+                  f"{res['n_failed']} failed, mean {res['mean_nm']:.2f} nm -> {res['outdir']}")
+
+    results = reduce_many(args.lotfile, args.output, workers=args.workers,
+                          scheduler=args.scheduler, figures=not args.no_figures,
+                          keep_spectra=args.keep_spectra, progress=report)
+    if not args.no_history:
+        for lf, res in zip(args.lotfile, results):
+            _record(res["outdir"], read_lot_file(lf), args.history, trims, args.quiet)
+    if not args.quiet:
+        print(f"{len(results)} lots reduced into {args.output}")
+    return 0
+
+
+def cmd_history(args):
+    from filmmap.history import (control_charts, history_figures, lots, next_run_from_history,
+                                 save_chart, write_history_html)
+    from filmmap.io.publish import staged_output
+
+    rows = lots(args.history, furnace=args.furnace)
+    if not rows:
+        raise FilmmapInputError("no lots recorded" + (f" for furnace {args.furnace!r}"
+                                                      if args.furnace else "")
+                                + "; run filmmap reduce first", field="--history")
+    print(f"{'run date':<11} {'lot':<18} {'furnace':<24} {'mean nm':>9} {'WTW %':>7} {'WIW %':>7}")
+    for r in rows:
+        def f(v, d=2):
+            return "-" if v is None else f"{v:.{d}f}"
+        print(f"{str(r.run_date or '-'):<11} {r.lot_id:<18} {str(r.furnace or '-'):<24} "
+              f"{f(r.lot_mean_nm):>9} {f(r.wtw_pct, 3):>7} {f(r.wiw_mean_pct, 3):>7}")
+    charts = control_charts(rows, baseline=args.baseline, lam=args.ewma_lambda)
+    figs = history_figures(rows, charts)
+    with staged_output(args.output) as stage:
+        for i, (caption, fig) in enumerate(figs.items()):
+            save_chart(fig, stage / f"chart_{i + 1:02d}.png")
+        write_history_html(stage / "history.html", rows, figs, signals=charts)
+    print(f"charts and history.html in {args.output}")
+    for metric, (ind, ewma) in charts.items():
+        flagged = [rows[i].lot_id for i, fl in enumerate(ind.flags) if fl]
+        if flagged:
+            print(f"  {metric}: Western Electric signals at lots " + ", ".join(flagged))
+    if args.next_run:
+        from filmmap.io.lotfile import read_lot_file
+
+        config = read_lot_file(args.next_run)
+        mine = [r for r in rows if r.furnace == config.lot.furnace] or rows
+        nxt = next_run_from_history(mine, config, weight=args.weight).as_dict()
+        print(f"run-to-run estimate (EWMA weight {args.weight:g}) for {config.lot.id}'s recipe:")
+        for key, value in nxt.items():
+            if key != "caution":
+                print(f"  {key}: {value}")
+        print(nxt.get("caution", CAUTION))
+    print(CAUTION)
     return 0
 
 
@@ -220,7 +320,8 @@ def main(argv=None):
     if args.command is None:
         parser.print_help()
         return 0
-    handler = {"reduce": cmd_reduce, "demo": cmd_demo, "predict": cmd_predict}[args.command]
+    handler = {"reduce": cmd_reduce, "demo": cmd_demo, "predict": cmd_predict,
+               "history": cmd_history}[args.command]
     try:
         return handler(args)
     except FilmmapInputError as exc:
