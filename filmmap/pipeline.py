@@ -20,8 +20,9 @@ from filmmap.io.lotfile import read_lot_file
 from filmmap.io.publish import check_outdir, staged_output
 from filmmap.outputs import write_lot
 from filmmap.reduce import reduce_lot
-from filmmap.report import lot_view, write_summary_csv, write_summary_json
 from filmmap.report.lotview import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT
+from filmmap.report.lotview import lot_view
+from filmmap.report.summary_json import write_summary_csv, write_summary_json
 
 # a wafer with fewer usable sites than MIN_SITES_FOR_LOT is left out of lot statistics and advice
 

@@ -22,7 +22,7 @@ from filmmap.io.lotfile import read_lot_file
 from filmmap.io.spectra_csv import check_tables, read_spectra_csv, read_spectrum_file
 from filmmap.optics import Layer, Stack
 
-BATCH_SPECTRA = 1200
+BATCH_SPECTRA = 2500
 """Spectra per fitting batch: large enough for the batched fitter's speed, small
 enough that memory does not grow with the lot."""
 

@@ -183,7 +183,7 @@ def _as_data(technique, data, m):
 def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0, free=None,
                 nominal=None, search_nm=None, sigma=None, mask=None, exclude_bands_nm=(),
                 robust=False, poor_fit_chi2=POOR_FIT_CHI2, max_iter=40, max_candidates=32,
-                polarization="u", grid_fineness=16.0, workers=None, block_rows=1024):
+                polarization="u", grid_fineness=16.0, workers=None, block_rows=None):
     """Fit the free parameters of a stack to a batch of spectra.
 
     Parameters
@@ -224,8 +224,9 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
         Grid points per shortest in-film half-wave in the global search.
     workers : int, optional
         Threads sharing the work (default: up to 2, this project's core count).
-    block_rows : int
-        Spectra per block; bounds the memory of the candidate scores.
+    block_rows : int, optional
+        Spectra per block (default: the batch split evenly over the workers, at most
+        4096); bounds the memory of one block (about 0.2 GB at 4096 x 601 points).
 
     Returns
     -------
@@ -289,9 +290,11 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
         return _search_and_refine(ctx, y[sl], None if s_all is None else s_all[sl],
                                   None if mk is None else mk[sl])
 
-    blocks = [slice(a, min(a + block_rows, n)) for a in range(0, n, block_rows)]
     if workers is None:
         workers = min(2, os.cpu_count() or 1)
+    if block_rows is None:
+        block_rows = max(1, min(4096, -(-n // workers)))
+    blocks = [slice(a, min(a + block_rows, n)) for a in range(0, n, block_rows)]
     if workers > 1 and len(blocks) > 1:
         # numpy's elementwise kernels and BLAS release the GIL: threads share the library
         with ThreadPoolExecutor(workers) as pool:
@@ -341,9 +344,20 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
 def _prepare(ctx, y, s, mk):
     """Weights and masks of one block: masked points get weight 0 and value 0."""
     model, m = ctx["model"], ctx["m"]
+    finite = np.isfinite(y)
+    clean = finite.all() and mk is None and ctx["col_use"].all()
+    if s is None and model.technique == REFLECTANCE and clean:
+        # the common case, all points usable under the default noise model:
+        # 1 / (a + b |R|) in place, no masked copies of the data
+        a, b = DEFAULT_REFLECTANCE_SIGMA
+        sqrt_w = np.abs(y)
+        sqrt_w *= b
+        sqrt_w += a
+        np.reciprocal(sqrt_w, out=sqrt_w)
+        return y, sqrt_w, np.ones(y.shape, dtype=bool)
     if s is None:
         s = default_sigma(model.technique, y, m)
-    use = np.isfinite(y) & np.isfinite(s) & (s > 0)
+    use = finite & np.isfinite(s) & (s > 0)
     if mk is not None:
         use &= np.tile(mk, (1, y.shape[1] // m))
     use &= ctx["col_use"][None, :]

@@ -14,13 +14,15 @@ def weighted_residual(model, P, y, sqrt_w, jacobian):
 
     out = model.evaluate(P, jacobian=jacobian)
     f, J = out if jacobian else (out, None)
-    diff = y - f
+    r = np.subtract(y, f)
     if model.technique == ELLIPSOMETRY:
-        diff = wrap_delta_difference(diff, model.wavelength_nm.size)
-    r = diff * sqrt_w
+        r = wrap_delta_difference(r, model.wavelength_nm.size)
+    r *= sqrt_w
     if not jacobian:
         return r, None
-    return r, J * sqrt_w[:, :, None]
+    # the model hands back a fresh Jacobian array: weight it in place
+    J *= sqrt_w[:, :, None]
+    return r, J
 
 
 def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e-12):
@@ -77,7 +79,6 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
     P = np.array(P0, dtype=float, copy=True)
     n, p = P.shape
     r, Jw = weighted_residual(model, P, y, sqrt_w, True)
-    r = np.array(r)
     chi2 = np.einsum("nm,nm->n", r, r)
     JTJ = np.einsum("nmi,nmj->nij", Jw, Jw)
     grad = np.einsum("nmi,nm->ni", Jw, r)

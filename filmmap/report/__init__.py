@@ -15,20 +15,36 @@ or step by step::
     write_pdf_report(view, ds, outdir, images=images)
 """
 
+from importlib import import_module
 from pathlib import Path
 
-from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS, CAUTIONS_TITLE
-from filmmap.report.fitquality import draw_fit_quality, fit_quality_figure
-from filmmap.report.html import render_html, write_html_report
-from filmmap.report.images import ReportImages
-from filmmap.report.lotview import DEFAULT_MIN_SITES, FailedSite, LotView, WaferLine, lot_view
-from filmmap.report.pdf import BASE_LOT_PAGES, lot_page_count, pdf_page_plan, write_pdf_report
-from filmmap.report.slotplot import draw_slot_profile, slot_profile_figure
-from filmmap.report.summary_json import (SUMMARY_CSV_COLUMNS, summary_csv_rows, summary_dict,
-                                         wafer_rows, write_summary_csv, write_summary_json)
+# Exports load on first use (PEP 562), so that `reduce --no-figures` and the summary
+# files never pay for importing matplotlib.
+_EXPORTS = {
+    "CAUTION_PARAGRAPHS": "cautions", "CAUTIONS": "cautions", "CAUTIONS_TITLE": "cautions",
+    "draw_fit_quality": "fitquality", "fit_quality_figure": "fitquality",
+    "render_html": "html", "write_html_report": "html",
+    "ReportImages": "images",
+    "DEFAULT_MIN_SITES": "lotview", "FailedSite": "lotview", "LotView": "lotview",
+    "WaferLine": "lotview", "lot_view": "lotview",
+    "BASE_LOT_PAGES": "pdf", "lot_page_count": "pdf", "pdf_page_plan": "pdf",
+    "write_pdf_report": "pdf",
+    "draw_slot_profile": "slotplot", "slot_profile_figure": "slotplot",
+    "SUMMARY_CSV_COLUMNS": "summary_json", "summary_csv_rows": "summary_json",
+    "summary_dict": "summary_json", "wafer_rows": "summary_json",
+    "write_summary_csv": "summary_json", "write_summary_json": "summary_json",
+}
 
 
-def write_reports(ds, config, outdir, *, advice=None, min_sites=DEFAULT_MIN_SITES, dpi=100,
+def __getattr__(name):
+    if name in _EXPORTS:
+        value = getattr(import_module(f"filmmap.report.{_EXPORTS[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'filmmap.report' has no attribute {name!r}")
+
+
+def write_reports(ds, config, outdir, *, advice=None, min_sites=5, dpi=100,
                   pdf=True, html=True):
     """Write summary.json, report.html and report.pdf for a reduced lot.
 
@@ -55,6 +71,12 @@ def write_reports(ds, config, outdir, *, advice=None, min_sites=DEFAULT_MIN_SITE
         ``{"summary.json": path, "report.html": path, "report.pdf": path}``
         (the written ones) and ``"view"``: the `LotView`.
     """
+    from filmmap.report.html import write_html_report
+    from filmmap.report.images import ReportImages
+    from filmmap.report.lotview import lot_view
+    from filmmap.report.pdf import write_pdf_report
+    from filmmap.report.summary_json import write_summary_json
+
     outdir = Path(outdir)
     view = lot_view(ds, config, min_sites=min_sites)
     out = {"summary.json": write_summary_json(view, outdir)}
