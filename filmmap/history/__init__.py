@@ -22,52 +22,60 @@ References
    (from memory).
 """
 
-from filmmap.history.charts import (
-    METRICS,
-    RULE_TEXT,
-    EwmaChart,
-    IndividualsChart,
-    baseline_limits,
-    control_charts,
-    ewma_chart,
-    ewma_figure,
-    history_figures,
-    history_html,
-    individuals_chart,
-    metric_series,
-    save_chart,
-    trend_figure,
-    western_electric_flags,
-    write_history_html,
-)
-from filmmap.history.r2r import (
-    FurnaceEstimate,
-    LotOffsets,
-    NextRun,
-    SimulationResult,
-    SyntheticFurnace,
-    estimate_from_records,
-    estimate_furnace,
-    ewma_filter,
-    lot_offsets,
-    next_run,
-    next_run_from_history,
-    simulate,
-)
-from filmmap.history.store import (
-    CURRENT_VERSION,
-    MIGRATIONS,
-    LotRecord,
-    SlotSummary,
-    WaferSummary,
-    default_history_path,
-    lots,
-    make_record,
-    open_history,
-    record_from_outputs,
-    record_lot,
-    schema_version,
-)
+from importlib import import_module
+
+# names load on first use (PEP 562): recording a lot must not import the chart code
+_EXPORTS = {
+    'METRICS': 'charts',
+    'RULE_TEXT': 'charts',
+    'EwmaChart': 'charts',
+    'IndividualsChart': 'charts',
+    'baseline_limits': 'charts',
+    'control_charts': 'charts',
+    'ewma_chart': 'charts',
+    'ewma_figure': 'charts',
+    'history_figures': 'charts',
+    'history_html': 'charts',
+    'individuals_chart': 'charts',
+    'metric_series': 'charts',
+    'save_chart': 'charts',
+    'trend_figure': 'charts',
+    'western_electric_flags': 'charts',
+    'write_history_html': 'charts',
+    'FurnaceEstimate': 'r2r',
+    'LotOffsets': 'r2r',
+    'NextRun': 'r2r',
+    'SimulationResult': 'r2r',
+    'SyntheticFurnace': 'r2r',
+    'estimate_from_records': 'r2r',
+    'estimate_furnace': 'r2r',
+    'ewma_filter': 'r2r',
+    'lot_offsets': 'r2r',
+    'next_run': 'r2r',
+    'next_run_from_history': 'r2r',
+    'simulate': 'r2r',
+    'CURRENT_VERSION': 'store',
+    'MIGRATIONS': 'store',
+    'LotRecord': 'store',
+    'SlotSummary': 'store',
+    'WaferSummary': 'store',
+    'default_history_path': 'store',
+    'lots': 'store',
+    'make_record': 'store',
+    'open_history': 'store',
+    'record_from_outputs': 'store',
+    'record_lot': 'store',
+    'schema_version': 'store',
+}
+
+
+def __getattr__(name):
+    if name in _EXPORTS:
+        value = getattr(import_module(f"filmmap.history.{_EXPORTS[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'filmmap.history' has no attribute {name!r}")
+
 
 __all__ = [
     "CURRENT_VERSION", "MIGRATIONS", "LotRecord", "SlotSummary", "WaferSummary",

@@ -47,15 +47,15 @@ def lot_dataset(reduction, roles=None):
     s = reduction.sites
     config = reduction.config
     # wafers in boat order, then by id
-    wafer_ids, first_idx = np.unique(s.wafer, return_index=True)
+    wafer_ids, first_idx, wafer_of_row = np.unique(s.wafer, return_index=True, return_inverse=True)
     wafer_slot = s.slot[first_idx]
     order = np.lexsort((wafer_ids, wafer_slot))
     wafer_ids, wafer_slot = wafer_ids[order], wafer_slot[order]
-    site_ids = np.unique(s.site)
-    wi = {w: i for i, w in enumerate(wafer_ids)}
-    si = {v: j for j, v in enumerate(site_ids)}
-    rows = np.array([wi[w] for w in s.wafer])
-    cols = np.array([si[v] for v in s.site])
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.size)
+    rows = rank[wafer_of_row.ravel()]
+    site_ids, cols = np.unique(s.site, return_inverse=True)
+    cols = cols.ravel()
     shape = (wafer_ids.size, site_ids.size)
 
     def grid(values, fill, dtype=float):
