@@ -124,12 +124,22 @@ def _fit_batch(task):
     if any(t.wavelength_nm.size != wl.size or not np.allclose(t.wavelength_nm, wl, rtol=1e-9, atol=0)
            for t in tables[1:]):
         check_tables(tables, diameter_mm)  # names the file and the first differing column
+    for medium in [stack.ambient, *[layer.material for layer in stack.layers], stack.substrate]:
+        try:
+            medium.check_range(wl)
+        except FilmmapInputError as exc:
+            raise FilmmapInputError(exc.reason, file=tables[0].path, field="wavelength") from None
     if technique == "reflectance":
         if ref is not None:
+            if ref.wavelength_nm.size != wl.size or not np.allclose(ref.wavelength_nm, wl,
+                                                                     rtol=1e-9, atol=0):
+                raise FilmmapInputError(f"wavelengths differ from the reference spectrum "
+                                        f"{ref.path}; expected the same I@<nm> columns",
+                                        file=tables[0].path)
             counts = np.concatenate([t.data["I"] for t in tables])
             bare = Stack(stack.substrate, [], stack.ambient)
             R_si = bare.reflectance(wl, angle)
-            data = intensity_to_reflectance(counts, dark, ref, R_si)
+            data = intensity_to_reflectance(counts, dark, ref.counts, R_si)
         else:
             data = np.concatenate([t.data["R"] for t in tables])
     else:
@@ -146,25 +156,7 @@ def _fit_batch(task):
         out["model"] = model.evaluate(P)
         out["measured"] = data if technique == "reflectance" else np.concatenate(data, axis=1)
     # the tables travel back without their spectra: only the row metadata is needed
-    meta = [dict(path=t.path, sha256=t.sha256, technique=t.technique, wafer=t.wafer, slot=t.slot,
-                 site=t.site, x_mm=t.x_mm, y_mm=t.y_mm, wavelength_nm=t.wavelength_nm,
-                 line=t.line) for t in tables]
-    return out, meta
-
-
-class _Meta:
-    """Row metadata of a spectra table (a SpectraTable without its spectra)."""
-
-    def __init__(self, d):
-        self.__dict__.update(d)
-        self.data = {}
-
-    @property
-    def n_rows(self):
-        return int(self.slot.size)
-
-    def where(self, row):
-        return f"{self.path}:{int(self.line[row])}"
+    return out, [replace(t, data={}) for t in tables]
 
 
 def _batches(files, rows_hint=49):
@@ -214,33 +206,21 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None):
     files = list(m.files)
     batches = _batches(files)
     threads = 1 if workers > 1 else None
-    tasks = [(b, m.technique, m.reflectance_unit, angle, stack, free, dark,
-              None if ref is None else ref.counts, keep_spectra, threads, m.wafer_diameter_mm)
-             for b in batches]
-    # material validity is checked once, up front, with the first file's wavelengths
-    first = read_spectra_csv(files[0], m.file_technique, m.reflectance_unit)
-    for medium in [stack.ambient, *[layer.material for layer in stack.layers], stack.substrate]:
-        try:
-            medium.check_range(first.wavelength_nm)
-        except FilmmapInputError as exc:
-            raise FilmmapInputError(exc.reason, file=files[0], field="wavelength") from None
-    if ref is not None and (ref.wavelength_nm.size != first.wavelength_nm.size or not np.allclose(
-            ref.wavelength_nm, first.wavelength_nm, rtol=1e-9, atol=0)):
-        raise FilmmapInputError(f"wavelengths differ from the reference spectrum {ref.path}; "
-                                "expected the same I@<nm> columns", file=files[0])
+    tasks = [(b, m.technique, m.reflectance_unit, angle, stack, free, dark, ref, keep_spectra,
+              threads, m.wafer_diameter_mm) for b in batches]
     results, metas = [], []
     if workers > 1 and len(tasks) > 1:
         with ProcessPoolExecutor(max_workers=workers) as pool:
             for out, meta in pool.map(_fit_batch, tasks):
                 results.append(out)
-                metas.extend(_Meta(d) for d in meta)
+                metas.extend(meta)
                 if progress:
                     progress(len(meta))
     else:
         for task in tasks:
             out, meta = _fit_batch(task)
             results.append(out)
-            metas.extend(_Meta(d) for d in meta)
+            metas.extend(meta)
             if progress:
                 progress(len(meta))
     boat = config.boat.slots if config.boat is not None else None

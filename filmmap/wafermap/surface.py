@@ -176,7 +176,7 @@ def tps_surface(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
     ----------
     .. [1] J. Duchon, "Splines minimizing rotation-invariant semi-norms in
        Sobolev spaces", in Constructive Theory of Functions of Several
-       Variables, Lecture Notes in Math. 571, 85-100 (Springer, 1977).
+       Variables, Springer LNM vol. 571, 85-100 (1977).
     .. [2] scipy.interpolate.RBFInterpolator, kernel "thin_plate_spline"
        (phi(r) = r^2 log r, degree-1 polynomial, smoothing 0 = interpolating).
     """
