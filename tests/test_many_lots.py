@@ -72,3 +72,20 @@ def test_history_command_charts_recorded_lots(tmp_path, capsys):
     assert len(list(out.glob("chart_*.png"))) >= 3
     assert main(["history", "--history", str(tmp_path / "empty.sqlite"), "-o",
                  str(tmp_path / "h2")]) == 2
+
+
+def test_reduce_prints_run_to_run_estimate_after_two_lots(tmp_path, capsys):
+    # the EWMA run-to-run estimate (Sachs, Hu & Ingolfsson 1995, from memory) joins the
+    # advice once the furnace has two recorded lots; the invented demo lot, run twice
+    from filmmap.demo import generate_demo_lot
+    lot = generate_demo_lot(tmp_path / "lot")
+    db = tmp_path / "h.sqlite"
+    assert main(["reduce", str(lot), "-o", str(tmp_path / "a"), "--no-figures",
+                 "--history", str(db)]) == 0
+    assert "run-to-run" not in capsys.readouterr().out
+    lot.write_text(lot.read_text().replace('id = "DEMO-W2-0417"', 'id = "DEMO-W2-0418"')
+                   .replace('run_date = "2026-11-30"', 'run_date = "2026-12-01"'))
+    assert main(["reduce", str(lot), "-o", str(tmp_path / "b"), "--no-figures",
+                 "--history", str(db)]) == 0
+    out = capsys.readouterr().out
+    assert "run-to-run (EWMA w = 0.3 over 2 lots" in out and "advisory only" in out

@@ -168,9 +168,35 @@ def _record(outdir, config, db_path, trims, quiet):
     from filmmap.pipeline import record_history
 
     replaced, record = record_history(outdir, config, db_path, trims)
-    if not quiet:
-        what = "replaced its earlier record" if replaced else "recorded"
-        print(f"  history: lot {record.lot_id} {what} in {db_path or 'the default history'}")
+    if quiet:
+        return
+    what = "replaced its earlier record" if replaced else "recorded"
+    print(f"  history: lot {record.lot_id} {what} in {db_path or 'the default history'}")
+    _print_run_to_run(config, db_path)
+
+
+RUN_TO_RUN_WEIGHT = 0.3
+"""EWMA weight of the newest lot in the run-to-run estimate printed after a reduce."""
+
+
+def _print_run_to_run(config, db_path):
+    """With two or more recorded lots of this furnace: the EWMA run-to-run estimate."""
+    from filmmap.history import lots, next_run_from_history
+
+    if not config.recipe or config.target is None or not config.lot.furnace:
+        return
+    rows = lots(db_path, furnace=config.lot.furnace)
+    if len(rows) < 2:
+        return
+    try:
+        nxt = next_run_from_history(rows, config, weight=RUN_TO_RUN_WEIGHT)
+    except FilmmapInputError as exc:
+        print(f"  run-to-run: no estimate ({exc.reason})")
+        return
+    trims = ", ".join(f"{k} {v:+.2f} C" for k, v in nxt.zone_trims_C.items())
+    print(f"  run-to-run (EWMA w = {RUN_TO_RUN_WEIGHT:g} over {len(rows)} lots of "
+          f"{config.lot.furnace}): {nxt.adjust_step} {nxt.minutes_next:.1f} min"
+          + (f"; trims in force {trims}" if trims else "") + " (advisory only)")
 
 
 def _reduce_many(args, trims):
