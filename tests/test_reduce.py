@@ -180,6 +180,28 @@ def test_workers_give_identical_results(tmp_path):
     np.testing.assert_allclose(outs[0]["thickness"], outs[1]["thickness"], atol=1e-3, rtol=0)
 
 
+def test_fit_offset_for_thin_films(tmp_path):
+    # a thin oxide measured with a stray-light offset: with fit_offset = true the offset is
+    # fitted and the thickness lands within its (larger) uncertainty (tmm spectra + offset)
+    wafers = {"T1": (4, np.array([6.0, 7.5, 9.0, 11.0, 8.0, 10.0, 6.5, 12.0, 9.5]))}
+    lot, truth = write_lot(tmp_path / "lot", wafers, extra_toml="fit_offset = true\n")
+    f = tmp_path / "lot" / "T1.csv"
+    lines = f.read_text().splitlines()
+    out_lines = lines[:2]
+    for row in lines[2:]:
+        cells = row.split(",")
+        out_lines.append(",".join(cells[:5] + [f"{float(v) + 0.004:.12g}" for v in cells[5:]]))
+    f.write_text("\n".join(out_lines) + "\n")
+    r = run_cli("reduce", lot, "-o", tmp_path / "out", "--no-figures", "--quiet")
+    assert r.returncode == 0, r.stderr
+    ds = xr.open_dataset(tmp_path / "out" / "lot.nc")
+    np.testing.assert_allclose(ds["reflectance_offset"].values, 0.004, atol=2e-4)
+    for (wid, site), d in truth.items():
+        v = float(ds["thickness"].sel(wafer=wid, site=site))
+        s = float(ds["thickness_sigma"].sel(wafer=wid, site=site))
+        assert abs(v - d) <= max(3 * s, 0.05), (site, v, d, s)
+
+
 # --- input errors: exit 2, the file and the field or line named --------------------
 
 @pytest.fixture

@@ -129,7 +129,7 @@ _KEYS = {
     "": ("lot", "measurement", "stack", "target", "boat", "furnace", "recipe"),
     "lot": ("id", "furnace", "run_date"),
     "measurement": ("technique", "angle_deg", "files", "wafer_diameter_mm", "edge_exclusion_mm",
-                    "reflectance_unit", "dark_file", "reference_file"),
+                    "reflectance_unit", "dark_file", "reference_file", "fit_offset"),
     "stack": ("substrate", "orientation", "layer"),
     "stack.layer": ("material", "nk_file", "cauchy", "thickness_nm", "search_nm", "fit"),
     "stack.layer.cauchy": ("A", "B", "C", "range_nm"),
@@ -185,6 +185,9 @@ class MeasurementConfig:
         ``"fraction"`` or ``"percent"`` (unit of ``R@`` columns).
     dark_file, reference_file : pathlib.Path or None
         Raw-intensity mode spectra (absolute paths).
+    fit_offset : bool
+        Fit a reflectance offset (stray light, dark level) with the thicknesses, so
+        that it cannot pass for a few nm of oxide on thin films (default false).
     """
 
     technique: str
@@ -196,6 +199,7 @@ class MeasurementConfig:
     reflectance_unit: str = "fraction"
     dark_file: Path | None = None
     reference_file: Path | None = None
+    fit_offset: bool = False
 
     @property
     def raw_intensity(self):
@@ -937,10 +941,14 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude):
     patterns = rd.value(t, "files", w, "array")
     extra = [p for p in (reference, dark) if p is not None]
     files = _resolve_globs(rd, patterns, folder, allow_outside, list(exclude) + extra)
+    fit_offset = rd.value(t, "fit_offset", w, "boolean", default=False)
+    if fit_offset and technique != "reflectance":
+        rd.fail("fit_offset applies to technique 'reflectance' only; remove it",
+                f"{w}.fit_offset")
     return MeasurementConfig(technique=technique, angle_deg=angle, files=files,
                              file_globs=tuple(patterns), wafer_diameter_mm=diameter,
                              edge_exclusion_mm=edge, reflectance_unit=unit, dark_file=dark,
-                             reference_file=reference)
+                             reference_file=reference, fit_offset=bool(fit_offset))
 
 
 def _read_target(rd, doc, stack):

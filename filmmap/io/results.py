@@ -23,6 +23,8 @@ def _layer_var(name, names, top):
         return "thickness"
     if name.startswith("thickness[") and name.endswith("]"):
         return "thickness_" + name[len("thickness["):-1]
+    if name in ("offset", "scale"):
+        return f"reflectance_{name}"
     return name.replace("[", "_").replace("]", "")
 
 
