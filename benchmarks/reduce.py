@@ -14,7 +14,6 @@ Run: python benchmarks/reduce.py
 
 from __future__ import annotations
 
-import resource
 import subprocess
 import sys
 import tempfile

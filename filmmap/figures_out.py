@@ -34,14 +34,14 @@ def write_figures(ds, config, outdir, workers=1):
     wafers, slots = ds.wafer.values, ds.slot.values
     written = {}
     fig_dir = outdir / "figures"
-    for rows, x, y, present in coordinate_groups(ds["x_mm"].values, ds["y_mm"].values):
+    groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
+    for rows, x, y, present in groups:
         paths = render_wafer_pngs(fig_dir, np.where(present, t[rows], np.nan), ok[rows] & present,
                                   x, y, m.wafer_diameter_mm, m.edge_exclusion_mm,
                                   wafer_ids=[str(w) for w in wafers[rows]],
                                   slots=[int(s) for s in slots[rows]], workers=workers)
         for w, path in zip(wafers[rows], paths):
             written[f"figures/{Path(path).name}"] = path
-    groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
     if len(groups) == 1:
         rows, x, y, present = groups[0]
         fig = lot_contact_sheet(np.where(present, t, np.nan), ok & present, x, y,

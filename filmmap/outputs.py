@@ -40,6 +40,9 @@ class WrittenLot:
     n_failed: int = 0
     mean_nm: float = float("nan")
     failures: dict = field(default_factory=dict)
+    dataset: object = None   # the xarray.Dataset written to lot.nc
+    view: object = None      # the lot view (filmmap.report.lotview.LotView)
+    advice: dict | None = None
 
 
 def wafer_roles(config, wafer_ids, wafer_slots):

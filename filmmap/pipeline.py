@@ -54,14 +54,15 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
 
     t0 = time.perf_counter()
     check_outdir(outdir)  # refuse a foreign folder before spending time on fits
-    n_files = len(read_lot_file(lotfile).measurement.files)
+    config = read_lot_file(lotfile)
+    n_files = len(config.measurement.files)
     if workers is None:
         workers = 2 if (os.cpu_count() or 1) >= 2 and n_files >= 16 else 1
     if workers < 1:
         raise FilmmapInputError(f"--workers must be >= 1, got {workers}", field="--workers")
     bar = progress(n_files) if progress is not None else None
     try:
-        reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra,
+        reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra, config=config,
                                progress=(bar.update if bar is not None else None))
     finally:
         if bar is not None:

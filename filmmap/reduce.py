@@ -180,7 +180,7 @@ def _dark_and_reference(config):
     return dark.counts, ref, [dark, ref]
 
 
-def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None):
+def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=None):
     """Fit every spectrum of a lot.
 
     Parameters
@@ -193,12 +193,15 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None):
         Keep measured and model spectra for inspection (memory grows with the lot).
     progress : callable, optional
         Called with the number of wafers (files) finished after each batch.
+    config : LotConfig, optional
+        The lot file already read (`filmmap.io.lotfile.read_lot_file`); read here if None.
 
     Returns
     -------
     LotReduction
     """
-    config = read_lot_file(lot_file)
+    if config is None:
+        config = read_lot_file(lot_file)
     stack, free, _names = build_stack(config)
     m = config.measurement
     dark, ref, extra_inputs = _dark_and_reference(config)

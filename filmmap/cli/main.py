@@ -82,9 +82,7 @@ def build_parser():
     return parser
 
 
-def _progress_bar(total, quiet, desc):
-    if quiet:
-        return None
+def _progress_bar(total, desc):
     from tqdm import tqdm
     return tqdm(total=total, desc=desc, unit="wafer", leave=False, disable=None)
 
@@ -95,7 +93,7 @@ def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_sp
     from filmmap.pipeline import reduce_to_folder
 
     return reduce_to_folder(lotfile, outdir, workers, figures, keep_spectra, figure_workers,
-                            progress=None if quiet else (lambda n: _progress_bar(n, quiet, "fitting")))
+                            progress=None if quiet else (lambda n: _progress_bar(n, "fitting")))
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -124,7 +122,7 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
     if written.failures:
         p("  failures by reason: " + ", ".join(f"{k} x{v}" for k, v in written.failures.items()) + "\n")
     p(f"  mean thickness (all ok sites): {written.mean_nm:.2f} nm\n")
-    view = getattr(written, "view", None)
+    view = written.view
     if view is not None:
         p(f"  verdict: {view.verdict}\n")
         for w in view.warnings[:5]:
@@ -140,7 +138,7 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
         p(f"    {name}\n")
     if n_maps:
         p(f"    figures/  ({n_maps} wafer maps, PNG)\n")
-    if getattr(written, "advice", None):
+    if written.advice:
         print_advice(written.advice, stream)
     p(f"  done in {seconds:.1f} s\n")
 

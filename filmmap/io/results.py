@@ -17,7 +17,7 @@ FIT_QUALITY_DEFINITION = ("reduced chi-square: sum(w r^2) / (points - parameters
                           "from the noise model; about 1 when the model explains the data to the noise")
 
 
-def _layer_var(name, names, top):
+def _layer_var(name, top):
     """Variable name of a fitted parameter: 'thickness' for the top fitted layer."""
     if name == top:
         return "thickness"
@@ -68,7 +68,7 @@ def lot_dataset(reduction, roles=None):
     top = next((n for n in s.names if n.startswith("thickness[")), s.names[0])
     data_vars = {}
     for k, name in enumerate(s.names):
-        var = _layer_var(name, s.names, top)
+        var = _layer_var(name, top)
         unit = "nm" if name.startswith("thickness") else ("1" if "offset" not in name else "fraction")
         data_vars[var] = (("wafer", "site"), grid(s.values[:, k], np.nan),
                           {"units": unit, "long_name": f"fitted {name}",
