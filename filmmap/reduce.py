@@ -18,6 +18,11 @@ import numpy as np
 
 from filmmap.errors import FilmmapInputError
 from filmmap.fitting import fit_spectra, free_parameters
+from filmmap.fitting.convention import REVERSED_DELTA_HINT, ConventionCheck, \
+    check_delta_convention
+from filmmap.fitting.suspect import flag_suspects
+from filmmap.fitting.systematics import SPECTROSCOPIC_MIN_WAVELENGTHS, Systematics
+from filmmap.materials import ScaledIndex
 from filmmap.io.lotfile import read_lot_file
 from filmmap.io.spectra_csv import check_tables, read_spectra_csv, read_spectrum_file
 from filmmap.optics import Layer, Stack
@@ -48,6 +53,10 @@ class SiteResults:
     names: list
     model_spectra: np.ndarray | None = None
     measured_spectra: np.ndarray | None = None
+    sigma_stat: np.ndarray | None = None
+    correlation: np.ndarray | None = None
+    unchecked: np.ndarray | None = None
+    suspect: np.ndarray | None = None
 
 
 @dataclass
@@ -60,6 +69,8 @@ class LotReduction:
     inputs: list = field(default_factory=list)
     outputs: dict = field(default_factory=dict)
     wavelength_nm: np.ndarray | None = None
+    warnings: list = field(default_factory=list)
+    free: list = field(default_factory=list)
 
 
 def build_stack(config):
@@ -77,7 +88,8 @@ def build_stack(config):
         base = lc.model.name
         name = base if base not in names else f"{base}_{i + 1}"
         names.append(name)
-        layers.append(Layer(lc.model, lc.thickness_nm or 0.0, name))
+        model = lc.model if lc.index_scale == 1.0 else ScaledIndex(lc.model, lc.index_scale)
+        layers.append(Layer(model, lc.thickness_nm or 0.0, name))
     stack = Stack(config.stack.substrate, layers)
     fit_layers = [i for i, lc in enumerate(config.stack.layers) if lc.fit]
     nominal = {i: lc.thickness_nm for i, lc in enumerate(config.stack.layers)
@@ -86,11 +98,37 @@ def build_stack(config):
               if lc.fit and lc.search_nm is not None}
     # a layer with both a nominal and search_nm: search_nm bounds, the nominal breaks ties
     free = free_parameters(stack, layers=fit_layers, nominal=nominal or None,
-                           search_nm=search or None,
-                           offset=bool(getattr(config.measurement, "fit_offset", False)))
+                           search_nm=search or None, systematics=lot_systematics(config),
+                           technique=config.measurement.technique,
+                           index_scale=[i for i, lc in enumerate(config.stack.layers)
+                                        if lc.fit_index_scale])
     free = [replace(f, start=config.stack.layers[f.layer].thickness_nm)
             if f.kind == "thickness" and f.start is None else f for f in free]
     return stack, free, names
+
+
+def lot_systematics(config, n_wavelengths=None):
+    """The instrument systematics of a lot: the technique's defaults, overridden by [measurement].
+
+    Parameters
+    ----------
+    config : LotConfig
+    n_wavelengths : int, optional
+        Wavelengths per spectrum (decides whether an ellipsometer is spectroscopic);
+        when None, taken as spectroscopic (the wavelength-shift prior then applies
+        only if the files hold enough wavelengths, see `fit_lot_batch`).
+
+    Returns
+    -------
+    Systematics
+    """
+    m = config.measurement
+    base = Systematics.defaults(m.technique, SPECTROSCOPIC_MIN_WAVELENGTHS
+                                if n_wavelengths is None else n_wavelengths, m.angle_deg)
+    over = {k: v for k, v in (("offset_sigma", m.offset_sigma), ("scale_sigma", m.scale_sigma),
+                              ("wavelength_shift_nm", m.wavelength_shift_sigma_nm),
+                              ("angle_offset_deg", m.angle_offset_sigma_deg)) if v is not None}
+    return replace(base, **over)
 
 
 def intensity_to_reflectance(counts, dark, reference, R_si_model):
@@ -115,20 +153,50 @@ def intensity_to_reflectance(counts, dark, reference, R_si_model):
     return np.where(span > 0, R, np.nan)
 
 
+@dataclass(frozen=True)
+class BatchTask:
+    """What one batch of files needs to be read and fitted (picklable for worker processes)."""
+
+    paths: tuple
+    technique: str
+    unit: str
+    angle: float
+    stack: Stack
+    free: tuple
+    dark: np.ndarray | None
+    ref: object
+    keep_spectra: bool
+    threads: int | None
+    diameter_mm: float
+    shift_explicit: bool = False
+    delta_reversed: bool = False
+
+
+def _free_for(free, technique, n_wavelengths, shift_explicit):
+    """Drop the default wavelength-shift prior for laser-line data (too few wavelengths)."""
+    if shift_explicit or n_wavelengths >= SPECTROSCOPIC_MIN_WAVELENGTHS:
+        return list(free)
+    return [f for f in free if f.kind != "wavelength_shift"]
+
+
 def _fit_batch(task):
     """Read, convert and fit a batch of files (runs in a worker process or inline)."""
-    (paths, technique, unit, angle, stack, free, dark, ref, keep_spectra, threads, diameter_mm) = task
+    paths, technique, unit, angle, stack = (task.paths, task.technique, task.unit, task.angle,
+                                            task.stack)
+    dark, ref, keep_spectra = task.dark, task.ref, task.keep_spectra
     tables = [read_spectra_csv(p, "intensity" if ref is not None else technique,
                                unit if ref is None else "fraction") for p in paths]
     wl = tables[0].wavelength_nm
     if any(t.wavelength_nm.size != wl.size or not np.allclose(t.wavelength_nm, wl, rtol=1e-9, atol=0)
            for t in tables[1:]):
-        check_tables(tables, diameter_mm)  # names the file and the first differing column
+        check_tables(tables, task.diameter_mm)  # names the file and the first differing column
     for medium in [stack.ambient, *[layer.material for layer in stack.layers], stack.substrate]:
         try:
             medium.check_range(wl)
         except FilmmapInputError as exc:
             raise FilmmapInputError(exc.reason, file=tables[0].path, field="wavelength") from None
+    free = _free_for(task.free, technique, wl.size, task.shift_explicit)
+    convention = None
     if technique == "reflectance":
         if ref is not None:
             if ref.wavelength_nm.size != wl.size or not np.allclose(ref.wavelength_nm, wl,
@@ -143,12 +211,21 @@ def _fit_batch(task):
         else:
             data = np.concatenate([t.data["R"] for t in tables])
     else:
-        data = (np.concatenate([t.data["psi"] for t in tables]),
-                np.concatenate([t.data["delta"] for t in tables]))
-    res = fit_spectra(stack, wl, data, technique, angle, free=free, workers=threads)
-    out = dict(values=res.values, sigma=res.sigma, reduced_chi2=res.reduced_chi2,
-               rms_residual=res.rms_residual, iterations=res.iterations, ok=res.ok,
-               note=res.reason, names=res.names, wavelength_nm=wl)
+        delta = np.concatenate([t.data["delta"] for t in tables])
+        if task.delta_reversed:
+            delta = np.mod(360.0 - delta, 360.0)
+        data = (np.concatenate([t.data["psi"] for t in tables]), delta)
+    res = fit_spectra(stack, wl, data, technique, angle, free=free, workers=task.threads)
+    if technique == "ellipsometry":
+        convention = check_delta_convention(
+            lambda ps, de: fit_spectra(stack, wl, (ps, de), technique, angle, free=free,
+                                       workers=1), data[0], data[1])
+    names = res.names
+    out = dict(values=res.values, sigma=res.sigma, sigma_stat=res.sigma_stat,
+               correlation=res.correlation, unchecked=res.unchecked_values,
+               reduced_chi2=res.reduced_chi2, rms_residual=res.rms_residual,
+               iterations=res.iterations, ok=res.ok, note=res.reason, names=names,
+               wavelength_nm=wl, convention=convention)
     if keep_spectra:
         from filmmap.fitting import SpectralModel
         model = SpectralModel(stack, wl, angle, technique, free)
@@ -209,8 +286,11 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
     files = list(m.files)
     batches = _batches(files)
     threads = 1 if workers > 1 else None
-    tasks = [(b, m.technique, m.reflectance_unit, angle, stack, free, dark, ref, keep_spectra,
-              threads, m.wafer_diameter_mm) for b in batches]
+    tasks = [BatchTask(tuple(b), m.technique, m.reflectance_unit, angle, stack, tuple(free), dark,
+                       ref, keep_spectra, threads, m.wafer_diameter_mm,
+                       shift_explicit=m.wavelength_shift_sigma_nm is not None,
+                       delta_reversed=getattr(m, "delta_convention", "handbook") == "reversed")
+             for b in batches]
     results, metas = [], []
     if workers > 1 and len(tasks) > 1:
         with ProcessPoolExecutor(max_workers=workers) as pool:
@@ -235,19 +315,36 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
     def mcat(key):
         return np.concatenate([getattr(t, key) for t in metas])
 
+    ok = cat("ok")
+    note = cat("note").astype(object)
+    suspect, suspect_reason = flag_suspects(cat("reduced_chi2"), ok)
+    for k in np.nonzero(suspect)[0]:
+        note[k] = suspect_reason[k] + (f"; {note[k]}" if note[k] else "")
+    warnings = []
+    convention = ConventionCheck.combine([r["convention"] for r in results])
+    if convention.reversed_fits_better:
+        warnings.append(f"{REVERSED_DELTA_HINT} ({convention.accepted_reversed} of "
+                        f"{convention.n_sampled} sampled sites fit that way, "
+                        f"{convention.accepted_as_given} as given)")
+        for k in np.nonzero(~ok)[0]:
+            note[k] = f"{note[k]}; {REVERSED_DELTA_HINT}"
     sites = SiteResults(
         wafer=mcat("wafer").astype(str), slot=mcat("slot"), site=mcat("site"),
         x_mm=mcat("x_mm"), y_mm=mcat("y_mm"), values=cat("values"), sigma=cat("sigma"),
         reduced_chi2=cat("reduced_chi2"), rms_residual=cat("rms_residual"),
-        iterations=cat("iterations"), ok=cat("ok"), note=cat("note").astype(str),
+        iterations=cat("iterations"), ok=ok, note=note.astype(str),
         file=np.concatenate([np.full(t.n_rows, str(t.path)) for t in metas]),
         line=mcat("line"), names=results[0]["names"],
         model_spectra=cat("model") if keep_spectra else None,
-        measured_spectra=cat("measured") if keep_spectra else None)
+        measured_spectra=cat("measured") if keep_spectra else None,
+        sigma_stat=cat("sigma_stat"), correlation=cat("correlation"),
+        unchecked=cat("unchecked"), suspect=suspect)
     inputs = [(str(config.path), config.sha256)] + [(str(t.path), t.sha256) for t in metas] + [
         (str(s.path), s.sha256) for s in extra_inputs]
     return LotReduction(config=config, stack=stack, sites=sites, inputs=inputs,
-                        wavelength_nm=results[0]["wavelength_nm"])
+                        wavelength_nm=results[0]["wavelength_nm"], warnings=warnings,
+                        free=_free_for(free, m.technique, results[0]["wavelength_nm"].size,
+                                       m.wavelength_shift_sigma_nm is not None))
 
 
 def default_workers():

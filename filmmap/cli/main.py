@@ -122,6 +122,8 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
     if written.failures:
         p("  failures by reason: " + ", ".join(f"{k} x{v}" for k, v in written.failures.items()) + "\n")
     p(f"  mean thickness (all ok sites): {written.mean_nm:.2f} nm\n")
+    for w in getattr(reduction, "warnings", ()):
+        p(f"  warning: {w}\n")
     view = written.view
     if view is not None:
         p(f"  verdict: {view.verdict}\n")

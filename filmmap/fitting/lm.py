@@ -25,8 +25,9 @@ def weighted_residual(model, P, y, sqrt_w, jacobian):
     return r, J
 
 
-def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e-12):
-    """Minimise sum(r^2) for each row of P0 independently, all rows at once.
+def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e-12,
+                        prior_mean=None, prior_weight=None):
+    """Minimise sum(r^2) (+ Gaussian priors) for each row of P0 independently, all rows at once.
 
     Parameters
     ----------
@@ -50,14 +51,19 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
         Iteration limit per row.
     ftol : float
         Also converged when the relative chi-square decrease of an accepted step <= ftol.
+    prior_mean, prior_weight : numpy.ndarray, shape (p,), optional
+        Gaussian priors: each parameter with prior_weight = 1/sigma_prior^2 > 0 adds
+        the residual (P - prior_mean) / sigma_prior (regularised least squares; a
+        weight of 0 means no prior).
 
     Returns
     -------
     P : numpy.ndarray (n, p)
     chi2 : numpy.ndarray (n,)
-        Weighted sum of squared residuals at P.
+        Weighted sum of squared residuals at P, priors included.
     JTJ : numpy.ndarray (n, p, p)
-        Gauss-Newton curvature at the last evaluated point (for the covariance).
+        Gauss-Newton curvature at the last evaluated point, priors included (its
+        inverse is the covariance of the regularised problem).
     r : numpy.ndarray (n, M)
         Weighted residual at the last evaluated point.
     iterations : numpy.ndarray (n,) of int
@@ -78,10 +84,27 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
     """
     P = np.array(P0, dtype=float, copy=True)
     n, p = P.shape
+    if prior_weight is None or not np.any(prior_weight):
+        prior_mean = prior_weight = None
+    else:
+        prior_mean = np.asarray(prior_mean, dtype=float)
+        prior_weight = np.asarray(prior_weight, dtype=float)
+        prior_diag = np.diag(prior_weight)
+
+    def normal_equations(Jw, r, Pr):
+        """chi2, J^T J and gradient J^T r of data plus priors."""
+        chi2_ = np.einsum("nm,nm->n", r, r)
+        JTJ_ = _gram(Jw)
+        grad_ = np.einsum("nmi,nm->ni", Jw, r)
+        if prior_weight is not None:
+            dev = Pr - prior_mean
+            chi2_ += np.einsum("ni,i,ni->n", dev, prior_weight, dev)
+            JTJ_ += prior_diag
+            grad_ -= dev * prior_weight
+        return chi2_, JTJ_, grad_
+
     r, Jw = weighted_residual(model, P, y, sqrt_w, True)
-    chi2 = np.einsum("nm,nm->n", r, r)
-    JTJ = np.einsum("nmi,nmj->nij", Jw, Jw)
-    grad = np.einsum("nmi,nm->ni", Jw, r)
+    chi2, JTJ, grad = normal_equations(Jw, r, P)
     lam = np.full(n, 1e-4)
     iterations = np.zeros(n, dtype=int)
     converged = np.zeros(n, dtype=bool)
@@ -108,7 +131,7 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
             if active.size == 0:
                 break
         r_t, Jw_t = weighted_residual(model, P_try, y[active], sqrt_w[active], True)
-        chi2_t = np.einsum("nm,nm->n", r_t, r_t)
+        chi2_t, JTJ_t, grad_t = normal_equations(Jw_t, r_t, P_try)
         iterations[active] += 1
         ok = np.isfinite(chi2_t) & (chi2_t <= chi2[active])
         acc = active[ok]
@@ -117,8 +140,8 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
         P[acc] = P_try[ok]
         chi2[acc] = chi2_t[ok]
         r[acc] = r_t[ok]
-        JTJ[acc] = np.einsum("nmi,nmj->nij", Jw_t[ok], Jw_t[ok])
-        grad[acc] = np.einsum("nmi,nm->ni", Jw_t[ok], r_t[ok])
+        JTJ[acc] = JTJ_t[ok]
+        grad[acc] = grad_t[ok]
         lam[acc] = np.maximum(lam[acc] * 0.3, 1e-9)
         lam[active[~ok]] *= 10.0
         small = np.all(actual_step <= xtol, axis=1)
@@ -129,3 +152,10 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
         converged[active[done]] = True
         active = active[~done]
     return P, chi2, JTJ, r, iterations, converged
+
+
+def _gram(Jw):
+    """J^T J for a stack of Jacobians (n, M, p), as one batched matrix product."""
+    if Jw.shape[2] == 1:
+        return np.einsum("nm,nm->n", Jw[:, :, 0], Jw[:, :, 0])[:, None, None]
+    return np.matmul(Jw.transpose(0, 2, 1), Jw)

@@ -26,10 +26,14 @@ class FreeParameter:
 
     Parameters
     ----------
-    kind : {"thickness", "cauchy_A", "cauchy_B", "scale", "offset"}
-        Layer thickness (nm), Cauchy A (dimensionless) or B (um^2) of a
-        Cauchy layer, or a reflectance calibration scale (dimensionless) or
-        offset (fraction) applied as R_model * scale + offset.
+    kind : {"thickness", "cauchy_A", "cauchy_B", "index_scale", "scale", "offset", \
+            "wavelength_shift", "angle_offset"}
+        Layer thickness (nm); Cauchy A (dimensionless) or B (um^2) of a Cauchy
+        layer; a factor on a layer's complex index (dimensionless); or an
+        instrument systematic: reflectance scale (dimensionless) and offset
+        (fraction), applied as R_model * scale + offset; a wavelength-calibration
+        shift (nm: the instrument's wavelength lambda measures lambda + shift);
+        an angle-of-incidence offset (degrees).
     layer : int or None
         Index of the layer (top = 0) for layer parameters.
     lo, hi : float
@@ -39,6 +43,9 @@ class FreeParameter:
         the global search.
     name : str
         Label in results, e.g. "thickness[SiO2]".
+    prior_sigma : float or None
+        Standard deviation of a Gaussian prior centred on ``start`` (same unit as
+        the parameter); None = no prior (the data alone decide).
     """
 
     kind: str
@@ -47,11 +54,25 @@ class FreeParameter:
     hi: float
     start: float | None = None
     name: str = ""
+    prior_sigma: float | None = None
 
     @property
     def xtol(self):
         """Step size below which this parameter counts as converged (its own unit)."""
-        return {"thickness": 1e-2, "cauchy_A": 1e-6, "cauchy_B": 1e-7}.get(self.kind, 1e-7)
+        if self.prior_sigma:
+            # a hundredth of the prior: far below what moves the thickness
+            return 0.01 * self.prior_sigma
+        return {"thickness": 1e-2, "cauchy_A": 1e-6, "cauchy_B": 1e-7,
+                "index_scale": 1e-6}.get(self.kind, 1e-7)
+
+    @property
+    def is_nuisance(self):
+        """True for instrument systematics (not a property of the wafer)."""
+        return self.kind in NUISANCE_KINDS
+
+
+NUISANCE_KINDS = ("scale", "offset", "wavelength_shift", "angle_offset")
+"""Parameter kinds that describe the instrument, not the film."""
 
 
 class SpectralModel:
@@ -84,17 +105,56 @@ class SpectralModel:
         self.N0, self.N_layers, self.N_sub = stack.indices(self.wavelength_nm)
         self._angle = float(self.angle_deg[0]) if np.all(self.angle_deg == self.angle_deg[0]) \
             else self.angle_deg
-        for p in self.free:
+        self._index = {}
+        for i, p in enumerate(self.free):
             if p.kind in ("cauchy_A", "cauchy_B") and not isinstance(stack.layers[p.layer].material, Cauchy):
                 raise ValueError(f"{p.name}: Cauchy parameters need a Cauchy layer")
             if p.kind in ("scale", "offset") and technique != REFLECTANCE:
                 raise ValueError("scale/offset parameters apply to reflectance only")
+            if p.kind in NUISANCE_KINDS:
+                if p.kind in self._index:
+                    raise ValueError(f"{p.kind} is given twice")
+                self._index[p.kind] = i
+        # wavelength shift: per layer, d ln(beta) / d lambda of the film phase
+        # beta = 2 pi d q(lambda) / lambda, so that evaluating at lambda + shift is
+        # evaluating at lambda with the thickness d (1 + shift * c)
+        self.phase_dispersion = (self._phase_dispersion()
+                                 if "wavelength_shift" in self._index else None)
+
+    def _phase_dispersion(self):
+        """c_j(lambda) = Re(q_j'/q_j) - 1/lambda per layer (1/nm), q_j = N_j cos(theta_j).
+
+        The interfaces' own change over a shift (the substrate's dispersion) is left
+        out: over the few tenths of a nm a calibration is off by, it moves R by
+        well under the noise, while the film phase moves by d * shift * c, which for
+        a micrometre film is the whole effect.
+        """
+        wl = self.wavelength_nm
+        h = 0.05  # nm; the materials are smooth on this scale
+        sin0 = np.sin(np.deg2rad(self.angle_deg))
+        out = []
+        try:
+            _, lay_hi, _ = self.stack.indices(wl + h)
+            _, lay_lo, _ = self.stack.indices(wl - h)
+        except Exception:  # at a table's end: keep the 1/lambda term, drop dispersion
+            lay_hi = lay_lo = self.N_layers
+        for N_hi, N_lo, N in zip(lay_hi, lay_lo, self.N_layers):
+            def q(Nj):
+                Nj = np.broadcast_to(np.asarray(Nj, dtype=complex), wl.shape)
+                return np.sqrt(Nj * Nj - (self.N0 * sin0) ** 2)
+            dq = (q(N_hi) - q(N_lo)) / (2 * h)
+            out.append(np.real(dq / q(N)) - 1.0 / wl)
+        return out
 
     @property
     def n_points(self):
         """Data points per spectrum (M)."""
         m = self.wavelength_nm.size
         return m if self.technique == REFLECTANCE else 2 * m
+
+    def _nuisance(self, P, kind):
+        i = self._index.get(kind)
+        return None if i is None else P[:, i:i + 1]
 
     def _layer_inputs(self, P):
         """Thickness arrays and layer indices for a batch of parameter vectors."""
@@ -107,47 +167,66 @@ class SpectralModel:
                 thick[p.layer] = P[:, i:i + 1]
             elif p.kind in ("cauchy_A", "cauchy_B"):
                 cauchy.setdefault(p.layer, {})[p.kind] = P[:, i:i + 1]
+            elif p.kind == "index_scale":
+                N_layers[p.layer] = N_layers[p.layer] * P[:, i:i + 1]
         for layer, coeffs in cauchy.items():
             mat = self.stack.layers[layer].material
             lam_um2 = (self.wavelength_nm * 1e-3) ** 2
             A = coeffs.get("cauchy_A", mat.A)
             B = coeffs.get("cauchy_B", mat.B_um2)
             # the same material with per-spectrum A, B: N(A, B) - N(A0, B0) = dA + dB / lambda^2
-            N_layers[layer] = (self.N_layers[layer] + (A - mat.A) + (B - mat.B_um2) / lam_um2
+            N_layers[layer] = (N_layers[layer] + (A - mat.A) + (B - mat.B_um2) / lam_um2
                                + np.zeros((n, 1)))
-        return thick, N_layers
+        shift = self._nuisance(P, "wavelength_shift")
+        base_thick = thick
+        if shift is not None:
+            thick = [t * (1.0 + shift * c) for t, c in zip(thick, self.phase_dispersion)]
+        return thick, N_layers, base_thick
+
+    def _angle_of(self, P):
+        da = self._nuisance(P, "angle_offset")
+        return self._angle if da is None else self._angle + da
 
     def _raw(self, P, derivatives):
-        thick, N_layers = self._layer_inputs(P)
+        thick, N_layers, base_thick = self._layer_inputs(P)
+        angle = self._angle_of(P)
         if self.technique == REFLECTANCE:
             out = transfer.reflectance(self.wavelength_nm, self.N0, N_layers, thick, self.N_sub,
-                                       self._angle, self.polarization, derivatives)
-            return (out[0], out[1]) if derivatives else (out, None)
+                                       angle, self.polarization, derivatives)
+            return ((out[0], out[1]) if derivatives else (out, None)), base_thick
         out = transfer.psi_delta(self.wavelength_nm, self.N0, N_layers, thick, self.N_sub,
-                                 self._angle, derivatives)
+                                 angle, derivatives)
         if derivatives:
             psi, delta, dpsi, ddelta = out
-            return np.concatenate([psi, delta], axis=-1), [
-                np.concatenate([a, b], axis=-1) for a, b in zip(dpsi, ddelta)]
-        return np.concatenate(out, axis=-1), None
+            return (np.concatenate([psi, delta], axis=-1), [
+                np.concatenate([a, b], axis=-1) for a, b in zip(dpsi, ddelta)]), base_thick
+        return (np.concatenate(out, axis=-1), None), base_thick
+
+    def _difference_column(self, P, i, base, h):
+        """Forward-difference column of the Jacobian for parameter i (no analytic form)."""
+        n = P.shape[0]
+        Ph = P.copy()
+        Ph[:, i] += h
+        (fh, _), _ = self._raw(Ph, False)
+        d = np.broadcast_to(fh, (n, self.n_points)) - base
+        if self.technique == ELLIPSOMETRY:
+            d = wrap_delta_difference(d, self.wavelength_nm.size)
+        return d / h
 
     def evaluate(self, P, jacobian=False):
         """Predicted data for parameter vectors P (n, p); optionally the Jacobian (n, M, p).
 
-        Thickness columns of the Jacobian are analytic; Cauchy columns use a
-        forward difference (the index enters the recursion non-linearly and
-        these parameters are rarely free).
+        Thickness and wavelength-shift columns of the Jacobian are analytic (the
+        shift acts through the film phase, d f / d shift = sum_j d f / d d_j * d_j * c_j);
+        Cauchy, index-scale and angle columns use a forward difference (they
+        enter the recursion non-linearly and cost one extra evaluation each).
         """
         P = np.atleast_2d(np.asarray(P, dtype=float))
         n = P.shape[0]
-        f, dthick = self._raw(P, jacobian)
+        (f, dthick), base_thick = self._raw(P, jacobian)
         f = np.broadcast_to(f, (n, self.n_points))
-        scale = offset = None
-        for i, p in enumerate(self.free):
-            if p.kind == "scale":
-                scale = P[:, i:i + 1]
-            elif p.kind == "offset":
-                offset = P[:, i:i + 1]
+        scale = self._nuisance(P, "scale")
+        offset = self._nuisance(P, "offset")
         base = f
         if scale is not None:
             f = f * scale
@@ -155,20 +234,34 @@ class SpectralModel:
             f = f + offset
         if not jacobian:
             return f
+        shift = self._nuisance(P, "wavelength_shift")
+        stretch = None
+        if shift is not None:
+            stretch = [np.tile(1.0 + shift * c, (1, self.n_points // c.size))
+                       for c in self.phase_dispersion]
         J = np.empty((n, self.n_points, len(self.free)))
         for i, p in enumerate(self.free):
             if p.kind == "thickness":
                 g = np.broadcast_to(dthick[p.layer], (n, self.n_points))
+                if stretch is not None:
+                    g = g * stretch[p.layer]
                 J[:, :, i] = g if scale is None else g * scale
-            elif p.kind in ("cauchy_A", "cauchy_B"):
+            elif p.kind == "wavelength_shift":
+                col = np.zeros((n, self.n_points))
+                for j, c in enumerate(self.phase_dispersion):
+                    d_j = np.broadcast_to(np.asarray(base_thick[j], dtype=float), (n, 1))
+                    if not np.any(d_j):
+                        continue
+                    col += (np.broadcast_to(dthick[j], (n, self.n_points))
+                            * (d_j * np.tile(c, self.n_points // c.size)))
+                J[:, :, i] = col if scale is None else col * scale
+            elif p.kind in ("cauchy_A", "cauchy_B", "index_scale"):
                 h = 1e-6 * max(1.0, abs(float(np.nanmean(P[:, i]))))
-                Ph = P.copy()
-                Ph[:, i] += h
-                fh, _ = self._raw(Ph, False)
-                d = (np.broadcast_to(fh, (n, self.n_points)) - base)
-                if self.technique == ELLIPSOMETRY:
-                    d = wrap_delta_difference(d, self.wavelength_nm.size)
-                J[:, :, i] = (d / h) if scale is None else (d / h) * scale
+                d = self._difference_column(P, i, base, h)
+                J[:, :, i] = d if scale is None else d * scale
+            elif p.kind == "angle_offset":
+                d = self._difference_column(P, i, base, 1e-4)
+                J[:, :, i] = d if scale is None else d * scale
             elif p.kind == "scale":
                 J[:, :, i] = base
             elif p.kind == "offset":

@@ -129,9 +129,12 @@ _KEYS = {
     "": ("lot", "measurement", "stack", "target", "boat", "furnace", "recipe"),
     "lot": ("id", "furnace", "run_date"),
     "measurement": ("technique", "angle_deg", "files", "wafer_diameter_mm", "edge_exclusion_mm",
-                    "reflectance_unit", "dark_file", "reference_file", "fit_offset"),
+                    "reflectance_unit", "dark_file", "reference_file", "fit_offset",
+                    "offset_sigma", "scale_sigma", "wavelength_shift_sigma_nm",
+                    "angle_offset_sigma_deg", "delta_convention"),
     "stack": ("substrate", "orientation", "layer"),
-    "stack.layer": ("material", "nk_file", "cauchy", "thickness_nm", "search_nm", "fit"),
+    "stack.layer": ("material", "nk_file", "cauchy", "thickness_nm", "search_nm", "fit",
+                    "index_scale", "fit_index_scale"),
     "stack.layer.cauchy": ("A", "B", "C", "range_nm"),
     "target": ("thickness_nm", "tolerance_pct", "adjust_step"),
     "boat": ("slots", "dummy_slots", "monitor_slots"),
@@ -185,9 +188,21 @@ class MeasurementConfig:
         ``"fraction"`` or ``"percent"`` (unit of ``R@`` columns).
     dark_file, reference_file : pathlib.Path or None
         Raw-intensity mode spectra (absolute paths).
-    fit_offset : bool
-        Fit a reflectance offset (stray light, dark level) with the thicknesses, so
-        that it cannot pass for a few nm of oxide on thin films (default false).
+    fit_offset : bool or None
+        Former switch for the reflectance offset, kept as an alias: true = fit the
+        offset (under ``offset_sigma``, default prior), false = ``offset_sigma = 0``.
+    offset_sigma, scale_sigma : float or None
+        Prior standard deviations of the reflectance offset (fraction of R) and of
+        the relative reflectance scale (fraction); None = the technique's default
+        (`filmmap.fitting.systematics`), 0 = not fitted.
+    wavelength_shift_sigma_nm : float or None
+        Prior standard deviation of the wavelength-calibration shift, nm.
+    angle_offset_sigma_deg : float or None
+        Prior standard deviation of the angle-of-incidence offset, degrees.
+    delta_convention : str
+        ``"handbook"`` (Delta = 180 deg for a bare transparent substrate below
+        Brewster: Azzam & Bashara 1977, Tompkins 1993; the default) or
+        ``"reversed"`` (the instrument writes 360 - Delta; filmmap converts).
     """
 
     technique: str
@@ -199,7 +214,12 @@ class MeasurementConfig:
     reflectance_unit: str = "fraction"
     dark_file: Path | None = None
     reference_file: Path | None = None
-    fit_offset: bool = False
+    fit_offset: bool | None = None
+    offset_sigma: float | None = None
+    scale_sigma: float | None = None
+    wavelength_shift_sigma_nm: float | None = None
+    angle_offset_sigma_deg: float | None = None
+    delta_convention: str = "handbook"
 
     @property
     def raw_intensity(self):
@@ -256,6 +276,12 @@ class LayerConfig:
         Thickness search range, nm.
     fit : bool
         Whether the thickness is fitted.
+    index_scale : float
+        Factor on the material's complex index (1 = the dispersion model as it is),
+        e.g. 1.003 for a dense thermal oxide whose index sits above the fused-silica
+        Sellmeier curve.
+    fit_index_scale : bool
+        Fit that factor (started at ``index_scale``) with the thickness.
     """
 
     material: str
@@ -266,6 +292,8 @@ class LayerConfig:
     thickness_nm: float | None = None
     search_nm: tuple | None = None
     fit: bool = True
+    index_scale: float = 1.0
+    fit_index_scale: bool = False
 
 
 @dataclass(frozen=True)
@@ -873,8 +901,11 @@ def _read_layer(rd, t, where, folder, allow_outside, lot_path):
         rd.fail(f"thickness_nm = {thickness:g} nm is outside search_nm "
                 f"[{search[0]:g}, {search[1]:g}]; expected the nominal inside the search range",
                 f"{where}.thickness_nm")
+    index_scale = rd.number(t, "index_scale", where, default=1.0, lo=0.8, hi=1.2)
+    fit_scale = rd.value(t, "fit_index_scale", where, "boolean", default=False)
     return LayerConfig(material=name, model=model, source=source, nk_file=nk_file, cauchy=cauchy,
-                       thickness_nm=thickness, search_nm=search, fit=bool(fit))
+                       thickness_nm=thickness, search_nm=search, fit=bool(fit),
+                       index_scale=float(index_scale), fit_index_scale=bool(fit_scale))
 
 
 MAX_SEARCH_NM = 50000.0
@@ -941,14 +972,35 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude):
     patterns = rd.value(t, "files", w, "array")
     extra = [p for p in (reference, dark) if p is not None]
     files = _resolve_globs(rd, patterns, folder, allow_outside, list(exclude) + extra)
-    fit_offset = rd.value(t, "fit_offset", w, "boolean", default=False)
-    if fit_offset and technique != "reflectance":
+    fit_offset = rd.value(t, "fit_offset", w, "boolean", default=None)
+    if fit_offset is not None and technique != "reflectance":
         rd.fail("fit_offset applies to technique 'reflectance' only; remove it",
                 f"{w}.fit_offset")
+    # instrument systematics: prior standard deviations (0 = not fitted); bounds are
+    # far above any working instrument, so a typo like 2 for 0.002 is refused
+    priors = {}
+    for key, hi, key_unit, reflectance_only in (
+            ("offset_sigma", 0.1, "", True), ("scale_sigma", 0.2, "", True),
+            ("wavelength_shift_sigma_nm", 10.0, " nm", False),
+            ("angle_offset_sigma_deg", 5.0, " deg", False)):
+        priors[key] = rd.number(t, key, w, default=None, lo=0.0, hi=hi, unit=key_unit)
+        if priors[key] is not None and reflectance_only and technique != "reflectance":
+            rd.fail(f"{key} applies to technique 'reflectance' only; remove it", f"{w}.{key}")
+    if fit_offset is not None and priors["offset_sigma"] is not None:
+        rd.fail("give offset_sigma (the offset's prior; 0 = not fitted) or the older fit_offset, "
+                "not both", f"{w}.fit_offset")
+    if fit_offset is False:
+        priors["offset_sigma"] = 0.0
+    convention = rd.string(t, "delta_convention", w, default="handbook",
+                           choices=("handbook", "reversed"))
+    if "delta_convention" in t and technique != "ellipsometry":
+        rd.fail("delta_convention applies to technique 'ellipsometry' only; remove it",
+                f"{w}.delta_convention")
     return MeasurementConfig(technique=technique, angle_deg=angle, files=files,
                              file_globs=tuple(patterns), wafer_diameter_mm=diameter,
                              edge_exclusion_mm=edge, reflectance_unit=unit, dark_file=dark,
-                             reference_file=reference, fit_offset=bool(fit_offset))
+                             reference_file=reference, fit_offset=fit_offset,
+                             delta_convention=convention, **priors)
 
 
 def _read_target(rd, doc, stack):

@@ -17,6 +17,16 @@ FIT_QUALITY_DEFINITION = ("reduced chi-square: sum(w r^2) / (points - parameters
                           "from the noise model; about 1 when the model explains the data to the noise")
 
 
+SIGMA_DEFINITION = ("sqrt(diag(C)), C = (J^T W J + priors)^-1 the covariance of the fit with the "
+                    "instrument systematics marginalised; times the reduced chi-square when that "
+                    "exceeds 1 with at least 20 degrees of freedom")
+
+_PARAMETER_UNITS = {"thickness": "nm", "offset": "1", "scale": "1", "wavelength_shift": "nm",
+                    "angle_offset": "degree", "cauchy_A": "1", "cauchy_B": "um2",
+                    "index_scale": "1"}
+"""Units of the fitted parameters (reflectance is a fraction, unit "1")."""
+
+
 def _layer_var(name, top):
     """Variable name of a fitted parameter: 'thickness' for the top fitted layer."""
     if name == top:
@@ -69,13 +79,37 @@ def lot_dataset(reduction, roles=None):
     data_vars = {}
     for k, name in enumerate(s.names):
         var = _layer_var(name, top)
-        unit = "nm" if name.startswith("thickness") else ("1" if "offset" not in name else "fraction")
+        unit = _PARAMETER_UNITS.get(name.split("[")[0], "1")
         data_vars[var] = (("wafer", "site"), grid(s.values[:, k], np.nan),
                           {"units": unit, "long_name": f"fitted {name}",
                            "note": "NaN where the fit is not ok (see fit_note)"})
         data_vars[var + "_sigma"] = (("wafer", "site"), grid(s.sigma[:, k], np.nan),
-                                     {"units": unit, "long_name": f"standard uncertainty of {name}",
-                                      "definition": "sqrt(diag((J^T W J)^-1) * reduced chi-square)"})
+                                     {"units": unit, "long_name": f"total standard uncertainty of {name}",
+                                      "definition": SIGMA_DEFINITION})
+        if s.sigma_stat is not None and name.startswith("thickness"):
+            data_vars[var + "_sigma_stat"] = (
+                ("wafer", "site"), grid(s.sigma_stat[:, k], np.nan),
+                {"units": unit, "long_name": f"statistical part of the uncertainty of {name}",
+                 "definition": "from the noise alone, instrument systematics held at their "
+                               "fitted values"})
+        if s.unchecked is not None:
+            data_vars[var + "_unchecked"] = (
+                ("wafer", "site"), grid(s.unchecked[:, k], np.nan),
+                {"units": unit, "long_name": f"best value of {name} found by the fit, whatever "
+                 "its verdict", "note": "for inspection of rejected sites only; not a result"})
+    if s.correlation is not None and len(s.names) > 1:
+        P = len(s.names)
+        corr = np.full(shape + (P, P), np.nan)
+        corr[rows, cols] = s.correlation
+        data_vars["parameter_correlation"] = (
+            ("wafer", "site", "parameter", "parameter_b"), corr,
+            {"units": "1", "long_name": "correlation of the fitted parameters at each site",
+             "definition": "C_ij / sqrt(C_ii C_jj), C the covariance of the regularised fit"})
+    if s.suspect is not None:
+        data_vars["suspect"] = (("wafer", "site"), grid(s.suspect.astype(np.int8), 0, np.int8),
+                                {"units": "1", "long_name": "accepted fit far worse than the "
+                                 "lot's typical one (see fit_note)", "flag_values": np.array(
+                                     [0, 1], dtype=np.int8), "flag_meanings": "normal suspect"})
     data_vars["fit_quality"] = (("wafer", "site"), grid(s.reduced_chi2, np.nan),
                                 {"units": "1", "long_name": "reduced chi-square",
                                  "definition": FIT_QUALITY_DEFINITION})
@@ -100,6 +134,11 @@ def lot_dataset(reduction, roles=None):
         "y_mm": (("wafer", "site"), grid(s.y_mm, np.nan),
                  {"units": "mm", "long_name": "site y from wafer centre, notch toward -y"}),
     }
+    if s.correlation is not None and len(s.names) > 1:
+        coords["parameter"] = ("parameter", np.array(s.names).astype(str),
+                               {"long_name": "fitted parameter"})
+        coords["parameter_b"] = ("parameter_b", np.array(s.names).astype(str),
+                                 {"long_name": "fitted parameter (second index)"})
     if roles is not None:
         coords["role"] = ("wafer", np.array([roles.get(w, "product") for w in wafer_ids]).astype(str),
                           {"long_name": "product, monitor or dummy"})

@@ -196,6 +196,7 @@ class LotView:
     n_sites_measured: int
     warnings: list
     notes: list
+    suspect_sites: tuple = ()
 
     @property
     def product_lines(self):
@@ -435,7 +436,21 @@ def lot_view(ds, config, *, min_sites=DEFAULT_MIN_SITES, k=None, false_alarm=0.0
                 fit_quality=float(quality[i, j]) if quality is not None else math.nan,
                 x_mm=float(x[i, j]) if x is not None else math.nan,
                 y_mm=float(y[i, j]) if y is not None else math.nan))
+    suspect = []
+    if "suspect" in ds.variables:
+        flags = _wafer_array(ds, "suspect")
+        for i in order:
+            for j in np.flatnonzero(measured_site[i] & fit_ok[i] & (flags[i] != 0)):
+                suspect.append(FailedSite(
+                    wafer=str(ids[i]), slot=int(slots[i]), site=int(site_ids[j]),
+                    note=str(notes_site[i, j]),
+                    fit_quality=float(quality[i, j]) if quality is not None else math.nan,
+                    x_mm=float(x[i, j]) if x is not None else math.nan,
+                    y_mm=float(y[i, j]) if y is not None else math.nan))
     n_meas = int(sites_measured.sum())
+    if suspect:
+        warnings.append(f"{len(suspect)} accepted sites are suspect: their fit is far worse "
+                        "than the lot's typical one (still reported; see fit_note)")
     if failed:
         counts = Counter(f.note.split(":")[0].strip() or "unknown" for f in failed)
         warnings.append(f"{len(failed)} of {n_meas} measured sites failed the fit ("
@@ -454,4 +469,5 @@ def lot_view(ds, config, *, min_sites=DEFAULT_MIN_SITES, k=None, false_alarm=0.0
         edge_exclusion_mm=edge_excl, min_sites=min_sites,
         excluded=tuple(str(ids[i]) for i in order[excluded_mask[order]]),
         failed_sites=tuple(failed), n_sites_measured=n_meas, warnings=warnings,
-        notes=[nt for nt in prof.notes if not nt.startswith("edge runs cover more than half")])
+        notes=[nt for nt in prof.notes if not nt.startswith("edge runs cover more than half")],
+        suspect_sites=tuple(suspect))

@@ -126,6 +126,7 @@ def summary_dict(view):
         "min_sites": int(view.min_sites),
         "excluded_wafers": list(view.excluded),
         "failed_sites": len(view.failed_sites),
+        "suspect_sites": len(view.suspect_sites),
         "verdict": view.verdict,
     }
     return {"lot": lot, "wafers": wafer_rows(view), "warnings": list(view.warnings),
