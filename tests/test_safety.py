@@ -6,6 +6,7 @@ no staging folder is left behind.  The cases come from a hostile review of reduc
 history and predict (common practice, no source).
 """
 
+import contextlib
 import hashlib
 import os
 import shutil
@@ -216,3 +217,79 @@ def test_history_charts_folder_spares_the_history(tmp_path):
     r = run_cli("history", "--history", db, "-o", charts)
     assert_refused(r, charts, db)
     assert tree_digest(tmp_path) == before
+
+
+# ------------------------------------------------------------------ 2. reading never writes
+
+@contextlib.contextmanager
+def tmpfs(folder, size="1m"):
+    """A small tmpfs mounted at FOLDER (root only; the test is skipped where mounting fails)."""
+    folder.mkdir(parents=True, exist_ok=True)
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(folder)],
+                       capture_output=True, text=True)
+    if r.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here: {r.stderr.strip()}")
+    try:
+        yield folder
+    finally:
+        subprocess.run(["umount", "-l", str(folder)], capture_output=True)
+
+
+def remount(folder, mode):
+    subprocess.run(["mount", "-o", f"remount,{mode}", str(folder)], check=True)
+
+
+def file_state(path):
+    st = path.stat()
+    return hashlib.sha256(path.read_bytes()).hexdigest(), st.st_size, st.st_mtime_ns
+
+
+@pytest.mark.parametrize("content", [b"", b"lot_id,mean\nL1,600\n", b"SQLite format 2\x00" + b"x" * 100],
+                         ids=["zero-bytes", "text-file", "not-sqlite-3"])
+def test_history_refuses_a_non_database_without_touching_it(tmp_path, content):
+    # the issue: `history` on a 0-byte file wrote a schema into it (0 -> 36 KB)
+    db = tmp_path / "h.sqlite"
+    db.write_bytes(content)
+    before = file_state(db)
+    r = run_cli("history", "--history", db, "-o", tmp_path / "charts")
+    assert_refused(r, db)
+    assert "expected" in r.stderr
+    assert file_state(db) == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["h.sqlite"]   # no -wal/-shm, no charts
+
+
+def test_history_refuses_a_folder_or_a_path_under_a_file(tmp_path):
+    (tmp_path / "dir.sqlite").mkdir()
+    (tmp_path / "plain").write_text("x")
+    for db, words in ((tmp_path / "dir.sqlite", "folder"), (tmp_path / "plain" / "h.sqlite", "parent")):
+        r = run_cli("history", "--history", db, "-o", tmp_path / "charts")
+        assert_refused(r, db, words)
+
+
+def test_reading_a_database_does_not_change_it(tmp_path):
+    lot = one_wafer_lot(tmp_path / "lot")
+    db = tmp_path / "h.sqlite"
+    assert run_cli("reduce", lot, "-o", tmp_path / "out", "--no-figures", "--quiet",
+                   "--history", db).returncode == 0
+    before = file_state(db)
+    r = run_cli("history", "--history", db, "-o", tmp_path / "charts")
+    assert r.returncode == 0, r.stderr
+    assert "T-0001" in r.stdout
+    assert file_state(db) == before
+
+
+def test_history_reads_a_database_on_a_read_only_mount(tmp_path):
+    # the issue: a valid database on a read-only mount could not be read (WAL needs -shm)
+    lot = one_wafer_lot(tmp_path / "lot")
+    with tmpfs(tmp_path / "media", "4m") as media:
+        db = media / "h.sqlite"
+        r = run_cli("reduce", lot, "-o", tmp_path / "out", "--no-figures", "--quiet",
+                    "--history", db)
+        assert r.returncode == 0, r.stderr
+        before = file_state(db)
+        remount(media, "ro")
+        r = run_cli("history", "--history", db, "-o", tmp_path / "charts")
+        assert r.returncode == 0, r.stderr
+        assert "T-0001" in r.stdout
+        assert file_state(db) == before
+        assert sorted(p.name for p in media.iterdir()) == ["h.sqlite"]

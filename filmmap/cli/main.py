@@ -244,9 +244,12 @@ def cmd_history(args):
     check_outputs_spare_inputs([outdir], inputs)
     rows = lots(args.history, furnace=args.furnace)
     if not rows:
-        raise FilmmapInputError("no lots recorded" + (f" for furnace {args.furnace!r}"
-                                                      if args.furnace else "")
-                                + "; run filmmap reduce first", field="--history")
+        from filmmap.history.store import default_history_path
+
+        where = args.history or default_history_path()
+        raise FilmmapInputError(f"no lots recorded in {where}" + (
+            f" for furnace {args.furnace!r}" if args.furnace else "")
+            + "; run filmmap reduce first", field="--history")
     print(f"{'run date':<11} {'lot':<18} {'furnace':<24} {'mean nm':>9} {'WTW %':>7} {'WIW %':>7}")
     for r in rows:
         def f(v, d=2):
