@@ -16,6 +16,7 @@ import numpy as np
 from filmmap.errors import FilmmapInputError
 from filmmap.growth.advice import advise_from_config
 from filmmap.io.atomic import write_text_atomic
+from filmmap.io.guard import check_outputs_spare_inputs, lot_inputs, output_target
 from filmmap.io.lotfile import read_lot_file
 from filmmap.io.publish import check_outdir, staged_output
 from filmmap.outputs import write_lot
@@ -27,7 +28,7 @@ from filmmap.report.summary_json import write_summary_csv, write_summary_json
 # a wafer with fewer usable sites than MIN_SITES_FOR_LOT is left out of lot statistics and advice
 
 def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=False,
-                     figure_workers=None, progress=None):
+                     figure_workers=None, progress=None, protect=(), follow_output_link=False):
     """Reduce a lot and publish every output in ``outdir`` at once.
 
     Parameters
@@ -46,15 +47,30 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         Processes rendering maps.
     progress : callable(total) -> object with update(n) and close(), optional
         Progress display factory.
+    protect : iterable of (str, path-like)
+        Further (role, path) inputs the output folder must not equal, contain or lie
+        inside, e.g. `filmmap.io.guard.history_inputs` (the lot's own inputs are always
+        protected).
+    follow_output_link : bool
+        ``outdir`` may be a symbolic link: its target is replaced, the link kept.
 
     Returns
     -------
     (LotReduction, WrittenLot, seconds)
+
+    Raises
+    ------
+    FilmmapInputError
+        Before any fit or write: a foreign or linked output folder, or one that equals,
+        contains or lies inside an input (`filmmap.io.guard`).
     """
 
     t0 = time.perf_counter()
+    outdir = output_target(outdir, follow_output_link)
     check_outdir(outdir)  # refuse a foreign folder before spending time on fits
     config = read_lot_file(lotfile)
+    # replacing OUTDIR deletes what is in it: never when an input is there (nothing staged yet)
+    check_outputs_spare_inputs([outdir], lot_inputs(config) + list(protect))
     n_files = len(config.measurement.files)
     if workers is None:
         workers = 2 if (os.cpu_count() or 1) >= 2 and n_files >= 16 else 1
@@ -115,9 +131,10 @@ def write_advice(config, written, folder):
 
 def _reduce_one(task):
     """One lot of a many-lot run (a worker process, a Dask task or inline)."""
-    lotfile, outdir, figures, keep_spectra = task
+    lotfile, outdir, figures, keep_spectra, protect = task
     reduction, written, seconds = reduce_to_folder(lotfile, outdir, workers=1, figures=figures,
-                                                   keep_spectra=keep_spectra, figure_workers=1)
+                                                   keep_spectra=keep_spectra, figure_workers=1,
+                                                   protect=protect)
     return dict(lotfile=str(lotfile), outdir=str(outdir), lot_id=reduction.config.lot.id,
                 n_wafers=written.n_wafers, n_sites=written.n_sites, n_failed=written.n_failed,
                 mean_nm=written.mean_nm, seconds=seconds)
@@ -141,7 +158,7 @@ def lot_folders(lotfiles, outroot):
 
 
 def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
-                keep_spectra=False, progress=None):
+                keep_spectra=False, progress=None, protect=(), follow_output_link=False):
     """Reduce several lots, each into its own folder OUTROOT/<lot id>, in parallel.
 
     Parameters
@@ -158,6 +175,9 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
         As for `reduce_to_folder`.
     progress : callable, optional
         Called with one result dict as each lot finishes.
+    protect, follow_output_link
+        As for `reduce_to_folder`; every lot's folder is checked against every lot's
+        inputs (and ``protect``) before any lot starts.
 
     Returns
     -------
@@ -167,10 +187,14 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
         is the same deterministic computation in a process of its own.
     """
     lotfiles = [Path(p) for p in lotfiles]
-    folders = lot_folders(lotfiles, outroot)
+    folders = [output_target(f, follow_output_link) for f in lot_folders(lotfiles, outroot)]
     for f in folders:
         check_outdir(f)
-    tasks = [(lf, out, figures, keep_spectra) for lf, out in zip(lotfiles, folders)]
+    # one lot's folder must not swallow another lot's inputs either
+    everyone = [item for lf in lotfiles for item in lot_inputs(read_lot_file(lf))]
+    protect = list(protect)
+    check_outputs_spare_inputs(folders, everyone + protect)
+    tasks = [(lf, out, figures, keep_spectra, protect) for lf, out in zip(lotfiles, folders)]
     results = [None] * len(tasks)
     if scheduler is not None:
         try:

@@ -926,6 +926,8 @@ DOCS_ROWS = {
     "Cauchy index below 1": ["cauchy-negative-index"],
     "n,k table rows": ["nk-table-negative-k", "nk-table-not-increasing"],
     "output folder not filmmap's": ["outdir-foreign-non-empty"],
+    "output folder holds an input": [],        # tests/test_safety.py, one test per case
+    "output folder is a symbolic link": [],    # tests/test_safety.py
     "`--workers 0`": ["workers-zero"],
     "`predict` errors": ["predict-without-recipe", "predict-set-no-field"],
     "binary junk / not UTF-8": ["binary-junk", "not-utf8"],

@@ -181,8 +181,10 @@ def test_a_version_1_database_is_migrated_on_open(tmp_path):
     con.commit()
     con.close()
     assert len(MIGRATIONS) == CURRENT_VERSION >= 2
-    (row,) = lots(db)   # opening migrates
-    assert schema_version(db) == CURRENT_VERSION
+    before = db.read_bytes()
+    (row,) = lots(db)   # reading migrates a copy in memory, never the file
+    assert db.read_bytes() == before
+    assert schema_version(db) == CURRENT_VERSION   # opening for writing migrates
     assert row.lot_id == "OLD-1" and row.lot_mean_nm == 598.5 and row.target_nm == 600.0
     assert row.slots == (SlotSummary(4, 598.0, -1.25), SlotSummary(5, 599.0, None))
     assert row.applied_trims_C is None and row.tolerance_pct is None

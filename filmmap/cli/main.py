@@ -39,6 +39,9 @@ def build_parser():
                      help="zone trims that were in force during this run (for run-to-run "
                           "control), e.g. --applied-trims load=+2.2 (repeatable)")
     red.add_argument("--no-figures", action="store_true", help="skip the PNG figures")
+    red.add_argument("--follow-output-link", action="store_true",
+                     help="OUTDIR may be a symbolic link: replace the folder it points to and "
+                          "keep the link (without this option a link is refused)")
     red.add_argument("--workers", type=int, default=None, metavar="N",
                      help="fit wafers in N processes (default: 2 on a machine with 2 or more "
                           "cores and a lot of 16 or more files, else 1)")
@@ -52,6 +55,8 @@ def build_parser():
     hist.add_argument("--history", metavar="PATH", help="run-history database")
     hist.add_argument("-o", "--output", default="filmmap-history", metavar="DIR",
                       help="folder for the charts (PNG) and history.html")
+    hist.add_argument("--follow-output-link", action="store_true",
+                      help="DIR may be a symbolic link: replace the folder it points to")
     hist.add_argument("--baseline", type=int, default=20, metavar="N",
                       help="lots in the baseline window of the control limits (default 20)")
     hist.add_argument("--ewma-lambda", type=float, default=0.2, metavar="L",
@@ -88,12 +93,13 @@ def _progress_bar(total, desc):
 
 
 def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_spectra=False,
-               figure_workers=None):
+               figure_workers=None, protect=(), follow_output_link=False):
     """`filmmap.pipeline.reduce_to_folder` with a progress bar unless quiet."""
     from filmmap.pipeline import reduce_to_folder
 
     return reduce_to_folder(lotfile, outdir, workers, figures, keep_spectra, figure_workers,
-                            progress=None if quiet else (lambda n: _progress_bar(n, "fitting")))
+                            progress=None if quiet else (lambda n: _progress_bar(n, "fitting")),
+                            protect=protect, follow_output_link=follow_output_link)
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -152,11 +158,17 @@ def _fail(exc, debug):
 
 
 def cmd_reduce(args):
+    from filmmap.io.guard import history_inputs
+
     trims = _parse_assignments(args.applied_trims, "--applied-trims", "ZONE") or None
+    # the history file is protected even with --no-history: replacing OUTDIR would delete it
+    protect = history_inputs(args.history)
     if len(args.lotfile) > 1 or args.scheduler:
-        return _reduce_many(args, trims)
+        return _reduce_many(args, trims, protect)
     reduction, written, seconds = run_reduce(args.lotfile[0], args.output, args.workers,
-                                             not args.no_figures, args.quiet, args.keep_spectra)
+                                             not args.no_figures, args.quiet, args.keep_spectra,
+                                             protect=protect,
+                                             follow_output_link=args.follow_output_link)
     if not args.quiet:
         print_summary(reduction, written, seconds)
     if not args.no_history:
@@ -199,7 +211,7 @@ def _print_run_to_run(config, db_path):
           + (f"; trims in force {trims}" if trims else "") + " (advisory only)")
 
 
-def _reduce_many(args, trims):
+def _reduce_many(args, trims, protect):
     from filmmap.io.lotfile import read_lot_file
     from filmmap.pipeline import reduce_many
 
@@ -210,7 +222,8 @@ def _reduce_many(args, trims):
 
     results = reduce_many(args.lotfile, args.output, workers=args.workers,
                           scheduler=args.scheduler, figures=not args.no_figures,
-                          keep_spectra=args.keep_spectra, progress=report)
+                          keep_spectra=args.keep_spectra, progress=report, protect=protect,
+                          follow_output_link=args.follow_output_link)
     if not args.no_history:
         for lf, res in zip(args.lotfile, results):
             _record(res["outdir"], read_lot_file(lf), args.history, trims, args.quiet)
@@ -222,13 +235,23 @@ def _reduce_many(args, trims):
 def cmd_history(args):
     from filmmap.history import (control_charts, history_figures, lots, next_run_from_history,
                                  save_chart, write_history_html)
-    from filmmap.io.publish import staged_output
+    from filmmap.io.guard import check_outputs_spare_inputs, history_inputs, output_target
+    from filmmap.io.publish import check_outdir, staged_output
 
+    outdir = output_target(args.output, args.follow_output_link)
+    check_outdir(outdir)
+    inputs = history_inputs(args.history)
+    if args.next_run:
+        inputs.append(("lot file", Path(args.next_run)))
+    check_outputs_spare_inputs([outdir], inputs)
     rows = lots(args.history, furnace=args.furnace)
     if not rows:
-        raise FilmmapInputError("no lots recorded" + (f" for furnace {args.furnace!r}"
-                                                      if args.furnace else "")
-                                + "; run filmmap reduce first", field="--history")
+        from filmmap.history.store import default_history_path
+
+        where = args.history or default_history_path()
+        raise FilmmapInputError(f"no lots recorded in {where}" + (
+            f" for furnace {args.furnace!r}" if args.furnace else "")
+            + "; run filmmap reduce first", field="--history")
     print(f"{'run date':<11} {'lot':<18} {'furnace':<24} {'mean nm':>9} {'WTW %':>7} {'WIW %':>7}")
     for r in rows:
         def f(v, d=2):
@@ -237,7 +260,7 @@ def cmd_history(args):
               f"{f(r.lot_mean_nm):>9} {f(r.wtw_pct, 3):>7} {f(r.wiw_mean_pct, 3):>7}")
     charts = control_charts(rows, baseline=args.baseline, lam=args.ewma_lambda)
     figs = history_figures(rows, charts)
-    with staged_output(args.output) as stage:
+    with staged_output(outdir) as stage:
         for i, (caption, fig) in enumerate(figs.items()):
             save_chart(fig, stage / f"chart_{i + 1:02d}.png")
         write_history_html(stage / "history.html", rows, figs, signals=charts)

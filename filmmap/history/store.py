@@ -67,7 +67,9 @@ import json
 import math
 import os
 import sqlite3
+import stat
 import tomllib
+import urllib.parse
 from collections.abc import Mapping
 from dataclasses import dataclass, fields
 from pathlib import Path
@@ -76,7 +78,8 @@ from filmmap.errors import FilmmapInputError
 
 __all__ = ["CURRENT_VERSION", "MIGRATIONS", "HISTORY_FILENAME", "LotRecord", "SlotSummary",
            "WaferSummary", "default_history_path", "file_sha256", "lots", "open_history",
-           "make_record", "recipe_sha256", "record_from_outputs", "record_lot", "schema_version"]
+           "make_record", "open_history_readonly", "recipe_sha256", "record_from_outputs",
+           "record_lot", "schema_version"]
 
 #: File name of the default history database.
 HISTORY_FILENAME = "history.sqlite"
@@ -632,6 +635,130 @@ def open_history(db_path=None, *, busy_timeout_s=DEFAULT_BUSY_TIMEOUT_S, create=
         con.close()
 
 
+SQLITE_HEADER = b"SQLite format 3\x00"
+"""First 16 bytes of every SQLite 3 database file (SQLite file format docs, "The Database
+Header")."""
+
+
+def check_sqlite_file(path):
+    """Refuse, without opening it for writing, a path that is not an SQLite database file.
+
+    Parameters
+    ----------
+    path : pathlib.Path
+
+    Raises
+    ------
+    FileNotFoundError
+        No file at ``path`` (the caller decides whether that is an empty history).
+    FilmmapInputError
+        A folder, a path under a file, an unreadable file, an empty (0-byte) file or one
+        that does not start with `SQLITE_HEADER`.  The file is only read (16 bytes).
+    """
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        if os.path.islink(path):
+            raise FilmmapInputError("the history path is a symbolic link to a missing file; "
+                                    "expected an SQLite history file", file=path) from None
+        raise
+    except NotADirectoryError:
+        raise FilmmapInputError("a parent of the history path is a file, not a folder; "
+                                "expected an SQLite history file", file=path) from None
+    if stat.S_ISDIR(st.st_mode):
+        raise FilmmapInputError("the history path is a folder; expected an SQLite history file",
+                                file=path)
+    if st.st_size == 0:
+        raise FilmmapInputError("the history file is empty (0 bytes), not a filmmap history; "
+                                "expected an SQLite database (it was left untouched)", file=path)
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(len(SQLITE_HEADER))
+    except OSError as exc:
+        raise FilmmapInputError(f"cannot read the history file: {exc.strerror or exc}",
+                                file=path) from None
+    if head != SQLITE_HEADER:
+        raise FilmmapInputError("not an SQLite database (the file does not start with "
+                                "'SQLite format 3'); expected a filmmap history database "
+                                "(it was left untouched)", file=path)
+
+
+@contextlib.contextmanager
+def open_history_readonly(db_path=None):
+    """Open an existing history for reading only: nothing is ever written to it.
+
+    Parameters
+    ----------
+    db_path : str or path-like, optional
+        Database file (default `default_history_path`).
+
+    Yields
+    ------
+    sqlite3.Connection
+        A read-only connection, or, for a database of an older schema, an in-memory
+        copy migrated to `CURRENT_VERSION` (the file itself is not migrated).
+
+    Raises
+    ------
+    FileNotFoundError
+        No file at the path.
+    FilmmapInputError
+        Not an SQLite file (`check_sqlite_file`), not a filmmap history, a schema newer
+        than this code, or an unreadable database.
+
+    Notes
+    -----
+    The file is opened with the URI ``file:PATH?mode=ro``.  A database in WAL mode
+    needs its ``-shm`` file even to read; on read-only media, where that file cannot be
+    created, the database is opened again with ``immutable=1``, which reads the file as
+    it stands without locks.  That is safe there because nothing can write to a
+    read-only medium; it is used only when the folder is not writable.
+
+    References
+    ----------
+    .. [1] SQLite documentation, "Uniform Resource Identifiers" (``mode=ro``,
+       ``immutable=1``) and "Write-Ahead Logging", section "Read-Only Databases".
+    """
+    path = _resolve(db_path)
+    check_sqlite_file(path)
+    uri = "file:" + urllib.parse.quote(str(Path(path).absolute())) + "?mode=ro"
+    con = None
+    try:
+        try:
+            con = sqlite3.connect(uri, uri=True, isolation_level=None)
+            version = _read_version(con)
+        except sqlite3.OperationalError:
+            if con is not None:
+                con.close()
+                con = None
+            if os.access(Path(path).absolute().parent, os.W_OK):
+                raise
+            con = sqlite3.connect(uri + "&immutable=1", uri=True, isolation_level=None)
+            version = _read_version(con)
+        if version > CURRENT_VERSION:
+            raise FilmmapInputError(f"history database schema version {version} is newer than "
+                                    f"this filmmap understands ({CURRENT_VERSION}); upgrade "
+                                    "filmmap", file=path)
+        if version < CURRENT_VERSION:
+            # an older schema is read through a migrated copy in memory: reading never writes
+            mem = sqlite3.connect(":memory:", isolation_level=None)
+            con.backup(mem)
+            con.close()
+            con = mem
+            _migrate(con, path)
+        yield con
+    except FilmmapInputError as exc:
+        if exc.file is None:
+            raise FilmmapInputError(exc.reason, file=path) from None
+        raise
+    except sqlite3.DatabaseError as exc:
+        raise FilmmapInputError(f"cannot read the history database: {exc}; expected a filmmap "
+                                "history (the file was left untouched)", file=path) from None
+    finally:
+        if con is not None:
+            con.close()
+
+
 def schema_version(db_path=None):
     """Schema version of an existing history database (after migration on open).
 
@@ -738,7 +865,8 @@ def lots(db_path=None, furnace=None):
     ----------
     db_path : str or path-like, optional
         History database (default `default_history_path`).  A missing file is an empty
-        history (nothing is created).
+        history (nothing is created); the file is opened read-only
+        (`open_history_readonly`) and never written, not even migrated.
     furnace : str, optional
         Only lots of this furnace (``""`` selects lots without a furnace name).
 
@@ -753,12 +881,16 @@ def lots(db_path=None, furnace=None):
     .. [1] SQLite documentation, "SELECT" (ORDER BY).
     """
     path = _resolve(db_path)
-    if not path.exists():
+    try:
+        os.lstat(path)
+    except FileNotFoundError:
         return []
+    except NotADirectoryError:
+        pass   # a file where a folder should be: open_history_readonly names it
     where, args = "", ()
     if furnace is not None:
         where, args = "WHERE furnace = ?", (str(furnace),)
-    with open_history(path, create=False) as con:
+    with open_history_readonly(path) as con:
         con.execute("BEGIN")  # one read snapshot for lots, wafers and slots
         try:
             rows = con.execute(f"SELECT {', '.join(_LOT_COLUMNS)} FROM lots {where} "
