@@ -47,7 +47,14 @@ def main(repeats=3, sample=3):
     R = R_true * (1 + 0.003 * rng.standard_normal(R_true.shape))
 
     t_fwd, _ = best_of(lambda: stack.reflectance(WL, thickness_nm=[d_true[:, None]]), repeats)
-    t_fit, res = best_of(lambda: fit_spectra(stack, WL, R), repeats)
+    # the default fit (instrument systematics under their priors) and the fit that takes
+    # the instrument as exact, timed alternately so both see the same machine load
+    t_fit = t_plain = np.inf
+    for _ in range(repeats):
+        t, res = best_of(lambda: fit_spectra(stack, WL, R), 1)
+        t_fit = min(t_fit, t)
+        t, res_plain = best_of(lambda: fit_spectra(stack, WL, R, systematics=None), 1)
+        t_plain = min(t_plain, t)
     err = res.values[:, 0] - d_true
 
     # reference path: tmm per wavelength inside least_squares, one spectrum at a time
@@ -68,20 +75,49 @@ def main(repeats=3, sample=3):
                             method="lm", xtol=1e-12)
         ref_vals.append(sol.x[0])
     t_ref_per = (time.perf_counter() - t0) / sample
-    agree = np.max(np.abs(np.array(ref_vals) - res.values[:sample, 0]))
+    agree = np.max(np.abs(np.array(ref_vals) - res_plain.values[:sample, 0]))
 
     rate = N_SPECTRA / t_fit
     print(f"spectra: {N_SPECTRA} x {WL.size} wavelengths, SiO2 900-1100 nm on Si, no nominal")
     print(f"fit ok: {res.ok.mean() * 100:.2f} %, max |error| {np.nanmax(np.abs(err)):.3f} nm, "
           f"mean iterations {res.iterations.mean():.2f}")
-    print(f"fitted spectra/s:            {rate:10.0f}   (goal >= 10,000)")
+    print(f"fitted spectra/s:            {rate:10.0f}   (goal >= 10,000; default fit with "
+          f"{len(res.names) - 1} systematics: {', '.join(res.names[1:])})")
+    print(f"without systematics:         {N_SPECTRA / t_plain:10.0f}   spectra/s; default / "
+          f"without = {t_fit / t_plain:.2f} x the time (goal <= 1.5)")
     print(f"reference path (tmm + least_squares): {t_ref_per * 1e3:.0f} ms per spectrum "
-          f"on {sample} spectra; agrees with filmmap to {agree:.2e} nm")
+          f"on {sample} spectra; agrees with filmmap (no systematics, same model) to {agree:.2e} nm")
     print(f"ratio vs reference path:     {t_ref_per / (t_fit / N_SPECTRA):10.0f}x  (goal >= 1,000x)")
     print(f"forward evaluation, all spectra: {t_fwd * 1e3:.1f} ms")
     print(f"fit cost in forward evaluations: {t_fit / t_fwd:6.2f}     (goal <= 10)")
     t1, _ = best_of(lambda: fit_spectra(stack, WL, R, workers=1), repeats)
     print(f"with 1 thread: {N_SPECTRA / t1:.0f} spectra/s; 2 threads / 1 thread = {t1 / t_fit:.2f}")
+    two_free_layers()
+
+
+def two_free_layers(batch=64):
+    """Two free layers without search_nm (0-6000 nm each): time and peak memory per batch."""
+    import tracemalloc
+
+    from filmmap.materials import Cauchy
+
+    nitride = Cauchy("SiN-bench", 1.98, 0.018, 0.0, range_nm=(250, 1700))
+    stack = Stack("Si", [Layer(nitride, 0.0, "nitride"), Layer("SiO2", 0.0)])
+    rng = np.random.default_rng(7)
+    d = np.column_stack([rng.uniform(50, 400, batch), rng.uniform(100, 2000, batch)])
+    R = stack.reflectance(WL, thickness_nm=[d[:, :1], d[:, 1:]])
+    R = R * (1 + 0.002 * rng.standard_normal(R.shape))
+    tracemalloc.start()
+    t0 = time.perf_counter()
+    res = fit_spectra(stack, WL, R)
+    seconds = time.perf_counter() - t0
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    err = np.abs(res.values[:, :2] - d)
+    print(f"two free layers, no search_nm, {batch} spectra: {seconds:.2f} s "
+          f"({seconds / batch * 1e3:.1f} ms per spectrum), peak traced memory "
+          f"{peak / 2**20:.0f} MiB (goal <= 1 s and <= 1 GB per batch); accepted "
+          f"{res.ok.sum()}/{batch}, max |error| of accepted {np.nanmax(err):.2f} nm")
 
 
 if __name__ == "__main__":

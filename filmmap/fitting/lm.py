@@ -8,7 +8,7 @@ import numpy as np
 def weighted_residual(model, P, y, sqrt_w, jacobian):
     """Weighted residuals (n, M) = sqrt(w) * (y - f(P)), Delta differences wrapped.
 
-    Returns (r, Jw) with Jw = sqrt(w) * df/dP of shape (n, M, p) when ``jacobian``.
+    Returns (r, Jw) with Jw = sqrt(w) * df/dP of shape (n, p, M) when ``jacobian``.
     """
     from filmmap.fitting.model import ELLIPSOMETRY, wrap_delta_difference
 
@@ -21,7 +21,7 @@ def weighted_residual(model, P, y, sqrt_w, jacobian):
     if not jacobian:
         return r, None
     # the model hands back a fresh Jacobian array: weight it in place
-    J *= sqrt_w[:, :, None]
+    J *= sqrt_w[:, None, :]
     return r, J
 
 
@@ -95,7 +95,7 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
         """chi2, J^T J and gradient J^T r of data plus priors."""
         chi2_ = np.einsum("nm,nm->n", r, r)
         JTJ_ = _gram(Jw)
-        grad_ = np.einsum("nmi,nm->ni", Jw, r)
+        grad_ = np.matmul(Jw, r[:, :, None])[:, :, 0]
         if prior_weight is not None:
             dev = Pr - prior_mean
             chi2_ += np.einsum("ni,i,ni->n", dev, prior_weight, dev)
@@ -105,6 +105,8 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
 
     r, Jw = weighted_residual(model, P, y, sqrt_w, True)
     chi2, JTJ, grad = normal_equations(Jw, r, P)
+    # the weighted Jacobian at each row's current point, for the linear final step
+    Jw_keep = Jw if getattr(model, "linear_step", None) is not None else None
     lam = np.full(n, 1e-4)
     iterations = np.zeros(n, dtype=int)
     converged = np.zeros(n, dtype=bool)
@@ -122,11 +124,27 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
         step = np.linalg.solve(A, grad[active][:, :, None])[:, :, 0]
         P_try = np.clip(P[active] + step, lo, hi)
         # a Gauss-Newton step this small means P is already within xtol of the
-        # minimum: stop without paying for another model evaluation
-        tiny = (lam[active] <= 1e-3) & np.all(np.abs(P_try - P[active]) <= xtol, axis=1)
+        # minimum: stop without paying for another model evaluation. A step whose
+        # non-linear part is that small (the model's own test: linear parameters such
+        # as a reflectance offset may move by any amount) is as final: the model is
+        # linear over it, so its residual and chi-square follow from the Jacobian
+        taken = P_try - P[active]
+        small_step = np.all(np.abs(taken) <= xtol, axis=1)
+        linear = getattr(model, "linear_step", None)
+        if linear is not None:
+            small_step |= linear(P[active], taken)
+        tiny = (lam[active] <= 1e-3) & small_step
         if tiny.any():
-            converged[active[tiny]] = True
-            P[active[tiny]] = P_try[tiny]
+            rows = active[tiny]
+            converged[rows] = True
+            P[rows] = P_try[tiny]
+            if Jw_keep is not None:
+                # r(P + s) = r(P) - Jw s to first order
+                r[rows] -= np.matmul(taken[tiny][:, None, :], Jw_keep[rows])[:, 0, :]
+                chi2[rows] = np.einsum("nm,nm->n", r[rows], r[rows])
+                if prior_weight is not None:
+                    dev = P[rows] - prior_mean
+                    chi2[rows] += np.einsum("ni,i,ni->n", dev, prior_weight, dev)
             active, P_try = active[~tiny], P_try[~tiny]
             if active.size == 0:
                 break
@@ -142,6 +160,8 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
         r[acc] = r_t[ok]
         JTJ[acc] = JTJ_t[ok]
         grad[acc] = grad_t[ok]
+        if Jw_keep is not None:
+            Jw_keep[acc] = Jw_t[ok]
         lam[acc] = np.maximum(lam[acc] * 0.3, 1e-9)
         lam[active[~ok]] *= 10.0
         small = np.all(actual_step <= xtol, axis=1)
@@ -155,7 +175,7 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
 
 
 def _gram(Jw):
-    """J^T J for a stack of Jacobians (n, M, p), as one batched matrix product."""
-    if Jw.shape[2] == 1:
-        return np.einsum("nm,nm->n", Jw[:, :, 0], Jw[:, :, 0])[:, None, None]
-    return np.matmul(Jw.transpose(0, 2, 1), Jw)
+    """J^T J for a stack of parameter-major Jacobians (n, p, M), as one batched product."""
+    if Jw.shape[1] == 1:
+        return np.einsum("nm,nm->n", Jw[:, 0], Jw[:, 0])[:, None, None]
+    return np.matmul(Jw, Jw.transpose(0, 2, 1))

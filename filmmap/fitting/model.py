@@ -74,6 +74,10 @@ class FreeParameter:
 NUISANCE_KINDS = ("scale", "offset", "wavelength_shift", "angle_offset")
 """Parameter kinds that describe the instrument, not the film."""
 
+LINEAR_PHASE_NM = 0.1
+"""Largest change of a layer's effective thickness (nm) over which the model is treated
+as linear when a final Gauss-Newton step is taken without another evaluation."""
+
 
 class SpectralModel:
     """Batched forward model with analytic thickness derivatives.
@@ -153,8 +157,17 @@ class SpectralModel:
         return m if self.technique == REFLECTANCE else 2 * m
 
     def _nuisance(self, P, kind):
+        """Column of a systematic, or None when it is not fitted or sits at its neutral value.
+
+        The neutral values (offset 0, scale 1, no shift or angle offset) are where every
+        fit starts; skipping them there saves whole passes over the data.
+        """
         i = self._index.get(kind)
-        return None if i is None else P[:, i:i + 1]
+        if i is None:
+            return None
+        col = P[:, i:i + 1]
+        neutral = 1.0 if kind == "scale" else 0.0
+        return None if np.all(col == neutral) else col
 
     def _layer_inputs(self, P):
         """Thickness arrays and layer indices for a batch of parameter vectors."""
@@ -179,9 +192,55 @@ class SpectralModel:
                                + np.zeros((n, 1)))
         shift = self._nuisance(P, "wavelength_shift")
         base_thick = thick
+        stretch = None
         if shift is not None:
-            thick = [t * (1.0 + shift * c) for t, c in zip(thick, self.phase_dispersion)]
-        return thick, N_layers, base_thick
+            # d_eff = d (1 + shift c): kept for the Jacobian's thickness rows
+            stretch = []
+            for c in self.phase_dispersion:
+                st = shift * c
+                st += 1.0
+                stretch.append(st)
+            thick = [t * st for t, st in zip(thick, stretch)]
+        return thick, N_layers, (base_thick, stretch)
+
+    def linear_step(self, P, step):
+        """True for the rows where the model is linear over ``step`` to within the fit's tolerance.
+
+        Offset and scale enter linearly. The thickness and the wavelength shift enter
+        through the film phase, as a change of each layer's effective thickness
+        d (1 + shift c); where that change stays below `LINEAR_PHASE_NM` at every
+        wavelength, the model's curvature (about (4 pi n / lambda)^2 times the fringe
+        amplitude) moves R by under 1e-5 and the next Gauss-Newton iterate by under
+        1e-3 nm, far below the noise and the reported uncertainties. Other parameters
+        (Cauchy, index scale, angle) must have converged to their own step tolerance.
+
+        Parameters
+        ----------
+        P : numpy.ndarray (n, p)
+            Current parameter vectors.
+        step : numpy.ndarray (n, p)
+            Proposed steps.
+
+        Returns
+        -------
+        numpy.ndarray (n,) of bool
+        """
+        n = P.shape[0]
+        ok = np.ones(n, dtype=bool)
+        shift_i = self._index.get("wavelength_shift")
+        for i, p in enumerate(self.free):
+            if p.kind in ("cauchy_A", "cauchy_B", "index_scale", "angle_offset"):
+                ok &= np.abs(step[:, i]) <= p.xtol
+        for j in range(len(self.stack.layers)):
+            i = next((k for k, p in enumerate(self.free)
+                      if p.kind == "thickness" and p.layer == j), None)
+            dd = np.abs(step[:, i]) if i is not None else np.zeros(n)
+            if shift_i is not None:
+                d_j = P[:, i] if i is not None else float(self.stack.thicknesses[j])
+                c_max = float(np.max(np.abs(self.phase_dispersion[j])))
+                dd = dd + np.abs(d_j * step[:, shift_i]) * c_max
+            ok &= dd <= LINEAR_PHASE_NM
+        return ok
 
     def _angle_of(self, P):
         da = self._nuisance(P, "angle_offset")
@@ -214,17 +273,20 @@ class SpectralModel:
         return d / h
 
     def evaluate(self, P, jacobian=False):
-        """Predicted data for parameter vectors P (n, p); optionally the Jacobian (n, M, p).
+        """Predicted data for parameter vectors P (n, p); optionally the Jacobian (n, p, M).
 
-        Thickness and wavelength-shift columns of the Jacobian are analytic (the
-        shift acts through the film phase, d f / d shift = sum_j d f / d d_j * d_j * c_j);
-        Cauchy, index-scale and angle columns use a forward difference (they
-        enter the recursion non-linearly and cost one extra evaluation each).
+        The Jacobian is laid out parameter-major, one contiguous row of M points per
+        parameter, so that weighting it and forming J^T J run over contiguous memory.
+        Thickness and wavelength-shift rows are analytic (the shift acts through the
+        film phase, d f / d shift = sum_j d f / d d_j * d_j * c_j); Cauchy,
+        index-scale and angle rows use a forward difference (they enter the
+        recursion non-linearly and cost one extra evaluation each).
         """
         P = np.atleast_2d(np.asarray(P, dtype=float))
         n = P.shape[0]
-        (f, dthick), base_thick = self._raw(P, jacobian)
-        f = np.broadcast_to(f, (n, self.n_points))
+        M = self.n_points
+        (f, dthick), (base_thick, layer_stretch) = self._raw(P, jacobian)
+        f = np.broadcast_to(f, (n, M))
         scale = self._nuisance(P, "scale")
         offset = self._nuisance(P, "offset")
         base = f
@@ -235,37 +297,61 @@ class SpectralModel:
         if not jacobian:
             return f
         shift = self._nuisance(P, "wavelength_shift")
-        stretch = None
+        dispersion = stretch = None
         if shift is not None:
-            stretch = [np.tile(1.0 + shift * c, (1, self.n_points // c.size))
-                       for c in self.phase_dispersion]
-        J = np.empty((n, self.n_points, len(self.free)))
+            # per layer c_j and 1 + shift c_j on the M data points (Psi and Delta share a
+            # wavelength)
+            dispersion = [c if c.size == M else np.tile(c, M // c.size)
+                          for c in self.phase_dispersion]
+            stretch = [st if st.shape[-1] == M else np.tile(st, (1, M // st.shape[-1]))
+                       for st in layer_stretch]
+        # the scale multiplies every model derivative: fold it in once per layer
+        dscaled = {}
+
+        def layer_derivative(j):
+            if j not in dscaled:
+                g = np.broadcast_to(dthick[j], (n, M))
+                dscaled[j] = g * scale if scale is not None else g
+            return dscaled[j]
+
+        J = np.empty((n, len(self.free), M))
         for i, p in enumerate(self.free):
+            row = J[:, i, :]
             if p.kind == "thickness":
-                g = np.broadcast_to(dthick[p.layer], (n, self.n_points))
+                # d f / d d = d f / d d_eff * (1 + shift * c)
                 if stretch is not None:
-                    g = g * stretch[p.layer]
-                J[:, :, i] = g if scale is None else g * scale
+                    np.multiply(layer_derivative(p.layer), stretch[p.layer], out=row)
+                else:
+                    np.copyto(row, layer_derivative(p.layer))
             elif p.kind == "wavelength_shift":
-                col = np.zeros((n, self.n_points))
-                for j, c in enumerate(self.phase_dispersion):
+                if dispersion is None:   # at zero shift: the same c_j, no stretch
+                    dispersion = [c if c.size == M else np.tile(c, M // c.size)
+                                  for c in self.phase_dispersion]
+                first = True
+                for j, c in enumerate(dispersion):
                     d_j = np.broadcast_to(np.asarray(base_thick[j], dtype=float), (n, 1))
                     if not np.any(d_j):
                         continue
-                    col += (np.broadcast_to(dthick[j], (n, self.n_points))
-                            * (d_j * np.tile(c, self.n_points // c.size)))
-                J[:, :, i] = col if scale is None else col * scale
+                    if first:
+                        np.multiply(d_j * c, layer_derivative(j), out=row)
+                        first = False
+                    else:
+                        row += (d_j * c) * layer_derivative(j)
+                if first:
+                    row.fill(0.0)
             elif p.kind in ("cauchy_A", "cauchy_B", "index_scale"):
                 h = 1e-6 * max(1.0, abs(float(np.nanmean(P[:, i]))))
-                d = self._difference_column(P, i, base, h)
-                J[:, :, i] = d if scale is None else d * scale
+                row[...] = self._difference_column(P, i, base, h)
+                if scale is not None:
+                    row *= scale
             elif p.kind == "angle_offset":
-                d = self._difference_column(P, i, base, 1e-4)
-                J[:, :, i] = d if scale is None else d * scale
+                row[...] = self._difference_column(P, i, base, 1e-4)
+                if scale is not None:
+                    row *= scale
             elif p.kind == "scale":
-                J[:, :, i] = base
+                np.copyto(row, base)
             elif p.kind == "offset":
-                J[:, :, i] = 1.0
+                row.fill(1.0)
         return f, J
 
 
