@@ -327,7 +327,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
                         f"{convention.n_sampled} sampled sites fit that way, "
                         f"{convention.accepted_as_given} as given)")
         for k in np.nonzero(~ok)[0]:
-            note[k] = f"{note[k]}; {REVERSED_DELTA_HINT}"
+            note[k] = f"{REVERSED_DELTA_HINT}; as given: {note[k]}"
     sites = SiteResults(
         wafer=mcat("wafer").astype(str), slot=mcat("slot"), site=mcat("site"),
         x_mm=mcat("x_mm"), y_mm=mcat("y_mm"), values=cat("values"), sigma=cat("sigma"),

@@ -297,3 +297,75 @@ def test_demo_generator_is_deterministic_and_labelled(tmp_path):
     for rel in files:
         assert (a / rel).read_bytes() == (b / rel).read_bytes(), rel
         assert b"INVENTED" in (a / rel).read_bytes()[:200], rel
+
+
+# --- trust on real instrument data (systematics, convention, suspects) -------------------
+
+def _flip_delta_files(folder, n_wl):
+    """Rewrite every spectra file with 360 - Delta (the opposite sign convention)."""
+    for f in folder.glob("*.csv"):
+        lines = f.read_text().splitlines()
+        out = lines[:2]
+        for row in lines[2:]:
+            cells = row.split(",")
+            head, psi, delta = cells[:5], cells[5:5 + n_wl], cells[5 + n_wl:]
+            out.append(",".join(head + psi + [f"{(360.0 - float(v)) % 360.0:.12g}" for v in delta]))
+        f.write_text("\n".join(out) + "\n")
+
+
+def test_reversed_delta_convention_is_named_once_and_can_be_declared(tmp_path):
+    # tmm Psi/Delta written with the opposite sign of Delta: every site fails, the console
+    # says why once, the reasons point at the convention; declaring it fixes the lot
+    rng = np.random.default_rng(31)
+    wafers = {"E1": (3, rng.uniform(100, 900, 9))}
+    lot, truth = write_lot(tmp_path / "lot", wafers, technique="ellipsometry", angle=70.0)
+    _flip_delta_files(tmp_path / "lot", WL.size)
+    r = run_cli("reduce", lot, "-o", tmp_path / "out", "--no-figures", "--no-history")
+    assert r.returncode == 0, r.stderr
+    assert sum("360 - Delta" in line for line in r.stdout.splitlines()) == 1, r.stdout
+    assert "failures by reason: Delta convention x9" in r.stdout
+    ds = xr.open_dataset(tmp_path / "out" / "lot.nc")
+    assert not ds["fit_ok"].values.any()
+    assert all(str(v).startswith("Delta convention") for v in ds["fit_note"].values.ravel())
+    ds.close()
+    text = lot.read_text().replace('files = ["*.csv"]', 'files = ["*.csv"]\ndelta_convention = "reversed"')
+    lot.write_text(text)
+    r = run_cli("reduce", lot, "-o", tmp_path / "out2", "--no-figures", "--no-history")
+    assert r.returncode == 0, r.stderr
+    ds = xr.open_dataset(tmp_path / "out2" / "lot.nc")
+    assert ds["fit_ok"].values.all()
+    for (wid, site), d in truth.items():
+        assert abs(float(ds["thickness"].sel(wafer=wid, site=site)) - d) < 0.5
+
+
+def test_lot_nc_carries_total_and_statistical_sigma_unchecked_values_and_suspects(tmp_path):
+    # one site of a tmm lot gets a local defect (a 6 % dip over 60 nm of its spectrum:
+    # a particle's shadow); it still fits under the limit, is flagged suspect and counted
+    rng = np.random.default_rng(32)
+    wafers = {"A1": (2, rng.uniform(400, 1200, 9)), "A2": (3, rng.uniform(400, 1200, 9))}
+    lot, truth = write_lot(tmp_path / "lot", wafers)
+    f = tmp_path / "lot" / "A2.csv"
+    lines = f.read_text().splitlines()
+    cells = lines[4].split(",")
+    vals = np.array([float(v) for v in cells[5:]])
+    vals[20:26] *= 0.94
+    lines[4] = ",".join(cells[:5] + [f"{v:.12g}" for v in vals])
+    f.write_text("\n".join(lines) + "\n")
+    out = tmp_path / "out"
+    r = run_cli("reduce", lot, "-o", out, "--no-figures", "--no-history")
+    assert r.returncode == 0, r.stderr
+    ds = xr.open_dataset(out / "lot.nc")
+    for var in ("thickness_sigma", "thickness_sigma_stat", "thickness_unchecked",
+                "reflectance_offset", "reflectance_scale", "wavelength_shift",
+                "parameter_correlation", "suspect"):
+        assert var in ds, var
+    ok = ds["fit_ok"].values
+    assert np.all(ds["thickness_sigma_stat"].values[ok] <= ds["thickness_sigma"].values[ok])
+    np.testing.assert_allclose(ds["thickness_unchecked"].values[ok], ds["thickness"].values[ok])
+    corr = ds["parameter_correlation"].values[ok]
+    np.testing.assert_allclose(np.einsum("nii->ni", corr), 1.0, atol=1e-9)
+    suspect = ds["suspect"].values.astype(bool)
+    assert suspect.sum() == 1 and ok[suspect].all()
+    assert str(ds["fit_note"].values[suspect][0]).startswith("suspect:")
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["lot"]["suspect_sites"] == 1

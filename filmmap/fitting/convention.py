@@ -65,8 +65,8 @@ class ConventionCheck:
             float(np.average([c.median_chi2_reversed for c in checks], weights=w)))
 
 
-REVERSED_DELTA_HINT = ("the data fit far better with Delta -> 360 - Delta: the instrument "
-                       "seems to write the opposite sign convention (set delta_convention = "
+REVERSED_DELTA_HINT = ("Delta convention: the data fit far better with 360 - Delta; the "
+                       "instrument seems to write the opposite sign (set delta_convention = "
                        "\"reversed\" in [measurement])")
 """The words a user sees, once per lot and in the reasons of the rejected sites."""
 

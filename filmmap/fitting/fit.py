@@ -36,10 +36,12 @@ marks the fit "wrong stack" (a flat or foreign spectrum fits no film that well).
 MAX_GRID_POINTS = 20000
 """Largest global-search grid per thickness (about 0.3 mm of oxide at the default fineness)."""
 
-MAX_LIBRARY_POINTS = 6000
+MAX_LIBRARY_POINTS = 20000
 """Largest global-search grid over several free thicknesses together (the product of
 the axes): coarser axes, then every candidate refined jointly (coarse to fine). Keeps
-the library of two free layers near 6000 x M values, well under 1 GB and 1 s."""
+the library of two free layers at 20000 x M values (96 MB at 601 wavelengths); with
+6000 points the 0-6000 nm default ranges of two layers missed the true basin of 9 in
+64 spectra, with 20000 none (benchmarks/fit.py prints time and memory)."""
 
 FEW_POINTS = 16
 """Spectra with at most this many data points (single- and few-wavelength
@@ -51,6 +53,9 @@ STATISTICS_MIN_DOF = 20
 """Degrees of freedom from which the reduced chi-square is a usable measure of how
 much the data scatter beyond the noise model (its relative spread, sqrt(2/dof), is then
 below a third); only then is the covariance scaled up by it."""
+
+REFINE_CHUNK_VALUES = 2**23
+"""Candidate rows x data points x parameters refined at once (about 64 MiB per array)."""
 
 SEARCH_CHUNK_VALUES = 2**22
 """Spectra x grid points scored at once in the global search (32 MiB of chi-square)."""
@@ -642,9 +647,19 @@ def _search_and_refine(ctx, y, s, mk):
     # --- local refinement of every kept candidate, all in one batch ---------
     # one candidate per spectrum is the common case: then no copy of the data is needed
     single = rows.size == n and np.array_equal(rows, np.arange(n))
-    Pc, chi2c, JTJc, rc, itc, convc = levenberg_marquardt(
-        model, P0, y_clean if single else y_clean[rows], sqrt_w if single else sqrt_w[rows],
-        lo, hi, xtol, max_iter=max_iter, prior_mean=prior_mean, prior_weight=prior_weight)
+    if single:
+        Pc, chi2c, JTJc, rc, itc, convc = levenberg_marquardt(
+            model, P0, y_clean, sqrt_w, lo, hi, xtol, max_iter=max_iter,
+            prior_mean=prior_mean, prior_weight=prior_weight)
+    else:
+        # several candidates per spectrum: refine them in chunks of rows, so memory
+        # stays bounded by REFINE_CHUNK_VALUES whatever the number of candidates
+        chunk = max(1, REFINE_CHUNK_VALUES // max(model.n_points * p, 1))
+        outs = [levenberg_marquardt(model, P0[a:a + chunk], y_clean[rows[a:a + chunk]],
+                                    sqrt_w[rows[a:a + chunk]], lo, hi, xtol, max_iter=max_iter,
+                                    prior_mean=prior_mean, prior_weight=prior_weight)
+                for a in range(0, rows.size, chunk)]
+        Pc, chi2c, JTJc, rc, itc, convc = (np.concatenate(z) for z in zip(*outs))
 
     # --- choose per spectrum --------------------------------------------------
     n_prior = int(np.count_nonzero(prior_weight))

@@ -20,6 +20,10 @@ import numpy as np
 from filmmap.fitting.model import ELLIPSOMETRY
 
 
+LIBRARY_CHUNK_VALUES = 2**21
+"""Library entries x data points evaluated at once (bounds the recursion's temporaries)."""
+
+
 def grid_step_nm(model, layer, fineness=16.0):
     """Grid step for a layer thickness: a fraction of the shortest in-film half-wave.
 
@@ -63,10 +67,15 @@ def build_library(model, grids):
     """
     mesh = np.meshgrid(*grids, indexing="ij")
     points = np.stack([g.ravel() for g in mesh], axis=1)
-    f = model.evaluate(points)
-    if model.technique == ELLIPSOMETRY:
-        f = ncs(f, model.wavelength_nm.size)
-    return points, f
+    # in chunks: the recursion's complex intermediates are several times the library
+    chunk = max(1, LIBRARY_CHUNK_VALUES // max(model.n_points, 1))
+    parts = []
+    for a in range(0, points.shape[0], chunk):
+        f = model.evaluate(points[a:a + chunk])
+        if model.technique == ELLIPSOMETRY:
+            f = ncs(f, model.wavelength_nm.size)
+        parts.append(np.asarray(f))
+    return points, parts[0] if len(parts) == 1 else np.concatenate(parts)
 
 
 def score_library(y, w, library, chunk=2048):
