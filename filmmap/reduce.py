@@ -21,7 +21,7 @@ from filmmap.fitting import fit_spectra, free_parameters
 from filmmap.fitting.convention import REVERSED_DELTA_HINT, ConventionCheck, \
     check_delta_convention
 from filmmap.fitting.suspect import flag_suspects
-from filmmap.fitting.systematics import SPECTROSCOPIC_MIN_WAVELENGTHS, Systematics
+from filmmap.fitting.systematics import SPECTROSCOPIC_MIN_WAVELENGTHS, Systematics, lot_tension
 from filmmap.materials import ScaledIndex
 from filmmap.io.lotfile import read_lot_file
 from filmmap.io.spectra_csv import check_tables, read_spectra_csv, read_spectrum_file
@@ -320,7 +320,9 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
     suspect, suspect_reason = flag_suspects(cat("reduced_chi2"), ok)
     for k in np.nonzero(suspect)[0]:
         note[k] = suspect_reason[k] + (f"; {note[k]}" if note[k] else "")
-    warnings = []
+    lot_free = _free_for(free, m.technique, results[0]["wavelength_nm"].size,
+                         m.wavelength_shift_sigma_nm is not None)
+    warnings = lot_tension(lot_free, cat("values"), ok)
     convention = ConventionCheck.combine([r["convention"] for r in results])
     if convention.reversed_fits_better:
         warnings.append(f"{REVERSED_DELTA_HINT} ({convention.accepted_reversed} of "
@@ -343,8 +345,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
         (str(s.path), s.sha256) for s in extra_inputs]
     return LotReduction(config=config, stack=stack, sites=sites, inputs=inputs,
                         wavelength_nm=results[0]["wavelength_nm"], warnings=warnings,
-                        free=_free_for(free, m.technique, results[0]["wavelength_nm"].size,
-                                       m.wavelength_shift_sigma_nm is not None))
+                        free=lot_free)
 
 
 def default_workers():

