@@ -314,7 +314,7 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
         Threads sharing the work (default: up to 2, this project's core count).
     block_rows : int, optional
         Spectra per block (default: the batch split evenly over the workers, at most
-        4096); bounds the memory of one block (about 0.2 GB at 4096 x 601 points).
+        2048); bounds the memory of one block (about 0.1 GB at 2048 x 601 points).
     systematics : "default", Systematics or None
         Instrument systematics fitted under priors when ``free`` is None:
         ``"default"`` = `Systematics.defaults` for the technique; None = none
@@ -406,7 +406,10 @@ def fit_spectra(stack, wavelength_nm, data, technique=REFLECTANCE, angle_deg=0.0
     if workers is None:
         workers = min(2, os.cpu_count() or 1)
     if block_rows is None:
-        block_rows = max(1, min(4096, -(-n // workers)))
+        # at most 2048 spectra a block: the Jacobian of four parameters then stays near
+        # the allocator's reuse threshold instead of being mapped afresh (and page-faulted)
+        # on every evaluation
+        block_rows = max(1, min(2048, -(-n // workers)))
     blocks = [slice(a, min(a + block_rows, n)) for a in range(0, n, block_rows)]
     if workers > 1 and len(blocks) > 1:
         # numpy's elementwise kernels and BLAS release the GIL: threads share the library

@@ -12,16 +12,17 @@ def weighted_residual(model, P, y, sqrt_w, jacobian):
     """
     from filmmap.fitting.model import ELLIPSOMETRY, wrap_delta_difference
 
-    out = model.evaluate(P, jacobian=jacobian)
-    f, J = out if jacobian else (out, None)
+    if not jacobian:
+        f, J = model.evaluate(P), None
+    else:
+        # the model folds the weights into its Jacobian rows as it makes them
+        f, J = model.evaluate(P, jacobian=True, sqrt_w=sqrt_w)
     r = np.subtract(y, f)
     if model.technique == ELLIPSOMETRY:
         r = wrap_delta_difference(r, model.wavelength_nm.size)
     r *= sqrt_w
     if not jacobian:
         return r, None
-    # the model hands back a fresh Jacobian array: weight it in place
-    J *= sqrt_w[:, None, :]
     return r, J
 
 
@@ -140,7 +141,15 @@ def levenberg_marquardt(model, P0, y, sqrt_w, lo, hi, xtol, max_iter=30, ftol=1e
             P[rows] = P_try[tiny]
             if Jw_keep is not None:
                 # r(P + s) = r(P) - Jw s to first order
-                r[rows] -= np.matmul(taken[tiny][:, None, :], Jw_keep[rows])[:, 0, :]
+                # (no gather of the Jacobian when every active row is in: the common case)
+                if active.size == n:
+                    upd = np.matmul(taken[:, None, :], Jw_keep)[:, 0, :]
+                    if tiny.all():
+                        r -= upd
+                    else:
+                        r[rows] -= upd[tiny]
+                else:
+                    r[rows] -= np.matmul(taken[tiny][:, None, :], Jw_keep[rows])[:, 0, :]
                 chi2[rows] = np.einsum("nm,nm->n", r[rows], r[rows])
                 if prior_weight is not None:
                     dev = P[rows] - prior_mean
