@@ -127,6 +127,20 @@ class SpectralModel:
         # evaluating at lambda with the thickness d (1 + shift * c)
         self.phase_dispersion = (self._phase_dispersion()
                                  if "wavelength_shift" in self._index else None)
+        # Ellipsometry sees the substrate's index directly (Delta moves by degrees per
+        # 0.01 of n near silicon's E1 edge at 365 nm), so there the shift is modelled in
+        # full: every medium's index at lambda + shift to first order, dN/dlambda * shift,
+        # and the film phase at the shifted wavelength. Reflectance keeps the film-phase
+        # model, which needs no per-spectrum index arrays and so keeps the fast path.
+        self.full_shift = technique == ELLIPSOMETRY and "wavelength_shift" in self._index
+        self.index_slope = self._index_slope() if self.full_shift else None
+
+    def _index_slope(self):
+        """dN/dlambda (1/nm) of the ambient, each layer and the substrate, by central difference."""
+        wl = self.wavelength_nm
+        return (index_slope(self.stack.ambient, wl), [index_slope(layer.material, wl)
+                                                       for layer in self.stack.layers],
+                index_slope(self.stack.substrate, wl))
 
     def _phase_dispersion(self):
         """c_j(lambda) = Re(q_j'/q_j) - 1/lambda per layer (1/nm), q_j = N_j cos(theta_j).
@@ -137,20 +151,14 @@ class SpectralModel:
         a micrometre film is the whole effect.
         """
         wl = self.wavelength_nm
-        h = 0.05  # nm; the materials are smooth on this scale
         sin0 = np.sin(np.deg2rad(self.angle_deg))
         out = []
-        try:
-            _, lay_hi, _ = self.stack.indices(wl + h)
-            _, lay_lo, _ = self.stack.indices(wl - h)
-        except Exception:  # at a table's end: keep the 1/lambda term, drop dispersion
-            lay_hi = lay_lo = self.N_layers
-        for N_hi, N_lo, N in zip(lay_hi, lay_lo, self.N_layers):
-            def q(Nj):
-                Nj = np.broadcast_to(np.asarray(Nj, dtype=complex), wl.shape)
-                return np.sqrt(Nj * Nj - (self.N0 * sin0) ** 2)
-            dq = (q(N_hi) - q(N_lo)) / (2 * h)
-            out.append(np.real(dq / q(N)) - 1.0 / wl)
+        for layer, N in zip(self.stack.layers, self.N_layers):
+            N = np.broadcast_to(np.asarray(N, dtype=complex), wl.shape)
+            q = np.sqrt(N * N - (self.N0 * sin0) ** 2)
+            # dq/dlambda = N dN/dlambda / q
+            dq = N * index_slope(layer.material, wl) / q
+            out.append(np.real(dq / q) - 1.0 / wl)
         return out
 
     @property
@@ -196,7 +204,10 @@ class SpectralModel:
         shift = self._nuisance(P, "wavelength_shift")
         base_thick = thick
         stretch = None
-        if shift is not None:
+        if shift is not None and self.full_shift:
+            _, dN_layers, _ = self.index_slope
+            N_layers = [N + shift * dN for N, dN in zip(N_layers, dN_layers)]
+        elif shift is not None:
             # d_eff = d (1 + shift c): kept for the Jacobian's thickness rows
             stretch = []
             for c in self.phase_dispersion:
@@ -252,12 +263,18 @@ class SpectralModel:
     def _raw(self, P, derivatives):
         thick, N_layers, base_thick = self._layer_inputs(P)
         angle = self._angle_of(P)
+        wl, N0, N_sub = self.wavelength_nm, self.N0, self.N_sub
+        shift = self._nuisance(P, "wavelength_shift") if self.full_shift else None
+        if shift is not None:
+            dN0, _, dN_sub = self.index_slope
+            wl = wl + shift
+            N0 = N0 + shift * dN0
+            N_sub = N_sub + shift * dN_sub
         if self.technique == REFLECTANCE:
-            out = transfer.reflectance(self.wavelength_nm, self.N0, N_layers, thick, self.N_sub,
+            out = transfer.reflectance(wl, N0, N_layers, thick, N_sub,
                                        angle, self.polarization, derivatives)
             return ((out[0], out[1]) if derivatives else (out, None)), base_thick
-        out = transfer.psi_delta(self.wavelength_nm, self.N0, N_layers, thick, self.N_sub,
-                                 angle, derivatives)
+        out = transfer.psi_delta(wl, N0, N_layers, thick, N_sub, angle, derivatives)
         if derivatives:
             psi, delta, dpsi, ddelta = out
             return (np.concatenate([psi, delta], axis=-1), [
@@ -304,7 +321,7 @@ class SpectralModel:
             return f
         shift = self._nuisance(P, "wavelength_shift")
         dispersion = stretch = None
-        if shift is not None:
+        if shift is not None and layer_stretch is not None:
             # per layer c_j and 1 + shift c_j on the M data points (Psi and Delta share a
             # wavelength)
             dispersion = [c if c.size == M else np.tile(c, M // c.size)
@@ -336,6 +353,10 @@ class SpectralModel:
                     np.multiply(layer_derivative(p.layer), stretch[p.layer], out=row)
                 else:
                     np.copyto(row, layer_derivative(p.layer))
+            elif p.kind == "wavelength_shift" and self.full_shift:
+                row[...] = self._difference_column(P, i, base, 1e-3)
+                if sqrt_w is not None:
+                    row *= sqrt_w
             elif p.kind == "wavelength_shift":
                 if dispersion is None:   # at zero shift: the same c_j, no stretch
                     dispersion = [c if c.size == M else np.tile(c, M // c.size)
@@ -371,6 +392,33 @@ class SpectralModel:
                 else:
                     row.fill(1.0)
         return f, J
+
+
+def index_slope(material, wavelength_nm, h=0.05):
+    """dN/dlambda of a material (1/nm), by central difference kept inside its valid range.
+
+    Parameters
+    ----------
+    material : filmmap.materials.Material
+    wavelength_nm : numpy.ndarray
+        Wavelengths, nm.
+    h : float
+        Half step, nm; at the ends of the range the step is one-sided.
+
+    Returns
+    -------
+    numpy.ndarray of complex
+    """
+    wl = np.asarray(wavelength_nm, dtype=float)
+    lo_r, hi_r = getattr(material, "range_nm", (-np.inf, np.inf))
+    if getattr(material, "extrapolate", False):
+        lo_r, hi_r = -np.inf, np.inf
+    hi = np.minimum(wl + h, hi_r)
+    lo = np.maximum(wl - h, lo_r)
+    span = np.where(hi > lo, hi - lo, 1.0)
+    N_hi = np.broadcast_to(np.asarray(material(hi), dtype=complex), wl.shape)
+    N_lo = np.broadcast_to(np.asarray(material(lo), dtype=complex), wl.shape)
+    return np.where(hi > lo, (N_hi - N_lo) / span, 0.0)
 
 
 def wrap_delta_difference(diff, n_wavelengths):
