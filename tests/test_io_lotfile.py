@@ -650,3 +650,45 @@ def test_fuzz_random_bytes_lot_file(folder, blob):
     path.write_bytes(blob)
     with pytest.raises(FilmmapInputError):
         read_lot_file(path)
+
+
+# --------------------------------------------------------------------------- systematics keys
+
+def test_systematics_priors_and_index_scale_keys(folder):
+    text = edit('reflectance_unit = "fraction"\n', 'reflectance_unit = "fraction"\n'
+                'offset_sigma = 0.001\nscale_sigma = 0\nwavelength_shift_sigma_nm = 0.5\n')
+    text = edit('fit = true\n', 'fit = true\nindex_scale = 1.003\nfit_index_scale = true\n', text)
+    cfg = read_lot_file(write_lot(folder, text))
+    m = cfg.measurement
+    assert (m.offset_sigma, m.scale_sigma, m.wavelength_shift_sigma_nm) == (0.001, 0.0, 0.5)
+    assert m.angle_offset_sigma_deg is None          # the technique's default applies
+    assert cfg.stack.layers[0].index_scale == 1.003 and cfg.stack.layers[0].fit_index_scale
+    # what reduce makes of them: the fitted parameters with their priors
+    from filmmap.reduce import build_stack, lot_systematics
+    sys_ = lot_systematics(cfg)
+    assert (sys_.offset_sigma, sys_.scale_sigma, sys_.wavelength_shift_nm) == (0.001, 0.0, 0.5)
+    _stack, free, _names = build_stack(cfg)
+    kinds = {f.kind: f for f in free}
+    assert "scale" not in kinds and kinds["offset"].prior_sigma == 0.001
+    assert "index_scale" in kinds
+
+
+def test_fit_offset_alias(folder):
+    text = edit('reflectance_unit = "fraction"\n', 'reflectance_unit = "fraction"\nfit_offset = false\n')
+    assert read_lot_file(write_lot(folder, text)).measurement.offset_sigma == 0.0
+    text = edit('reflectance_unit = "fraction"\n',
+                'reflectance_unit = "fraction"\nfit_offset = true\noffset_sigma = 0.002\n')
+    check(folder, text, "not both", field="measurement.fit_offset")
+
+
+@pytest.mark.parametrize("old, new, field, fragment", [
+    ('reflectance_unit = "fraction"\n', 'reflectance_unit = "fraction"\noffset_sigma = 2\n',
+     "measurement.offset_sigma", "offset_sigma"),
+    ('reflectance_unit = "fraction"\n', 'reflectance_unit = "fraction"\nscale_sigma = -0.01\n',
+     "measurement.scale_sigma", "scale_sigma"),
+    ('reflectance_unit = "fraction"\n', 'reflectance_unit = "fraction"\ndelta_convention = "reversed"\n',
+     "measurement.delta_convention", "'ellipsometry' only"),
+    ('fit = true\n', 'fit = true\nindex_scale = 1.5\n', "stack.layer[1].index_scale", "index_scale"),
+])
+def test_bad_systematics_keys_name_the_field(folder, old, new, field, fragment):
+    check(folder, edit(old, new), fragment, field=field)
