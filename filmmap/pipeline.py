@@ -22,7 +22,7 @@ from filmmap.io.publish import check_outdir, staged_output
 from filmmap.outputs import write_lot
 from filmmap.reduce import reduce_lot
 from filmmap.report.lotview import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT
-from filmmap.report.lotview import lot_view
+from filmmap.report.lotview import lot_view, with_boat_model
 from filmmap.report.summary_json import write_summary_csv, write_summary_json
 
 # a wafer with fewer usable sites than MIN_SITES_FOR_LOT is left out of lot statistics and advice
@@ -86,12 +86,14 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     # every output goes to a staging folder that replaces OUTDIR only once complete
     with staged_output(outdir) as stage:
         written = write_lot(reduction, stage, keep_spectra=keep_spectra)
-        view = lot_view(written.dataset, reduction.config, min_sites=MIN_SITES_FOR_LOT)
-        written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
-        written.files["summary.json"] = write_summary_json(view, stage)
         advice = write_advice(reduction.config, written, stage)
         if advice is not None:
             written.files["advice.json"] = stage / "advice.json"
+        # the boat-end verdicts follow the advice's one model of the boat when there is one
+        view = with_boat_model(lot_view(written.dataset, reduction.config,
+                                        min_sites=MIN_SITES_FOR_LOT), advice)
+        written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
+        written.files["summary.json"] = write_summary_json(view, stage)
         written.advice = advice
         written.view = view
         if figures:

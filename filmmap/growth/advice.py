@@ -54,10 +54,10 @@ import numpy as np
 from scipy.optimize import brentq, lsq_linear
 
 from filmmap.errors import FilmmapInputError
+from filmmap.growth.boat import fit_boat
 from filmmap.growth.calibrate import (
     DEFAULT_INITIAL_NM,
     calibrate_slots,
-    fit_zones,
     gain_matrix,
     normalise_zones,
     steps_from_config,
@@ -209,7 +209,8 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
            max_offset_C=5.0, max_time_change_pct=15.0, tolerance_pct=None, width_slots=0.0,
            shape="logistic", monitor_weight=1.0, reference_zone=None, n_failed_sites=0,
            n_sites=None, min_product_wafers=5, max_failed_fraction=0.05, max_residual_C=0.5,
-           trim_regularisation=1e-2, n_iterations=3):
+           trim_regularisation=1e-2, n_iterations=3, boat_size=None, decay_slots=None,
+           dummy_slots=None):
     """Advice for the next run: adjust-step time and zone trims, with predictions and warnings.
 
     Parameters
@@ -272,6 +273,15 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
         Relative weight of the smallest-trim term (dimensionless, default 1e-2).
     n_iterations : int
         Linearise-and-solve passes of the trim optimisation (count, default 3).
+    boat_size : int, optional
+        Slots in the boat (default: the highest slot given); the source-end effect starts
+        after the last dummy before it.
+    decay_slots : float, optional
+        End-effect decay length, slots (default: the best of a scan, see
+        `filmmap.growth.boat`).
+    dummy_slots : sequence of int, optional
+        Dummy slots of the boat, measured or not (default: the wafers with role
+        ``"dummy"``); each end effect starts after the last dummy at its end.
 
     Returns
     -------
@@ -288,7 +298,14 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
         error relative to the common offset, K, None where undetermined),
         ``common_offset_C`` (K), ``zone_fit_residual_C`` (K rms), ``zone_fit_explained``
         (fraction or None), ``n_usable_product`` (count), ``uncalibrated_slots`` (list of
-        int), ``model`` (settings used).
+        int), ``model`` (settings used); with zones also ``boat_model`` (the joint fit of
+        zone errors, end effects and residual, `filmmap.growth.boat`),
+        ``extra_dummies`` (end -> count), ``edge_slots`` (end -> slots the end effect
+        still puts out of tolerance after the trims), ``flat_zone_slots`` ([first, last]
+        product slots predicted within tolerance after the advice, or None),
+        ``unexplained_slots`` (slots whose residual alone exceeds half the tolerance) and
+        ``recommendations`` (list of {"action", "answers"}: each change with the cause it
+        answers).
 
     Raises
     ------
@@ -349,11 +366,15 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     n_p = int(product.sum())
     bad_cal = [int(s) for s, status in zip(slots, cal.status) if status not in ("ok", "missing")]
 
-    # zone fit and the offsets used for prediction
-    fit = None
+    # one model of the boat (zones + end effects + residual) and the offsets for prediction
+    fit = boat = None
     G = np.zeros((slots.size, 0))
     if zs:
-        fit = fit_zones(slots, cal.offset_C, zs, weight, width_slots=width_slots, shape=shape)
+        boat = fit_boat(slots, cal.offset_C, zs, weight, boat_size=boat_size,
+                        dummy_slots=(slots[roles == "dummy"] if dummy_slots is None
+                                     else dummy_slots), width_slots=width_slots,
+                        shape=shape, decay_slots=decay_slots)
+        fit = _zone_view(boat)
         G = gain_matrix(zs, slots, width_slots, shape)
     base = cal.offset_C.copy()
     fill = np.isnan(base)
@@ -431,26 +452,30 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
             warnings.append(f"zone(s) {', '.join(map(repr, unseen))} hold too few usable wafers "
                             "to be calibrated; their trim is held at 0 K")
         if np.isfinite(fit.residual_rms_C) and fit.residual_rms_C > max_residual_C:
-            expl = ("" if not np.isfinite(fit.explained)
-                    else f"; the zones explain {100.0 * max(fit.explained, 0.0):.0f} % of the "
+            expl = ("" if not np.isfinite(boat.explained_zone)
+                    else f"; the zones explain {100.0 * max(boat.explained_zone, 0.0):.0f} % and "
+                         f"the boat ends {100.0 * max(boat.explained_end, 0.0):.0f} % of the "
                          "slot-to-slot variance")
-            warnings.append(f"the heater zones do not explain the slot profile: the zone fit "
-                            f"leaves {fit.residual_rms_C:.2f} K rms (more than "
-                            f"{max_residual_C:g} K){expl}; zone trims can remove only the zone "
-                            "part, the rest needs another cause to be found")
+            warnings.append(f"weak fit: zones and boat ends do not explain the slot profile: "
+                            f"the boat model leaves {fit.residual_rms_C:.2f} K rms (more than "
+                            f"{max_residual_C:g} K){expl}; trims and dummies answer only their "
+                            "parts, the rest needs another cause to be found")
         if np.isfinite(fit.common_C) and abs(fit.common_C) > max_off:
             warnings.append(f"the whole lot reads as {fit.common_C:+.1f} K off on average: a "
                             "temperature, rate or time error of the whole run (the oxide cannot "
                             "tell which); check the run record before acting on the advice")
 
-    # trims and time, alternated
+    # trims and time, alternated. The trims flatten the zone part only: the end effects
+    # and the residual are not the zones' doing, and chasing them with a zone trim would
+    # move every other slot of that zone. The time puts the whole product mean on target.
     Gp = G[product]
     bp = base[product]
+    bz = boat.zone_part_at(slots[product]) if boat is not None else bp
     m_lo, m_hi = m0 * (1.0 - p_time / 100.0), m0 * (1.0 + p_time / 100.0)
     minutes, clip = m0, 0
     for _ in range(2):
         if zs:
-            trims = _optimise_trims(model, bp, Gp, free, trims, minutes, max_off,
+            trims = _optimise_trims(model, bz, Gp, free, trims, minutes, max_off,
                                     float(trim_regularisation), int(n_iterations))
         minutes, clip = _solve_time(model, bp + Gp @ trims, target, m_lo, m_hi)
 
@@ -476,7 +501,109 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     if tolerance_pct is not None and abs(miss_pct) > float(tolerance_pct):
         warnings.append(f"predicted product mean {mean_next:.1f} nm is outside the spec band "
                         f"(+/-{float(tolerance_pct):g} % of {target:g} nm)")
-    return result(minutes, trims, x_now, x_next)
+    out = result(minutes, trims, x_now, x_next)
+    out.update(_boat_verdicts(boat, model, slots, roles, product, base + G @ trims, minutes,
+                              x_next, target, tolerance_pct, step_name, m0, names, trims,
+                              warnings))
+    return out
+
+
+def _runs(slots):
+    """Maximal runs of consecutive integers in a sorted slot list, as (first, last)."""
+    out = []
+    for s in slots:
+        if out and s == out[-1][1] + 1:
+            out[-1][1] = s
+        else:
+            out.append([s, s])
+    return [tuple(r) for r in out]
+
+
+def _boat_verdicts(boat, model, slots, roles, product, offset_next, minutes, x_next, target,
+                   tolerance_pct, step_name, m0, names, trims, warnings):
+    """Dummies, flat zone, unexplained slots and the recommendations, from the one boat fit.
+
+    Every recommendation names the cause it answers: the time the product mean, each trim
+    its zone's error, extra dummies the end effect that trims cannot remove (the slots
+    where the end effect alone still exceeds the tolerance after the advice).
+    """
+    recs = [{"action": f"set {step_name} to {minutes:.1f} min (now {m0:.1f} min)",
+             "answers": "the product mean against the target"}]
+    out = {"recommendations": recs}
+    if boat is None:
+        return out
+    tol_nm = None if tolerance_pct is None else float(tolerance_pct) / 100.0 * target
+    S = model.dx_dT(offset_next, minutes)          # nm per K at each slot, next run
+    prod_slots = np.sort(slots[product])
+    for n, v, e, se in zip(names, trims, boat.zone_error_C, boat.zone_sigma_C):
+        if abs(v) >= 0.05:
+            err = (f"zone error {e:+.2f} +/- {se:.2f} K relative to the boat mean"
+                   if np.isfinite(e) else "zone error undetermined")
+            recs.append({"action": f"trim zone {n!r} by {v:+.2f} K", "answers": err})
+    extra, edges = {}, {}
+    for e in boat.ends:
+        extra[e.end], edges[e.end] = 0, []
+        if not e.detected or tol_nm is None:
+            continue
+        side = prod_slots if e.end == "load" else prod_slots[::-1]
+        idx = {int(s): i for i, s in enumerate(slots)}
+        # out of tolerance after the advice, and in tolerance but for this end effect
+        this_end = S * e.at(slots)
+        out_of_tol = [int(s) for s in side
+                      if abs(x_next[idx[int(s)]] - target) > tol_nm
+                      and abs(x_next[idx[int(s)]] - this_end[idx[int(s)]] - target) <= tol_nm]
+        edges[e.end] = sorted(out_of_tol)
+        extra[e.end] = len(out_of_tol)
+        if out_of_tol:
+            recs.append({"action": f"add {len(out_of_tol)} dumm{'y' if len(out_of_tol) == 1 else 'ies'} "
+                                   f"at the {e.end} end",
+                         "answers": f"the {e.end}-end effect ({e.amplitude_C:+.2f} +/- "
+                                    f"{e.sigma_C:.2f} K at the first wafer after the dummies, "
+                                    f"decaying over {e.decay_slots:g} slots), which zone trims "
+                                    f"cannot remove: slots {', '.join(map(str, out_of_tol))} stay "
+                                    "out of tolerance"})
+    out["extra_dummies"] = extra
+    out["edge_slots"] = edges
+    flat = None
+    unexplained = []
+    if tol_nm is not None:
+        idx = {int(s): i for i, s in enumerate(slots)}
+        good = [int(s) for s in prod_slots if abs(x_next[idx[int(s)]] - target) <= tol_nm]
+        runs = _runs(good)
+        # a run may step over monitor/dummy slots between product slots
+        merged = []
+        for r in runs:
+            if merged and not np.any(np.isin(prod_slots, np.arange(merged[-1][1] + 1, r[0]))):
+                merged[-1] = (merged[-1][0], r[1])
+            else:
+                merged.append(r)
+        if merged:
+            flat = list(max(merged, key=lambda r: (r[1] - r[0], -r[0])))
+        resid = dict(zip(boat.slot.tolist(), boat.residual_C.tolist()))
+        for s in prod_slots:
+            r = resid.get(int(s))
+            if r is not None and abs(S[idx[int(s)]] * r) > 0.5 * tol_nm:
+                unexplained.append(int(s))
+    out["flat_zone_slots"] = flat
+    out["unexplained_slots"] = unexplained
+    if unexplained:
+        recs.append({"action": f"look into slot(s) {', '.join(map(str, unexplained))}",
+                     "answers": "a residual that neither the zones nor the boat ends explain "
+                                f"(boat model residual {boat.residual_rms_C:.2f} K rms)"})
+    out["boat_model"] = boat.as_dict()
+    return out
+
+
+def _zone_view(boat):
+    """The zone part of a boat fit in the shape the zone-only code reads (errors, rms)."""
+    from types import SimpleNamespace
+
+    return SimpleNamespace(
+        observed=boat.observed, absolute_C=boat.zone_absolute_C, error_C=boat.zone_error_C,
+        common_C=boat.common_C, residual_rms_C=boat.residual_rms_C,
+        explained=boat.explained_zone,
+        as_dict=lambda: {n: (float(e) if np.isfinite(e) else None)
+                         for n, e in zip(boat.names, boat.zone_error_C)})
 
 
 def roles_from_boat(slot, boat):
@@ -570,6 +697,8 @@ def advise_from_config(config, slot, mean_nm, role=None, n_failed_sites=0, **opt
     if config.furnace is not None:
         kw.update(max_offset_C=config.furnace.max_offset_C,
                   max_time_change_pct=config.furnace.max_time_change_pct)
+    if config.boat is not None:
+        kw.update(boat_size=config.boat.slots, dummy_slots=tuple(config.boat.dummy_slots))
     kw.update(options)
     if role is None:
         role = roles_from_boat(slot, config.boat)

@@ -471,3 +471,44 @@ def lot_view(ds, config, *, min_sites=DEFAULT_MIN_SITES, k=None, false_alarm=0.0
         failed_sites=tuple(failed), n_sites_measured=n_meas, warnings=warnings,
         notes=[nt for nt in prof.notes if not nt.startswith("edge runs cover more than half")],
         suspect_sites=tuple(suspect))
+
+
+def with_boat_model(view, advice):
+    """The lot view with its boat-end verdicts taken from the advice's one boat model.
+
+    Without a growth model (no recipe, target or zones) the lot view judges the boat ends
+    statistically (`filmmap.lotstats.slots`). With one, the advice has fitted zone errors,
+    end effects and a residual together (`filmmap.growth.boat`), and the verdict must say
+    the same as the advice: edge slots are those the advised run still leaves out of
+    tolerance because of an end effect, extra dummies answer only those, and the flat zone
+    is the run of product slots predicted within tolerance after the advice.
+
+    Parameters
+    ----------
+    view : LotView
+    advice : dict or None
+        The advice (`filmmap.growth.advice.advise`); without ``boat_model`` the view is
+        returned unchanged.
+
+    Returns
+    -------
+    LotView
+    """
+    from dataclasses import replace
+
+    if not advice or "boat_model" not in advice:
+        return view
+    edges = advice.get("edge_slots", {})
+    load = [int(s) for s in edges.get("load", [])]
+    source = [int(s) for s in edges.get("source", [])]
+    flat = advice.get("flat_zone_slots")
+    extra = {k: int(v) for k, v in advice.get("extra_dummies", {}).items()}
+    profile = replace(view.profile, edge_slots=sorted(load + source), edge_slots_load=load,
+                      edge_slots_source=source, flat_zone=list(flat) if flat else None,
+                      extra_dummies={"load": extra.get("load", 0),
+                                     "source": extra.get("source", 0)})
+    notes = list(view.notes) + [
+        "edge slots, extra dummies and the flat zone come from the advice's boat model "
+        "(zone errors, end effects and residual fitted together): edge slots are those the "
+        "advised run still leaves out of tolerance because of an end effect"]
+    return replace(view, profile=profile, notes=notes)
