@@ -554,3 +554,97 @@ def test_crash_between_publish_and_record_is_caught_up_by_the_next_run(tmp_path)
     assert _recorded_sha(db, "T-0002") == published_b
     assert _recorded_sha(db, "T-0001") == _sha(out / "lot.nc")
     assert not (out / PENDING_RECORD).exists()
+
+
+# ------------------------------------------------------------------ 4. physical bounds
+
+def _spectra_file(path, n_sites=9, n_wl=5, wafer="K1", slot=4, value="0.3"):
+    header = "wafer,slot,site,x_mm,y_mm," + ",".join(f"R@{400 + 10 * k}" for k in range(n_wl))
+    row_tail = "," + ",".join([value] * n_wl)
+    lines = [header] + [f"{wafer},{slot},{s + 1},0,0{row_tail}" for s in range(n_sites)]
+    path.write_text("\n".join(lines) + "\n")
+
+
+def _reduce_refused(tmp_path, lot, *names):
+    before = tree_digest(tmp_path)
+    r = run_cli("reduce", lot, "-o", tmp_path / "out", "--no-figures", "--quiet",
+                "--history", tmp_path / "h.sqlite")
+    assert_refused(r, *names)
+    assert tree_digest(tmp_path) == before     # inputs unchanged, no output, no history
+    return r
+
+
+@pytest.mark.parametrize("old, new, field", [
+    ("search_nm = [5, 3000]\n", "thickness_nm = 0\n", "stack.layer[1].thickness_nm"),
+    ('id = "T-0001"', 'id = "' + "L" * 65 + '"', "lot.id"),
+    ('[stack]', '[boat]\nslots = 100000000\n\n[stack]', "boat.slots"),
+    ('[stack]', '[[recipe.step]]\nname = "wet"\nambient = "H2O"\nminutes = 1e9\nat_C = 1000\n'
+                '\n[stack]', "recipe.step[1].minutes"),
+])
+def test_lot_file_numbers_beyond_bounds_are_refused(tmp_path, old, new, field):
+    lot = one_wafer_lot(tmp_path / "lot")
+    text = lot.read_text()
+    assert old in text
+    lot.write_text(text.replace(old, new, 1))   # new tables go before [stack]
+    _reduce_refused(tmp_path, lot, lot, field)
+
+
+@pytest.mark.parametrize("case", ["long-id", "huge-id", "sites", "wavelengths", "slot"])
+def test_spectra_numbers_beyond_bounds_are_refused(tmp_path, case):
+    lot = one_wafer_lot(tmp_path / "lot")
+    data = tmp_path / "lot" / "K1.csv"
+    if case == "long-id":
+        _spectra_file(data, wafer="W" * 65)
+        field = "wafer"
+    elif case == "huge-id":
+        _spectra_file(data, wafer="W" * (2 * 2**20))   # the 2 MiB id
+        field = "wafer"
+    elif case == "sites":
+        _spectra_file(data, n_sites=10001)
+        field = "site"
+    elif case == "wavelengths":
+        _spectra_file(data, n_sites=1, n_wl=20001)
+        field = "R@"
+    else:
+        _spectra_file(data, slot=5000)
+        field = "slot"
+    r = _reduce_refused(tmp_path, lot, data, f"field '{field}'")
+    assert "expected" in r.stderr
+    assert len(r.stderr) < 2000          # the 2 MiB id is not echoed back
+
+
+@pytest.mark.parametrize("reference", ["equal", "zero", "below"])
+def test_degenerate_reference_names_the_reference_file(tmp_path, reference):
+    folder = tmp_path / "lot"
+    lot = one_wafer_lot(folder)
+    wl = list(range(400, 1001, 10))
+    dark = np.full(len(wl), 120.0)
+    ref = {"equal": dark, "zero": np.zeros(len(wl)), "below": dark - 50}[reference]
+    for name, counts in (("dark", dark), ("bare_si", ref)):
+        (folder / f"{name}.spec").write_text(",".join(f"I@{w}" for w in wl) + "\n"
+                                             + ",".join(f"{v:g}" for v in counts) + "\n")
+    # the data files as raw counts (any positive numbers: the reference is refused first)
+    text = (folder / "K1.csv").read_text().splitlines()
+    header = text[0].replace("R@", "I@")
+    rows = [",".join(r.split(",")[:5] + ["1000"] * len(wl)) for r in text[1:]]
+    (folder / "K1.csv").write_text("\n".join([header] + rows) + "\n")
+    lot.write_text(lot.read_text().replace('reflectance_unit = "fraction"\n',
+                                           'dark_file = "dark.spec"\n'
+                                           'reference_file = "bare_si.spec"\n'))
+    r = _reduce_refused(tmp_path, lot, folder / "bare_si.spec", "reference_file")
+    assert "dark" in r.stderr
+
+
+def test_lot_whose_fits_all_failed_is_not_recorded(tmp_path):
+    # flat spectra: no film fits them (tests/test_bad_inputs.py, flat spectrum case)
+    lot = one_wafer_lot(tmp_path / "lot")
+    _spectra_file(tmp_path / "lot" / "K1.csv", n_wl=61, value="0.30")   # 400-1000 nm
+    db = tmp_path / "h.sqlite"
+    r = run_cli("reduce", lot, "-o", tmp_path / "out", "--no-figures", "--history", db)
+    assert r.returncode == 0, r.stderr
+    assert "failed fits: 9" in r.stdout
+    assert "not recorded in the history" in r.stderr and "T-0001" in r.stderr
+    from filmmap.history import lots
+    assert lots(db) == []
+    from filmmap.pipeline import PENDING_RECORD
+    assert not (tmp_path / "out" / PENDING_RECORD).exists()
