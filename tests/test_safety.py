@@ -648,3 +648,35 @@ def test_lot_whose_fits_all_failed_is_not_recorded(tmp_path):
     assert lots(db) == []
     from filmmap.pipeline import PENDING_RECORD
     assert not (tmp_path / "out" / PENDING_RECORD).exists()
+
+
+def test_full_disk_under_the_history_says_so(tmp_path):
+    # the issue: a full disk under the history read "not a usable SQLite database: disk I/O
+    # error", which sounds like corruption
+    from filmmap.errors import FilmmapInputError
+    from filmmap.history import lots
+    from filmmap.pipeline import PENDING_RECORD, record_history
+
+    lot = one_wafer_lot(tmp_path / "lot")
+    out = tmp_path / "out"
+    assert run_cli("reduce", lot, "-o", out, "--no-figures", "--quiet",
+                   "--no-history").returncode == 0
+    (out / PENDING_RECORD).write_text("{}")
+    with tmpfs(tmp_path / "small", "1m") as small:
+        db = small / "h.sqlite"
+        fd = os.open(small / "filler", os.O_WRONLY | os.O_CREAT)   # fill the disk up
+        try:
+            with contextlib.suppress(OSError):
+                while True:
+                    os.write(fd, b"\0" * 4096)
+        finally:
+            os.close(fd)
+        with pytest.raises(FilmmapInputError) as err:
+            record_history(out, None, db)
+        message = str(err.value)
+        assert str(db) in message and "full" in message
+        assert "not a usable SQLite database" not in message
+        assert (out / PENDING_RECORD).exists()      # the next reduce into OUT records it
+        (small / "filler").unlink()
+        assert not db.exists()      # no empty database file left behind
+        assert lots(db) == []
