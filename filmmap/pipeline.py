@@ -284,7 +284,9 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
     if workers > 1 and len(tasks) > 1:
         from concurrent.futures import ProcessPoolExecutor
 
-        with ProcessPoolExecutor(max_workers=workers) as pool:
+        from filmmap.workers import end_with_parent
+
+        with ProcessPoolExecutor(max_workers=workers, initializer=end_with_parent) as pool:
             for i, res in enumerate(pool.map(_reduce_one, tasks)):
                 results[i] = res
                 if progress:

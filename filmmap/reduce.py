@@ -21,6 +21,7 @@ from filmmap.fitting import fit_spectra, free_parameters
 from filmmap.io.lotfile import read_lot_file
 from filmmap.io.spectra_csv import check_tables, read_spectra_csv, read_spectrum_file
 from filmmap.optics import Layer, Stack
+from filmmap.workers import end_with_parent
 
 BATCH_SPECTRA = 2500
 """Spectra per fitting batch: large enough for the batched fitter's speed, small
@@ -229,7 +230,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
               threads, m.wafer_diameter_mm) for b in batches]
     results, metas = [], []
     if workers > 1 and len(tasks) > 1:
-        with ProcessPoolExecutor(max_workers=workers) as pool:
+        with ProcessPoolExecutor(max_workers=workers, initializer=end_with_parent) as pool:
             for out, meta in pool.map(_fit_batch, tasks):
                 results.append(out)
                 metas.extend(meta)

@@ -10,8 +10,10 @@ import contextlib
 import hashlib
 import os
 import shutil
+import signal
 import subprocess
 import sys
+import time
 
 import numpy as np
 import pytest
@@ -680,3 +682,44 @@ def test_full_disk_under_the_history_says_so(tmp_path):
         (small / "filler").unlink()
         assert not db.exists()      # no empty database file left behind
         assert lots(db) == []
+
+
+# ------------------------------------------------------------------ 5. no orphans
+
+def _children_once_drawing(proc, stage_glob, psutil, min_children=2, timeout_s=300):
+    """The process tree under PROC once its first wafer map is in the staging folder."""
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline and proc.poll() is None:
+        try:
+            kids = psutil.Process(proc.pid).children(recursive=True)
+        except psutil.NoSuchProcess:
+            return []
+        if len(kids) >= min_children and list(stage_glob()):
+            return kids
+        time.sleep(0.02)
+    return []
+
+
+def test_killing_reduce_while_drawing_leaves_no_worker(tmp_path):
+    # the issue: kill -9 of reduce during the figures left its 2 figure workers alive
+    import psutil
+    lot, _ = write_lot(tmp_path / "lot", {f"W{i:02d}": (i + 1, np.full(9, 600.0 + i))
+                                          for i in range(40)})
+    out = tmp_path / "out"
+    proc = subprocess.Popen([sys.executable, "-m", "filmmap.cli.main", "reduce", str(lot), "-o",
+                             str(out), "--quiet", "--no-history"],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        children = _children_once_drawing(
+            proc, lambda: tmp_path.glob(".out.filmmap-*/figures/*.png"), psutil)
+        assert children, "reduce ended before its figure workers could be seen"
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait()
+        gone, alive = psutil.wait_procs(children, timeout=5)
+        for p in alive:
+            p.kill()            # leave nothing behind, even when the test fails
+        assert not alive, [p.pid for p in alive]
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
