@@ -39,3 +39,13 @@ class FilmmapInputError(ValueError):
 
 class MaterialRangeError(FilmmapInputError):
     """A wavelength outside the validity range of a material model."""
+
+
+class FilmmapOutputError(FilmmapInputError):
+    """An output that could not be written (a full disk, a read-only medium, a lost path).
+
+    Raised once the work has started, when a check before it could not foresee the
+    problem; the message names the path and says what is left intact.  The command line
+    exits with code 2, as for bad input: the remedy is the user's (free space, another
+    folder), not a fix in filmmap.
+    """

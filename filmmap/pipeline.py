@@ -6,6 +6,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import time
@@ -13,10 +14,12 @@ from pathlib import Path
 
 import numpy as np
 
-from filmmap.errors import FilmmapInputError
+from filmmap.errors import FilmmapInputError, FilmmapOutputError
 from filmmap.growth.advice import advise_from_config
 from filmmap.io.atomic import write_text_atomic
-from filmmap.io.guard import check_outputs_spare_inputs, lot_inputs, output_target
+from filmmap.io.guard import (check_output_location, check_outputs_spare_inputs,
+                              estimate_from_inputs, estimate_output_bytes, lot_inputs,
+                              output_target)
 from filmmap.io.lotfile import read_lot_file
 from filmmap.io.publish import check_outdir, staged_output
 from filmmap.outputs import write_lot
@@ -27,8 +30,34 @@ from filmmap.report.summary_json import write_summary_csv, write_summary_json
 
 # a wafer with fewer usable sites than MIN_SITES_FOR_LOT is left out of lot statistics and advice
 
+PENDING_RECORD = ".filmmap-history-pending"
+"""File in a published output folder whose lot is still to be recorded in the run history.
+
+Order of publish and record (a crash between them must not leave them disagreeing
+unnoticed): the folder is published first, with this marker inside it (JSON: the history
+path and the applied trims), then the lot is recorded from the published folder, then the
+marker is removed.  Recording is idempotent (the same lot and furnace replace their
+record).  A crash between publishing and recording leaves the marker, and the next
+``reduce`` into that folder records the folder's lot before anything else
+(`complete_pending_record`), so the history catches up with what was published; a crash
+before publishing changes neither.  The other order (record, then publish) could leave a
+recorded lot whose results were never published, with nothing in the folder to tell.
+"""
+
+FAULT_ENV = "FILMMAP_FAULT_AT"
+"""Test hook: the process ends at once (``os._exit(86)``, like a kill) at the named point:
+``after-staging`` (every output written, nothing published) or ``after-publish`` (published,
+not yet recorded).  Fault injection at named points is common practice, no source."""
+
+
+def _fault_point(name):
+    if os.environ.get(FAULT_ENV) == name:
+        os._exit(86)
+
+
 def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=False,
-                     figure_workers=None, progress=None, protect=(), follow_output_link=False):
+                     figure_workers=None, progress=None, protect=(), follow_output_link=False,
+                     preflight=None, pending_record=None):
     """Reduce a lot and publish every output in ``outdir`` at once.
 
     Parameters
@@ -53,6 +82,13 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         protected).
     follow_output_link : bool
         ``outdir`` may be a symbolic link: its target is replaced, the link kept.
+    preflight : callable(LotConfig), optional
+        Further checks of the caller (command-line values against the lot file), run
+        with the environment checks before any fit.
+    pending_record : dict, optional
+        ``{"db_path": str or None, "applied_trims_C": dict or None}``: the lot will be
+        recorded in the run history after publishing; written as `PENDING_RECORD` into
+        the published folder until `record_history` has recorded it.
 
     Returns
     -------
@@ -62,7 +98,11 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     ------
     FilmmapInputError
         Before any fit or write: a foreign or linked output folder, or one that equals,
-        contains or lies inside an input (`filmmap.io.guard`).
+        contains or lies inside an input; a parent that cannot take it (a file, read-only,
+        a mount point, a name too long, too little free space) (`filmmap.io.guard`).
+    FilmmapOutputError
+        When writing fails all the same (a disk filling up meanwhile): the previous
+        results in ``outdir`` are intact.
     """
 
     t0 = time.perf_counter()
@@ -71,6 +111,10 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     config = read_lot_file(lotfile)
     # replacing OUTDIR deletes what is in it: never when an input is there (nothing staged yet)
     check_outputs_spare_inputs([outdir], lot_inputs(config) + list(protect))
+    check_output_location(outdir, estimate_from_inputs(config, figures, keep_spectra))
+    if preflight is not None:
+        preflight(config)
+    complete_pending_record(outdir)
     n_files = len(config.measurement.files)
     if workers is None:
         workers = 2 if (os.cpu_count() or 1) >= 2 and n_files >= 16 else 1
@@ -83,30 +127,47 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     finally:
         if bar is not None:
             bar.close()
+    # the real counts are known now: check the space again before anything is staged
+    sites = reduction.sites
+    n_values = 0 if sites.measured_spectra is None else int(np.size(sites.measured_spectra))
+    check_output_location(outdir, estimate_output_bytes(len(np.unique(sites.wafer)),
+                                                        len(sites.wafer), n_values, figures,
+                                                        keep_spectra))
     # every output goes to a staging folder that replaces OUTDIR only once complete
-    with staged_output(outdir) as stage:
-        written = write_lot(reduction, stage, keep_spectra=keep_spectra)
-        advice = write_advice(reduction.config, written, stage)
-        if advice is not None:
-            written.files["advice.json"] = stage / "advice.json"
-        # the boat-end verdicts follow the advice's one model of the boat when there is one
-        view = with_boat_model(lot_view(written.dataset, reduction.config,
-                                        min_sites=MIN_SITES_FOR_LOT), advice)
-        written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
-        written.files["summary.json"] = write_summary_json(view, stage)
-        written.advice = advice
-        written.view = view
-        if figures:
-            from filmmap.figures_out import write_figures
-            from filmmap.report import ReportImages, write_html_report, write_pdf_report
+    try:
+        with staged_output(outdir) as stage:
+            written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+            advice = write_advice(reduction.config, written, stage)
+            if advice is not None:
+                written.files["advice.json"] = stage / "advice.json"
+            # the boat-end verdicts follow the advice's one model of the boat when there is one
+            view = with_boat_model(lot_view(written.dataset, reduction.config,
+                                            min_sites=MIN_SITES_FOR_LOT), advice)
+            written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
+            written.files["summary.json"] = write_summary_json(view, stage)
+            written.advice = advice
+            written.view = view
+            if figures:
+                from filmmap.figures_out import write_figures
+                from filmmap.report import ReportImages, write_html_report, write_pdf_report
 
-            written.files.update(write_figures(written.dataset, reduction.config, stage,
-                                               workers=figure_workers or max(2, workers)))
-            images = ReportImages(view, written.dataset, stage)
-            written.files["report.html"] = write_html_report(view, written.dataset, stage,
-                                                             images=images, advice=advice)
-            written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
-                                                           images=images, advice=advice)
+                written.files.update(write_figures(written.dataset, reduction.config, stage,
+                                                   workers=figure_workers or max(2, workers)))
+                images = ReportImages(view, written.dataset, stage)
+                written.files["report.html"] = write_html_report(view, written.dataset, stage,
+                                                                 images=images, advice=advice)
+                written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
+                                                               images=images, advice=advice)
+            if pending_record is not None:
+                write_text_atomic(stage / PENDING_RECORD, json.dumps(pending_record) + "\n")
+            _fault_point("after-staging")
+    except OSError as exc:
+        # a check before the work cannot foresee a disk filling up meanwhile
+        where = exc.filename or outdir.parent
+        raise FilmmapOutputError(f"could not write the results ({exc.strerror or exc}: {where}); "
+                                 f"the previous results in {outdir} are intact, nothing was "
+                                 "replaced", file=outdir, field="-o") from None
+    _fault_point("after-publish")
     written.outdir = Path(outdir)
     return reduction, written, time.perf_counter() - t0
 
@@ -133,10 +194,10 @@ def write_advice(config, written, folder):
 
 def _reduce_one(task):
     """One lot of a many-lot run (a worker process, a Dask task or inline)."""
-    lotfile, outdir, figures, keep_spectra, protect = task
+    lotfile, outdir, figures, keep_spectra, protect, pending_record = task
     reduction, written, seconds = reduce_to_folder(lotfile, outdir, workers=1, figures=figures,
                                                    keep_spectra=keep_spectra, figure_workers=1,
-                                                   protect=protect)
+                                                   protect=protect, pending_record=pending_record)
     return dict(lotfile=str(lotfile), outdir=str(outdir), lot_id=reduction.config.lot.id,
                 n_wafers=written.n_wafers, n_sites=written.n_sites, n_failed=written.n_failed,
                 mean_nm=written.mean_nm, seconds=seconds)
@@ -160,7 +221,8 @@ def lot_folders(lotfiles, outroot):
 
 
 def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
-                keep_spectra=False, progress=None, protect=(), follow_output_link=False):
+                keep_spectra=False, progress=None, protect=(), follow_output_link=False,
+                preflight=None, pending_record=None):
     """Reduce several lots, each into its own folder OUTROOT/<lot id>, in parallel.
 
     Parameters
@@ -177,9 +239,10 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
         As for `reduce_to_folder`.
     progress : callable, optional
         Called with one result dict as each lot finishes.
-    protect, follow_output_link
+    protect, follow_output_link, preflight, pending_record
         As for `reduce_to_folder`; every lot's folder is checked against every lot's
-        inputs (and ``protect``) before any lot starts.
+        inputs (and ``protect``), and the space for all lots together, before any lot
+        starts.
 
     Returns
     -------
@@ -193,10 +256,17 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
     for f in folders:
         check_outdir(f)
     # one lot's folder must not swallow another lot's inputs either
-    everyone = [item for lf in lotfiles for item in lot_inputs(read_lot_file(lf))]
+    configs = [read_lot_file(lf) for lf in lotfiles]
+    everyone = [item for config in configs for item in lot_inputs(config)]
     protect = list(protect)
     check_outputs_spare_inputs(folders, everyone + protect)
-    tasks = [(lf, out, figures, keep_spectra, protect) for lf, out in zip(lotfiles, folders)]
+    need = sum(estimate_from_inputs(config, figures, keep_spectra) for config in configs)
+    check_output_location(folders[0], need)
+    for config in configs:
+        if preflight is not None:
+            preflight(config)
+    tasks = [(lf, out, figures, keep_spectra, protect, pending_record)
+             for lf, out in zip(lotfiles, folders)]
     results = [None] * len(tasks)
     if scheduler is not None:
         try:
@@ -216,7 +286,9 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
     if workers > 1 and len(tasks) > 1:
         from concurrent.futures import ProcessPoolExecutor
 
-        with ProcessPoolExecutor(max_workers=workers) as pool:
+        from filmmap.workers import end_with_parent
+
+        with ProcessPoolExecutor(max_workers=workers, initializer=end_with_parent) as pool:
             for i, res in enumerate(pool.map(_reduce_one, tasks)):
                 results[i] = res
                 if progress:
@@ -230,8 +302,70 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
 
 
 def record_history(outdir, config=None, db_path=None, applied_trims_C=None):
-    """Record a reduced lot (its published OUTDIR) in the run history; True if it replaced one."""
+    """Record a reduced lot (its published OUTDIR) in the run history; True if it replaced one.
+
+    Recording is idempotent: the same lot and furnace replace their earlier record.  Once
+    the record is committed, the folder's `PENDING_RECORD` marker is removed.
+
+    Raises
+    ------
+    FilmmapOutputError
+        The history could not be written (a full disk, say); the published results stay,
+        with the marker that makes the next ``reduce`` into OUTDIR record them.
+    """
+    import sqlite3
+
     from filmmap.history import record_from_outputs, record_lot
 
     record = record_from_outputs(outdir, config, applied_trims_C=applied_trims_C)
-    return record_lot(db_path, record), record
+    try:
+        replaced = record_lot(db_path, record)
+    except sqlite3.Error as exc:
+        from filmmap.history.store import default_history_path
+
+        db = db_path or default_history_path()
+        raise FilmmapOutputError(
+            f"could not record lot {record.lot_id} in the history {db} ({exc}; is its disk "
+            f"full?); the results are published in {outdir} and the history is as before; the "
+            f"next reduce into {outdir} records them first", file=db, field="--history") from None
+    with contextlib.suppress(FileNotFoundError):
+        (Path(outdir) / PENDING_RECORD).unlink()
+    return replaced, record
+
+
+def discard_pending_record(outdir):
+    """Remove OUTDIR's `PENDING_RECORD` marker: its lot is deliberately not recorded."""
+    with contextlib.suppress(FileNotFoundError):
+        (Path(outdir) / PENDING_RECORD).unlink()
+
+
+def complete_pending_record(outdir):
+    """Record the lot of OUTDIR if an earlier run published it but stopped before recording.
+
+    Parameters
+    ----------
+    outdir : path-like
+        An output folder; nothing happens unless it holds `PENDING_RECORD`.
+
+    Raises
+    ------
+    FilmmapInputError
+        The marker is unreadable or the record fails; naming the marker, which the user
+        may delete to give up that record.
+    """
+    marker = Path(outdir) / PENDING_RECORD
+    if not marker.is_file():
+        return None
+    try:
+        plan = json.loads(marker.read_text(encoding="utf-8"))
+        db_path, trims = plan["db_path"], plan.get("applied_trims_C")
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise FilmmapInputError(f"unreadable record marker ({exc}); delete it to give up "
+                                "recording the earlier results", file=marker) from None
+    try:
+        return record_history(outdir, None, db_path, trims)
+    except FilmmapInputError as exc:
+        raise FilmmapInputError(f"the results in {outdir} were published by an earlier run that "
+                                f"stopped before recording them, and recording them now failed: "
+                                f"{exc}. Fix that, or delete {marker} to give up that record",
+                                file=marker) from None

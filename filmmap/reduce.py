@@ -26,6 +26,7 @@ from filmmap.materials import ScaledIndex
 from filmmap.io.lotfile import read_lot_file
 from filmmap.io.spectra_csv import check_tables, read_spectra_csv, read_spectrum_file
 from filmmap.optics import Layer, Stack
+from filmmap.workers import end_with_parent
 
 BATCH_SPECTRA = 2500
 """Spectra per fitting batch: large enough for the batched fitter's speed, small
@@ -248,13 +249,29 @@ def _dark_and_reference(config):
         return None, None, []
     ref = read_spectrum_file(m.reference_file)
     if m.dark_file is None:
+        _check_reference_above_dark(ref, np.zeros_like(ref.counts), None)
         return np.zeros_like(ref.counts), ref, [ref]
     dark = read_spectrum_file(m.dark_file)
     if dark.wavelength_nm.size != ref.wavelength_nm.size or not np.allclose(
             dark.wavelength_nm, ref.wavelength_nm, rtol=1e-9, atol=0):
         raise FilmmapInputError(f"wavelengths differ from the dark spectrum {dark.path}",
                                 file=ref.path)
+    _check_reference_above_dark(ref, dark.counts, dark.path)
     return dark.counts, ref, [dark, ref]
+
+
+def _check_reference_above_dark(ref, dark_counts, dark_path):
+    """R = (I - dark)/(ref - dark) x R_Si needs ref > dark at every wavelength (else no data)."""
+    span = ref.counts - dark_counts
+    if np.all(span > 0):
+        return
+    k = int(np.argmax(~(span > 0)))
+    what = f"the dark {dark_path}" if dark_path is not None else "zero (no dark_file)"
+    raise FilmmapInputError(
+        f"reference counts {ref.counts[k]:g} at {ref.wavelength_nm[k]:g} nm are not above "
+        f"{what} ({dark_counts[k]:g}) at {int(np.sum(~(span > 0)))} of {span.size} wavelengths; "
+        "expected a bare-Si reference brighter than the dark at every wavelength",
+        file=ref.path, line=ref.line, field="reference_file")
 
 
 def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=None):
@@ -293,7 +310,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
              for b in batches]
     results, metas = [], []
     if workers > 1 and len(tasks) > 1:
-        with ProcessPoolExecutor(max_workers=workers) as pool:
+        with ProcessPoolExecutor(max_workers=workers, initializer=end_with_parent) as pool:
             for out, meta in pool.map(_fit_batch, tasks):
                 results.append(out)
                 metas.extend(meta)

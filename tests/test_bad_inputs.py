@@ -533,7 +533,7 @@ CASES = [
     case("recipe-negative-minutes",
          append_to("lot.toml", RECIPE.replace("minutes = 160", "minutes = -3")), "lot.toml",
          at_lot_line("minutes = -3", "recipe.step[2].minutes"),
-         "minutes = -3 min is out of range", "expected value > 0 min"),
+         "minutes = -3 min is out of range", "expected 0 < value <= 10080 min"),
     case("recipe-ramp-without-end",
          append_to("lot.toml", RECIPE.replace("to_C = 1000\n", "")), "lot.toml",
          at_field("recipe.step[1].to_C"), "step 'ramp-up' is a ramp with from_C but no to_C",

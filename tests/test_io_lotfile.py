@@ -379,7 +379,7 @@ def test_lot_id_must_be_plain(folder):
      "value >= 0"),
     ("tolerance_pct = 2.0", "tolerance_pct = 0", "target.tolerance_pct", "0 < value < 100"),
     ("thickness_nm = 1000.0\ntolerance", "thickness_nm = -5\ntolerance", "target.thickness_nm",
-     "value > 0"),
+     "0 < value <= 50000"),
     ("search_nm = [5, 5000]", "search_nm = [5000, 5]", "stack.layer[1].search_nm",
      "0 < lo < hi"),
     ("search_nm = [5, 5000]", "search_nm = [0, 5000]", "stack.layer[1].search_nm",
@@ -387,10 +387,15 @@ def test_lot_id_must_be_plain(folder):
     ("search_nm = [5, 5000]", "search_nm = [5]", "stack.layer[1].search_nm", "[lo, hi]"),
     ("search_nm = [5, 5000]", "search_nm = [5, 900]", "stack.layer[1].thickness_nm",
      "outside search_nm [5, 900]"),
-    ("max_offset_C = 5.0", "max_offset_C = 0", "furnace.max_offset_C", "value > 0"),
+    ("max_offset_C = 5.0", "max_offset_C = 0", "furnace.max_offset_C", "0 < value <= 100"),
+    ("max_offset_C = 5.0", "max_offset_C = 1000", "furnace.max_offset_C", "0 < value <= 100"),
     ("max_time_change_pct = 15.0", "max_time_change_pct = 100", "furnace.max_time_change_pct",
      "0 < value < 100"),
-    ("minutes = 150", "minutes = 0", "recipe.step[1].minutes", "value > 0"),
+    ("minutes = 150", "minutes = 0", "recipe.step[1].minutes", "0 < value <= 10080"),
+    # physical bounds (filmmap.bounds, docs/formats.md "Bounds")
+    ("minutes = 150", "minutes = 1e9", "recipe.step[1].minutes", "0 < value <= 10080"),
+    ("slots = 50", "slots = 100000000", "boat.slots", "at most 1200"),
+    ('id = "PL-0001"', 'id = "' + "L" * 65 + '"', "lot.id", "at most 64"),
     ("at_C = 1000", "at_C = 2000", "recipe.step[2].at_C", "0 < value <= 1400"),
 ])
 def test_out_of_range_values(folder, old, new, field, fragment):

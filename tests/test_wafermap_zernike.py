@@ -219,3 +219,29 @@ def test_radial_profile_of_bowl():
     np.testing.assert_allclose(p.mean_nm[0], 100 + c * np.array([0, 1 / 9, 4 / 9, 1]))
     assert p.count.tolist() == [[1, 8, 16, 24], [1, 8, 16, 0]]
     assert np.isnan(p.mean_nm[1, 3])
+
+
+def _choose_order_stepping_down(rho, theta, cond_max, min_dof):
+    """The earlier rule, one SVD per order from the dof limit down (the reference)."""
+    order = -1
+    while n_terms(order + 1) <= rho.size - min_dof:
+        order += 1
+    while order >= 0:
+        sv = np.linalg.svd(zernike_basis(n_terms(order), rho, theta), compute_uv=False)
+        if sv[-1] > 0 and sv[0] / sv[-1] <= cond_max:
+            return order
+        order -= 1
+    return -1
+
+
+@pytest.mark.parametrize("n_sites", [1, 3, 5, 9, 17, 40, 121, 300])
+def test_choose_order_stepping_up_matches_stepping_down(n_sites):
+    # the condition number never falls as columns are added (singular-value interlacing),
+    # so stopping at the first failing order gives the same order as the full search
+    rng = np.random.default_rng(n_sites)
+    for _ in range(3):
+        rho = np.sqrt(rng.uniform(0, 1, n_sites))
+        theta = rng.uniform(0, 2 * np.pi, n_sites)
+        for cond_max in (3.0, COND_MAX, 100.0):
+            assert choose_order(rho, theta, cond_max=cond_max, min_dof=MIN_DOF) == \
+                _choose_order_stepping_down(rho, theta, cond_max, MIN_DOF)

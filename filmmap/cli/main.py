@@ -93,13 +93,15 @@ def _progress_bar(total, desc):
 
 
 def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_spectra=False,
-               figure_workers=None, protect=(), follow_output_link=False):
+               figure_workers=None, protect=(), follow_output_link=False, preflight=None,
+               pending_record=None):
     """`filmmap.pipeline.reduce_to_folder` with a progress bar unless quiet."""
     from filmmap.pipeline import reduce_to_folder
 
     return reduce_to_folder(lotfile, outdir, workers, figures, keep_spectra, figure_workers,
                             progress=None if quiet else (lambda n: _progress_bar(n, "fitting")),
-                            protect=protect, follow_output_link=follow_output_link)
+                            protect=protect, follow_output_link=follow_output_link,
+                            preflight=preflight, pending_record=pending_record)
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -158,27 +160,51 @@ def _fail(exc, debug):
 
 
 def cmd_reduce(args):
-    from filmmap.io.guard import history_inputs
+    from filmmap.bounds import MAX_WORKERS, check_in_range, check_zone_trims
+    from filmmap.history.store import default_history_path
+    from filmmap.io.guard import check_history_writable, history_inputs
 
+    # every command-line value and the history are checked before any fit
     trims = _parse_assignments(args.applied_trims, "--applied-trims", "ZONE") or None
+    if args.workers is not None and args.workers > MAX_WORKERS:   # >= 1: reduce_to_folder
+        check_in_range(args.workers, "--workers", 1, MAX_WORKERS, "--workers")
     # the history file is protected even with --no-history: replacing OUTDIR would delete it
     protect = history_inputs(args.history)
+    pending = None
+    if not args.no_history:
+        db = Path(args.history) if args.history else default_history_path()
+        pending = {"db_path": str(db.absolute()), "applied_trims_C": trims}
+
+    def preflight(config):
+        # after the output-folder guards (nothing is opened inside OUTDIR first), before the fit
+        check_zone_trims(trims, config, "--applied-trims")
+        if not args.no_history:
+            check_history_writable(args.history)
+
     if len(args.lotfile) > 1 or args.scheduler:
-        return _reduce_many(args, trims, protect)
+        return _reduce_many(args, trims, protect, preflight, pending)
     reduction, written, seconds = run_reduce(args.lotfile[0], args.output, args.workers,
                                              not args.no_figures, args.quiet, args.keep_spectra,
                                              protect=protect,
-                                             follow_output_link=args.follow_output_link)
+                                             follow_output_link=args.follow_output_link,
+                                             preflight=preflight, pending_record=pending)
     if not args.quiet:
         print_summary(reduction, written, seconds)
     if not args.no_history:
-        _record(args.output, reduction.config, args.history, trims, args.quiet)
+        _record(written.outdir, reduction.config, args.history, trims, args.quiet,
+                n_ok=int(written.n_sites) - int(written.n_failed))
     return 0
 
 
-def _record(outdir, config, db_path, trims, quiet):
-    from filmmap.pipeline import record_history
+def _record(outdir, config, db_path, trims, quiet, n_ok=None):
+    from filmmap.pipeline import discard_pending_record, record_history
 
+    if n_ok is not None and n_ok <= 0:
+        # a lot without one thickness has no statistics: recording it would poison the trends
+        discard_pending_record(outdir)
+        sys.stderr.write(f"filmmap: lot {config.lot.id} is not recorded in the history: every "
+                         "fit failed (see fit_note in lot.nc)\n")
+        return
     replaced, record = record_history(outdir, config, db_path, trims)
     if quiet:
         return
@@ -211,7 +237,7 @@ def _print_run_to_run(config, db_path):
           + (f"; trims in force {trims}" if trims else "") + " (advisory only)")
 
 
-def _reduce_many(args, trims, protect):
+def _reduce_many(args, trims, protect, preflight, pending):
     from filmmap.io.lotfile import read_lot_file
     from filmmap.pipeline import reduce_many
 
@@ -223,10 +249,12 @@ def _reduce_many(args, trims, protect):
     results = reduce_many(args.lotfile, args.output, workers=args.workers,
                           scheduler=args.scheduler, figures=not args.no_figures,
                           keep_spectra=args.keep_spectra, progress=report, protect=protect,
-                          follow_output_link=args.follow_output_link)
+                          follow_output_link=args.follow_output_link, preflight=preflight,
+                          pending_record=pending)
     if not args.no_history:
         for lf, res in zip(args.lotfile, results):
-            _record(res["outdir"], read_lot_file(lf), args.history, trims, args.quiet)
+            _record(res["outdir"], read_lot_file(lf), args.history, trims, args.quiet,
+                    n_ok=res["n_sites"] - res["n_failed"])
     if not args.quiet:
         print(f"{len(results)} lots reduced into {args.output}")
     return 0
@@ -235,11 +263,20 @@ def _reduce_many(args, trims, protect):
 def cmd_history(args):
     from filmmap.history import (control_charts, history_figures, lots, next_run_from_history,
                                  save_chart, write_history_html)
-    from filmmap.io.guard import check_outputs_spare_inputs, history_inputs, output_target
+    from filmmap.io.guard import (check_name_lengths, check_outputs_spare_inputs,
+                                  history_inputs, output_target)
     from filmmap.io.publish import check_outdir, staged_output
 
+    from filmmap.bounds import MAX_BASELINE_LOTS, check_in_range
+
+    # every value before any work (the control-chart code would clip a bad baseline silently)
+    check_in_range(args.baseline, "--baseline", 2, MAX_BASELINE_LOTS, "--baseline (lots)")
+    check_in_range(args.ewma_lambda, "--ewma-lambda", 0.0, 1.0, "--ewma-lambda", lo_open=True)
+    check_in_range(args.weight, "--weight", 0.0, 1.0, "--weight", lo_open=True)
     outdir = output_target(args.output, args.follow_output_link)
     check_outdir(outdir)
+    if args.history:
+        check_name_lengths(args.history, "--history")
     inputs = history_inputs(args.history)
     if args.next_run:
         inputs.append(("lot file", Path(args.next_run)))
@@ -258,6 +295,8 @@ def cmd_history(args):
             return "-" if v is None else f"{v:.{d}f}"
         print(f"{str(r.run_date or '-'):<11} {r.lot_id:<18} {str(r.furnace or '-'):<24} "
               f"{f(r.lot_mean_nm):>9} {f(r.wtw_pct, 3):>7} {f(r.wiw_mean_pct, 3):>7}")
+    if args.baseline > len(rows):
+        print(f"  baseline: all {len(rows)} lots (fewer recorded than --baseline {args.baseline})")
     charts = control_charts(rows, baseline=args.baseline, lam=args.ewma_lambda)
     figs = history_figures(rows, charts)
     with staged_output(outdir) as stage:
@@ -299,42 +338,92 @@ def cmd_demo(args):
     return 0
 
 
-def _parse_assignments(items, option, kind):
+def _parse_assignments(items, option, kind, finite=True):
+    """KEY=NUMBER items of a repeatable option: numbers (finite unless told), each key once."""
+    from filmmap.bounds import finite_number
+
     out = {}
     for item in items:
         key, sep, value = item.partition("=")
-        try:
-            number = float(value)
-        except ValueError:
-            number = None
-        if not sep or number is None:
+        key = key.strip()
+        if not sep or not key:
             raise FilmmapInputError(f"expected {kind}=NUMBER, got {item!r}", field=option)
-        out[key.strip()] = number
+        if finite:
+            number = finite_number(value, option, f"{kind}=NUMBER", shown=item)
+        else:
+            try:
+                number = float(value)
+            except ValueError:
+                raise FilmmapInputError(f"expected {kind}=NUMBER, got {item!r}",
+                                        field=option) from None
+        if key in out:
+            raise FilmmapInputError(f"{key} is given twice ({out[key]:g} and {number:g}); "
+                                    "expected each once", field=option)
+        out[key] = number
+    return out
+
+
+def _read_advice_offsets(path, config, limit_K):
+    """``effective_offset_C_by_slot`` of an advice.json: slot (in the boat) -> finite K or null."""
+    import json
+
+    field = "effective_offset_C_by_slot"
+    try:
+        with open(path, encoding="utf-8") as fh:
+            advice = json.load(fh)
+    except (OSError, ValueError) as exc:
+        raise FilmmapInputError(f"cannot read effective_offset_C_by_slot: {exc}; expected "
+                                "an advice.json written by filmmap reduce", file=path) from None
+    if not isinstance(advice, dict) or not isinstance(advice.get(field), dict):
+        raise FilmmapInputError(f"expected a JSON object with {field!r}, an object of slot -> "
+                                "offset in K (an advice.json written by filmmap reduce)",
+                                file=path, field=field)
+    n_slots = config.boat.slots if config.boat is not None else None
+    out = {}
+    for slot, value in advice[field].items():
+        if not str(slot).isdigit() or int(slot) < 1 or (n_slots and int(slot) > n_slots):
+            raise FilmmapInputError(f"slot {slot!r} is not a slot of the boat in "
+                                    f"{config.path}" + (f" (1..{n_slots})" if n_slots else ""),
+                                    file=path, field=field)
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
+                                  or not abs(value) <= limit_K):
+            raise FilmmapInputError(f"slot {slot}: offset {value!r}; expected a number of K "
+                                    f"within +-{limit_K:g} or null", file=path, field=field)
+        out[str(slot)] = value
     return out
 
 
 def cmd_predict(args):
-    import json
-
+    from filmmap.bounds import (DEFAULT_MAX_OFFSET_C, MAX_STEP_MINUTES, MAX_TEMPERATURE_OFFSET_K,
+                                TEMPERATURE_RANGE_C, check_in_range, check_zone_trims)
     from filmmap.growth.predict import predict_by_zone
     from filmmap.io.lotfile import read_lot_file
 
     config = read_lot_file(args.lotfile)
     overrides = {}
-    for key, value in _parse_assignments(args.set, "--set", "STEP.FIELD").items():
+    for key, value in _parse_assignments(args.set, "--set", "STEP.FIELD", finite=False).items():
         step, dot, fld = key.rpartition(".")
         if not dot:
             raise FilmmapInputError(f"expected STEP.FIELD=NUMBER, got {key!r}", field="--set")
+        # upper physical bounds here, so that a what-if never runs the model on nonsense
+        # (non-positive and non-finite values are refused by the recipe check, by field)
+        if fld == "minutes" and value > MAX_STEP_MINUTES:
+            check_in_range(value, "--set", 0.0, MAX_STEP_MINUTES, f"step {step!r}: minutes",
+                           lo_open=True)
+        elif fld in ("at_C", "from_C", "to_C") and value > TEMPERATURE_RANGE_C[1]:
+            check_in_range(value, "--set", *TEMPERATURE_RANGE_C, f"step {step!r}: {fld}",
+                           lo_open=True)
         overrides.setdefault(step, {})[fld] = value
     trims = _parse_assignments(args.trim, "--trim", "ZONE")
+    if config.furnace is not None:
+        check_zone_trims(trims, config, "--trim")
+    else:   # the whole boat is one zone; the lot file's default limit applies
+        for zone, value in trims.items():
+            check_in_range(value, "--trim", -DEFAULT_MAX_OFFSET_C, DEFAULT_MAX_OFFSET_C,
+                           f"trim {zone}")
     slot_offsets = None
     if args.advice:
-        try:
-            with open(args.advice, encoding="utf-8") as fh:
-                slot_offsets = json.load(fh)["effective_offset_C_by_slot"]
-        except (OSError, ValueError, KeyError) as exc:
-            raise FilmmapInputError(f"cannot read effective_offset_C_by_slot: {exc}",
-                                    file=args.advice) from None
+        slot_offsets = _read_advice_offsets(args.advice, config, MAX_TEMPERATURE_OFFSET_K)
     try:
         table = predict_by_zone(config, overrides or None, trims or None, slot_offsets_C=slot_offsets)
     except FilmmapInputError as exc:

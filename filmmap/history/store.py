@@ -66,6 +66,7 @@ import hashlib
 import json
 import math
 import os
+import shutil
 import sqlite3
 import stat
 import tomllib
@@ -613,16 +614,25 @@ def open_history(db_path=None, *, busy_timeout_s=DEFAULT_BUSY_TIMEOUT_S, create=
     .. [1] SQLite documentation, "Write-Ahead Logging" and "PRAGMA busy_timeout".
     """
     path = _resolve(db_path)
-    if not path.exists():
+    created = not path.exists()
+    if created:
         if not create:
             raise FileNotFoundError(f"no history database at {path}")
         path.parent.mkdir(parents=True, exist_ok=True)
     con = sqlite3.connect(str(path), timeout=float(busy_timeout_s), isolation_level=None)
+    ready = False
     try:
         con.execute(f"PRAGMA busy_timeout = {int(1000 * float(busy_timeout_s))}")
         try:
             mode = con.execute("PRAGMA journal_mode = WAL").fetchone()[0]
         except sqlite3.DatabaseError as exc:
+            # a full disk shows as "disk I/O error" here, which reads like corruption
+            free = shutil.disk_usage(path.parent).free
+            if isinstance(exc, sqlite3.OperationalError) and free < 2**20:
+                raise FilmmapInputError(f"cannot write the history database: the disk holding "
+                                        f"it is full ({free} bytes free in {path.parent}; "
+                                        f"SQLite says: {exc}); the database is unchanged",
+                                        file=path) from None
             raise FilmmapInputError(f"not a usable SQLite database: {exc}", file=path) from None
         if str(mode).lower() != "wal":
             raise FilmmapInputError(f"could not switch the history to WAL mode (got {mode!r})",
@@ -630,9 +640,16 @@ def open_history(db_path=None, *, busy_timeout_s=DEFAULT_BUSY_TIMEOUT_S, create=
         con.execute("PRAGMA synchronous = FULL")
         con.execute("PRAGMA foreign_keys = ON")
         _migrate(con, path)
+        ready = True
         yield con
     finally:
         con.close()
+        # a database this call created but could not set up (a full disk) is not left behind
+        # as an empty file, which a later reader would refuse as "not a filmmap history"
+        if created and not ready:
+            with contextlib.suppress(OSError):
+                if path.stat().st_size == 0:
+                    path.unlink()
 
 
 SQLITE_HEADER = b"SQLite format 3\x00"

@@ -104,6 +104,8 @@ from pathlib import Path, PurePosixPath, PureWindowsPath
 
 import numpy as np
 
+from filmmap.bounds import (MAX_BOAT_SLOTS, MAX_ID_CHARS, MAX_STEP_MINUTES,
+                            MAX_TEMPERATURE_OFFSET_K)
 from filmmap.errors import FilmmapInputError
 from filmmap.materials import Cauchy, Material, Tabulated, available, get_material
 
@@ -791,6 +793,14 @@ def _resolve_globs(rd, patterns, folder, allow_outside, exclude):
 
 # --------------------------------------------------------------------------- sections
 
+def _bounded_name(rd, value, field):
+    """Ids and names end up in file names, tables and the history: at most MAX_ID_CHARS."""
+    if value is not None and len(value) > MAX_ID_CHARS:
+        rd.fail(f"{value[:24]!r}... is {len(value)} characters; expected at most {MAX_ID_CHARS}",
+                field)
+    return value
+
+
 def _read_lot(rd, doc):
     t = rd.table(doc, "lot", "", required=True, what="[lot] table (with id = \"...\")")
     rd.keys(t, "lot", "lot")
@@ -798,7 +808,8 @@ def _read_lot(rd, doc):
     if not lot_id.isprintable() or "/" in lot_id or "\\" in lot_id:
         rd.fail(f"id {lot_id!r} contains '/', '\\' or non-printable characters; expected a plain "
                 "lot id (it is used in output file names)", "lot.id")
-    furnace = rd.string(t, "furnace", "lot")
+    _bounded_name(rd, lot_id, "lot.id")
+    furnace = _bounded_name(rd, rd.string(t, "furnace", "lot"), "lot.furnace")
     run_date = t.get("run_date")
     if run_date is not None:
         if isinstance(run_date, str):
@@ -891,9 +902,14 @@ def _read_layer(rd, t, where, folder, allow_outside, lot_path):
     else:
         model = _registry_material(rd, name, f"{where}.material", user_hint=True)
         source = "registry"
-    thickness = rd.number(t, "thickness_nm", where, lo=0.0, unit=" nm")
+    thickness = rd.number(t, "thickness_nm", where, lo=0.0, hi=MAX_SEARCH_NM, unit=" nm")
     search = _pair(rd, t, "search_nm", where)
     fit = rd.value(t, "fit", where, "boolean", default=True)
+    if fit and thickness == 0 and search is None:
+        # the search range is [0.5, 2] x the nominal: a nominal of 0 leaves nothing to search
+        rd.fail("thickness_nm = 0 on a fitted layer gives an empty search range ([0.5, 2] x the "
+                "nominal); expected a nominal > 0 or search_nm = [lo, hi]",
+                f"{where}.thickness_nm")
     if not fit and thickness is None:
         rd.fail("a layer with fit = false needs thickness_nm (its fixed thickness in nm)",
                 f"{where}.thickness_nm")
@@ -1009,7 +1025,8 @@ def _read_target(rd, doc, stack):
         return None
     w = "target"
     rd.keys(t, w, "target")
-    thickness = rd.number(t, "thickness_nm", w, required=True, lo=0.0, lo_open=True, unit=" nm")
+    thickness = rd.number(t, "thickness_nm", w, required=True, lo=0.0, hi=MAX_SEARCH_NM,
+                          lo_open=True, unit=" nm")
     tol = rd.number(t, "tolerance_pct", w, required=True, lo=0.0, hi=100.0, lo_open=True,
                     hi_open=True, unit=" %")
     adjust = rd.string(t, "adjust_step", w)
@@ -1028,8 +1045,9 @@ def _read_boat(rd, doc):
     w = "boat"
     rd.keys(t, w, "boat")
     slots = rd.value(t, "slots", w, "integer", required=True)
-    if slots < 1:
-        rd.fail(f"slots = {slots}; expected a positive number of boat slots", f"{w}.slots")
+    if not 1 <= slots <= MAX_BOAT_SLOTS:
+        rd.fail(f"slots = {slots}; expected a positive number of boat slots, at most "
+                f"{MAX_BOAT_SLOTS}", f"{w}.slots")
     dummy = rd.int_list(t, "dummy_slots", w, 1, slots)
     monitor = rd.int_list(t, "monitor_slots", w, 1, slots)
     both = sorted(set(dummy) & set(monitor))
@@ -1057,7 +1075,7 @@ def _read_furnace(rd, doc, boat):
             rd.fail(f"expected a zone table {{ name = \"...\", slots = [first, last] }}, found "
                     f"{_found(z)}", zw)
         rd.keys(z, zw, "furnace.zones")
-        name = rd.string(z, "name", zw, required=True)
+        name = _bounded_name(rd, rd.string(z, "name", zw, required=True), f"{zw}.name")
         if any(name == other.name for other in zones):
             rd.fail(f"zone name {name!r} is used twice", f"{zw}.name")
         if "slots" not in z:
@@ -1093,7 +1111,8 @@ def _read_furnace(rd, doc, boat):
         rd.fail(f"the last zone {zones[-1].name!r} ends at slot {zones[-1].last_slot} but the boat "
                 f"has {boat.slots} slots; expected the zones to cover the whole boat",
                 f"{w}.zones[{len(zones)}].slots")
-    offset = rd.number(t, "max_offset_C", w, default=5.0, lo=0.0, lo_open=True, unit=" C")
+    offset = rd.number(t, "max_offset_C", w, default=5.0, lo=0.0, hi=MAX_TEMPERATURE_OFFSET_K,
+                       lo_open=True, unit=" C")
     change = rd.number(t, "max_time_change_pct", w, default=15.0, lo=0.0, hi=100.0,
                        lo_open=True, hi_open=True, unit=" %")
     return FurnaceConfig(zones=tuple(zones), max_offset_C=offset, max_time_change_pct=change)
@@ -1117,11 +1136,12 @@ def _read_recipe(rd, doc):
     for i, s in enumerate(raw, start=1):
         w = f"recipe.step[{i}]"
         rd.keys(s, w, "recipe.step")
-        name = rd.string(s, "name", w, required=True)
+        name = _bounded_name(rd, rd.string(s, "name", w, required=True), f"{w}.name")
         if any(name == other.name for other in steps):
             rd.fail(f"step name {name!r} is used twice; expected unique step names", f"{w}.name")
         ambient = rd.string(s, "ambient", w, required=True, choices=AMBIENTS)
-        minutes = rd.number(s, "minutes", w, required=True, lo=0.0, lo_open=True, unit=" min")
+        minutes = rd.number(s, "minutes", w, required=True, lo=0.0, hi=MAX_STEP_MINUTES,
+                            lo_open=True, unit=" min")
         temps = {k: rd.number(s, k, w, lo=lo_t, hi=hi_t, lo_open=True, unit=" C")
                  for k in ("at_C", "from_C", "to_C")}
         at, frm, to = temps["at_C"], temps["from_C"], temps["to_C"]

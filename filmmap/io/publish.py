@@ -65,6 +65,17 @@ def check_outdir(outdir):
             field="-o")
 
 
+PID_MAX_DIGITS = 7
+"""Digits of the largest Linux process id (pid_max <= 2**22 = 4194304, proc(5))."""
+
+
+def staging_name(name, pid=None, tag=None):
+    """Name of the staging folder of output folder NAME (its old-results folder is shorter)."""
+    pid = "9" * PID_MAX_DIGITS if pid is None else pid
+    tag = "0" * 8 if tag is None else tag
+    return f".{name}.filmmap-{pid}-{tag}"
+
+
 def _sweep_leftovers(outdir):
     """Remove staging/old folders a killed earlier run left beside OUTDIR."""
     for p in outdir.parent.glob(f".{outdir.name}.filmmap-*"):
@@ -105,7 +116,7 @@ def staged_output(outdir):
     check_outdir(outdir)
     outdir.parent.mkdir(parents=True, exist_ok=True)
     _sweep_leftovers(outdir)
-    stage = outdir.parent / f".{outdir.name}.filmmap-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+    stage = outdir.parent / staging_name(outdir.name, os.getpid(), uuid.uuid4().hex[:8])
     stage.mkdir()
     (stage / MARKER).write_text("written by filmmap; this folder may be replaced by filmmap\n")
     try:

@@ -11,7 +11,7 @@ import numpy as np
 import xarray as xr
 
 from filmmap import __version__
-from filmmap.io.atomic import atomic_path, write_text_atomic
+from filmmap.io.atomic import write_bytes_atomic, write_text_atomic
 
 FIT_QUALITY_DEFINITION = ("reduced chi-square: sum(w r^2) / (points - parameters), w = 1/sigma^2 "
                           "from the noise model; about 1 when the model explains the data to the noise")
@@ -191,10 +191,32 @@ def spectra_dataset(reduction, lot_ds):
 
 
 def write_netcdf_atomic(ds, path):
-    """Write a dataset as NetCDF4 (through h5netcdf) to a temporary file, then rename it."""
-    with atomic_path(path) as tmp:
-        ds.to_netcdf(tmp, engine="h5netcdf")
+    """Write a dataset as NetCDF4 (through h5netcdf), atomically.
+
+    The file is built in memory and written by Python: when a write fails (a full disk, a
+    file-size limit), the HDF5 library left holding a half-written file was seen to crash
+    the whole process at exit, after filmmap had reported the error; Python's own write
+    raises a plain OSError that names the file and leaves nothing behind.
+    """
+    with _local_scheduler():
+        data = bytes(ds.to_netcdf(engine="h5netcdf"))
+    write_bytes_atomic(path, data)
     return path
+
+
+def _local_scheduler():
+    """A context in which xarray takes a local write lock, even inside a Dask worker.
+
+    The arrays are in memory already; on a Dask distributed worker xarray would ask the
+    cluster for a lock named after the in-memory target, which the cluster cannot make.
+    """
+    import contextlib
+
+    try:
+        import dask
+    except ImportError:
+        return contextlib.nullcontext()
+    return dask.config.set(scheduler="synchronous")
 
 
 def write_csv_atomic(path, header, rows):

@@ -57,6 +57,7 @@ from pathlib import Path
 
 import numpy as np
 
+from filmmap.bounds import MAX_BOAT_SLOTS, MAX_ID_CHARS, MAX_SITES_PER_WAFER, MAX_WAVELENGTHS
 from filmmap.errors import FilmmapInputError
 
 __all__ = ["SpectraTable", "Spectrum", "read_spectra_csv", "read_spectrum_file", "check_tables",
@@ -547,7 +548,22 @@ def _check_range(values, lo, hi, col_names, numbers, path, message):
         raise FilmmapInputError(text, file=path, line=numbers[r], field=col_names[c])
 
 
+def _check_wavelength_count(spectral, path, lineno):
+    """At most MAX_WAVELENGTHS columns per quantity: memory grows with sites x wavelengths."""
+    for prefix, (wl, _) in spectral.items():
+        if wl.size > MAX_WAVELENGTHS:
+            raise FilmmapInputError(f"{wl.size} {prefix}@ columns; expected at most "
+                                    f"{MAX_WAVELENGTHS} wavelengths per spectrum", file=path,
+                                    line=lineno, field=f"{prefix}@")
+
+
 def _check_wafer_ids(wafer, numbers, path):
+    # the length first: an array of ids takes (rows x the longest id) characters
+    for r, w in enumerate(wafer):
+        if len(w) > MAX_ID_CHARS:
+            raise FilmmapInputError(f"wafer id of {len(w)} characters ({w[:24]!r}...); expected "
+                                    f"at most {MAX_ID_CHARS}", file=path, line=numbers[r],
+                                    field="wafer")
     for r, w in enumerate(wafer):
         if not w:
             raise FilmmapInputError("empty wafer id; expected a text id", file=path,
@@ -653,6 +669,7 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
     if not rows:
         raise FilmmapInputError("no data rows after the header; expected one row per site",
                                 file=path, line=hline)
+    _check_wavelength_count(spectral, path, hline)
     prefixes = _PREFIXES[technique]
     num_cols = [fixed["slot"], fixed["site"], fixed["x_mm"], fixed["y_mm"]]
     for p in prefixes:
@@ -662,6 +679,10 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
     _check_finite(block, numbers, num_cols, names, path)
     _check_wafer_ids(wafer, numbers, path)
     slot = _check_integers(block[:, 0], "slot", numbers, path, positive=True)
+    if slot.max() > MAX_BOAT_SLOTS:
+        r = int(np.argmax(slot > MAX_BOAT_SLOTS))
+        raise FilmmapInputError(f"slot {slot[r]}; expected a boat slot 1 to {MAX_BOAT_SLOTS}",
+                                file=path, line=numbers[r], field="slot")
     site = _check_integers(block[:, 1], "site", numbers, path, positive=False)
     wavelength = spectral[prefixes[0]][0]
     n_wl = wavelength.size
@@ -700,6 +721,12 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
                          f"[{_DELTA_RANGE[0]:g}, {_DELTA_RANGE[1]:g}] deg")
         data[p] = np.ascontiguousarray(values)
     wafer = np.array(wafer, dtype=str)
+    ids, first, counts = np.unique(wafer, return_index=True, return_counts=True)
+    if counts.max() > MAX_SITES_PER_WAFER:
+        k = int(np.argmax(counts))
+        raise FilmmapInputError(f"wafer {ids[k]!r} has {counts[k]} sites in this file; expected "
+                                f"at most {MAX_SITES_PER_WAFER} sites per wafer", file=path,
+                                line=numbers[first[k]], field="site")
     line = np.asarray(numbers, dtype=np.int64)
     _check_rows_consistent(
         zip(wafer.tolist(), slot.tolist(), site.tolist(), ((path, n) for n in numbers)), "file")
@@ -743,6 +770,7 @@ def read_spectrum_file(path, max_bytes=DEFAULT_MAX_BYTES):
         raise FilmmapInputError(
             f"expected exactly one data row in a dark/reference spectrum file, found {len(rows)}",
             file=path, line=numbers[1] if len(rows) > 1 else hline)
+    _check_wavelength_count(spectral, path, hline)
     wavelength, cols = spectral["I"]
     _, block = _block_fast(rows, numbers, len(names), [], cols, names, path)
     _check_finite(block, numbers, cols, names, path)

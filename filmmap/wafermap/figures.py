@@ -34,6 +34,7 @@ from filmmap.errors import FilmmapInputError
 from filmmap.wafermap.sites import check_wafer, inside_edge_exclusion, lot_arrays
 from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_polar_surface
+from filmmap.workers import end_with_parent
 
 #: Colour maps accepted by the figure functions (perceptually uniform).
 ALLOWED_CMAPS = ("viridis", "cividis", "viridis_r", "cividis_r")
@@ -479,5 +480,6 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
     if workers == 1 or W == 1:
         return [Path(_render_task(task)) for task in tasks]
     chunk = max(1, W // (4 * workers))
-    with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context) as pool:
+    with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context,
+                             initializer=end_with_parent) as pool:
         return [Path(p) for p in pool.map(_render_task, tasks, chunksize=chunk)]

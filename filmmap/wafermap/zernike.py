@@ -229,14 +229,17 @@ def choose_order(rho, theta, max_order=None, cond_max=COND_MAX, min_dof=MIN_DOF)
         order += 1
     if n_terms(order) > rho.size - min_dof or (max_order is not None and max_order < 0):
         return -1
-    # adding columns never lowers the condition number (singular-value interlacing), so
-    # the highest order that passes is found by stepping down from the dof limit
-    while order >= 0:
-        sv = np.linalg.svd(zernike_basis(n_terms(order), rho, theta), compute_uv=False)
-        if sv[-1] > 0 and sv[0] / sv[-1] <= cond_max:
-            return order
-        order -= 1
-    return -1
+    # adding columns never lowers the condition number (singular-value interlacing), so the
+    # orders that pass are 0..n* and the first failure ends the search: stepping up costs
+    # SVDs of the small matrices up to n* + 1 only, never of the dof-limit matrix (which
+    # for a dense map has thousands of columns: one SVD per order from there took minutes)
+    best = -1
+    for k in range(order + 1):
+        sv = np.linalg.svd(zernike_basis(n_terms(k), rho, theta), compute_uv=False)
+        if not (sv[-1] > 0 and sv[0] / sv[-1] <= cond_max):
+            break
+        best = k
+    return best
 
 
 def measured_radius(x_mm, y_mm, diameter_mm, edge_exclusion_mm):
