@@ -57,7 +57,7 @@ def _fault_point(name):
 
 def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=False,
                      figure_workers=None, progress=None, protect=(), follow_output_link=False,
-                     preflight=None, pending_record=None):
+                     preflight=None, pending_record=None, rate_factors=None):
     """Reduce a lot and publish every output in ``outdir`` at once.
 
     Parameters
@@ -137,7 +137,7 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     try:
         with staged_output(outdir) as stage:
             written = write_lot(reduction, stage, keep_spectra=keep_spectra)
-            advice = write_advice(reduction.config, written, stage)
+            advice = write_advice(reduction.config, written, stage, rate_factors)
             if advice is not None:
                 written.files["advice.json"] = stage / "advice.json"
             # the boat-end verdicts follow the advice's one model of the boat when there is one
@@ -174,15 +174,20 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
 
 
 
-def write_advice(config, written, folder):
-    """advice.json when the lot file has a recipe and a target; returns the advice or None."""
+def write_advice(config, written, folder, rate_factors=None):
+    """advice.json when the lot file has a recipe and a target; returns the advice or None.
+
+    ``rate_factors`` ({ambient: factor}) is a furnace's growth rate learned from its
+    history (`filmmap.history.rate`), applied on top of the lot file's ``[growth]``.
+    """
     if not config.recipe or config.target is None:
         return None
     ds = written.dataset
     usable = ds["sites_used"].values >= MIN_SITES_FOR_LOT
     mean = np.where(usable, ds["mean_nm"].values, np.nan)
     advice = advise_from_config(config, ds["slot"].values, mean, ds["role"].values,
-                                n_failed_sites=written.n_failed, n_sites=written.n_sites)
+                                n_failed_sites=written.n_failed, n_sites=written.n_sites,
+                                rate_factors=rate_factors)
     for w in ds.wafer.values[~usable]:
         advice["warnings"].append(f"wafer {w} has fewer than {MIN_SITES_FOR_LOT} usable sites "
                                   "and was left out of the calibration")

@@ -35,6 +35,8 @@ def build_parser():
     red.add_argument("--history", metavar="PATH",
                      help="run-history database (default: the per-user location, see README)")
     red.add_argument("--no-history", action="store_true", help="do not record the lot(s)")
+    red.add_argument("--furnace-history", action="store_true",
+                     help="advise with the furnace's growth rate learned from its recorded lots")
     red.add_argument("--applied-trims", action="append", default=[], metavar="ZONE=KELVIN",
                      help="zone trims that were in force during this run (for run-to-run "
                           "control), e.g. --applied-trims load=+2.2 (repeatable)")
@@ -76,7 +78,23 @@ def build_parser():
                       help="what-if zone trim, e.g. --trim load=+2 (repeatable)")
     pred.add_argument("--advice", metavar="ADVICE_JSON",
                       help="use the calibrated furnace profile of an advice.json")
+    pred.add_argument("--furnace-history", action="store_true",
+                      help="use the furnace's growth rate learned from its recorded lots")
+    pred.add_argument("--history", metavar="PATH", help="run-history database")
     pred.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    plan = sub.add_parser("plan", help="plan a run before it happens: the step time that hits "
+                                       "the target, thickness by zone and slot (no spectra needed)")
+    plan.add_argument("lotfile", help="lot file (TOML) with [[recipe.step]] and [target]")
+    plan.add_argument("--trim", action="append", default=[], metavar="ZONE=KELVIN",
+                      help="zone trim to plan with, e.g. --trim load=+2 (repeatable)")
+    plan.add_argument("--advice", metavar="ADVICE_JSON",
+                      help="use the calibrated furnace profile of an advice.json")
+    plan.add_argument("--furnace-history", action="store_true",
+                      help="use the furnace's growth rate learned from its recorded lots")
+    plan.add_argument("--history", metavar="PATH", help="run-history database")
+    plan.add_argument("--slots", action="store_true", help="also print the thickness per slot")
+    plan.add_argument("--debug", action="store_true", help="show tracebacks")
 
     demo = sub.add_parser("demo", help="generate the invented demo lot and reduce it")
     demo.add_argument("-o", "--output", default="filmmap-demo", metavar="DIR",
@@ -94,14 +112,15 @@ def _progress_bar(total, desc):
 
 def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_spectra=False,
                figure_workers=None, protect=(), follow_output_link=False, preflight=None,
-               pending_record=None):
+               pending_record=None, rate_factors=None):
     """`filmmap.pipeline.reduce_to_folder` with a progress bar unless quiet."""
     from filmmap.pipeline import reduce_to_folder
 
     return reduce_to_folder(lotfile, outdir, workers, figures, keep_spectra, figure_workers,
                             progress=None if quiet else (lambda n: _progress_bar(n, "fitting")),
                             protect=protect, follow_output_link=follow_output_link,
-                            preflight=preflight, pending_record=pending_record)
+                            preflight=preflight, pending_record=pending_record,
+                            rate_factors=rate_factors)
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -182,12 +201,20 @@ def cmd_reduce(args):
             check_history_writable(args.history)
 
     if len(args.lotfile) > 1 or args.scheduler:
+        if args.furnace_history:
+            raise FilmmapInputError("--furnace-history takes one lot file (each furnace learns "
+                                    "its own rate)", field="--furnace-history")
         return _reduce_many(args, trims, protect, preflight, pending)
+    rates = None
+    if args.furnace_history:
+        from filmmap.io.lotfile import read_lot_file
+        rates = _learned_rate_factors(read_lot_file(args.lotfile[0]), args)
     reduction, written, seconds = run_reduce(args.lotfile[0], args.output, args.workers,
                                              not args.no_figures, args.quiet, args.keep_spectra,
                                              protect=protect,
                                              follow_output_link=args.follow_output_link,
-                                             preflight=preflight, pending_record=pending)
+                                             preflight=preflight, pending_record=pending,
+                                             rate_factors=rates)
     if not args.quiet:
         print_summary(reduction, written, seconds)
     if not args.no_history:
@@ -399,7 +426,8 @@ def cmd_predict(args):
     from filmmap.growth.predict import predict_by_zone
     from filmmap.io.lotfile import read_lot_file
 
-    config = read_lot_file(args.lotfile)
+    config = read_lot_file(args.lotfile, require_files=False)   # a what-if needs no spectra
+    growth = _growth_for(config, args)
     overrides = {}
     for key, value in _parse_assignments(args.set, "--set", "STEP.FIELD", finite=False).items():
         step, dot, fld = key.rpartition(".")
@@ -425,7 +453,8 @@ def cmd_predict(args):
     if args.advice:
         slot_offsets = _read_advice_offsets(args.advice, config, MAX_TEMPERATURE_OFFSET_K)
     try:
-        table = predict_by_zone(config, overrides or None, trims or None, slot_offsets_C=slot_offsets)
+        table = predict_by_zone(config, overrides or None, trims or None, slot_offsets_C=slot_offsets,
+                                growth=growth)
     except FilmmapInputError as exc:
         if exc.file is not None:
             raise
@@ -452,6 +481,83 @@ def cmd_predict(args):
     return 0
 
 
+def _growth_for(config, args):
+    """The lot file's growth settings, with the furnace's learned rate when asked for."""
+    from filmmap.growth.settings import growth_settings
+
+    return growth_settings(config, rate_factors=_learned_rate_factors(config, args))
+
+
+def _learned_rate_factors(config, args):
+    """``{ambient: factor}`` learned from the furnace's recorded lots (printed), or None."""
+    from filmmap.growth.settings import growth_settings
+
+    if not getattr(args, "furnace_history", False):
+        return None
+    from filmmap.history.rate import learn_rate
+    from filmmap.history.store import lots
+
+    if not config.lot.furnace:
+        raise FilmmapInputError("--furnace-history needs the lot file's [lot] furnace name",
+                                file=config.path, field="lot.furnace")
+    records = lots(args.history, furnace=config.lot.furnace)
+    learned = learn_rate(records, config.stack.orientation, growth_settings(config))
+    if learned is None:
+        print(f"  note: no recorded lot of furnace {config.lot.furnace!r} with a recipe and a "
+              "product mean: the rate constants are used as they are")
+        return None
+    print(f"  furnace {config.lot.furnace!r}: {learned.describe()}")
+    if learned.changed:
+        print(f"  warning: {learned.changed}")
+    return {learned.ambient: learned.factor}
+
+
+def cmd_plan(args):
+    from filmmap.bounds import DEFAULT_MAX_OFFSET_C, MAX_TEMPERATURE_OFFSET_K, \
+        check_in_range, check_zone_trims
+    from filmmap.growth.predict import plan_run
+    from filmmap.io.lotfile import read_lot_file
+
+    config = read_lot_file(args.lotfile, require_files=False)
+    trims = _parse_assignments(args.trim, "--trim", "ZONE")
+    if config.furnace is not None:
+        check_zone_trims(trims, config, "--trim")
+    else:
+        for zone, value in trims.items():
+            check_in_range(value, "--trim", -DEFAULT_MAX_OFFSET_C, DEFAULT_MAX_OFFSET_C,
+                           f"trim {zone}")
+    slot_offsets = None
+    if args.advice:
+        slot_offsets = _read_advice_offsets(args.advice, config, MAX_TEMPERATURE_OFFSET_K)
+    print(f"lot {config.lot.id}: plan for the recipe as written"
+          + (" with trims" if trims else ""))
+    growth = _growth_for(config, args)
+    try:
+        out = plan_run(config, growth=growth, slot_offsets_C=slot_offsets,
+                       zone_offsets_C=trims or None)
+    except FilmmapInputError as exc:
+        if exc.file is not None:
+            raise
+        raise FilmmapInputError(exc.reason, file=args.lotfile, field=exc.field) from None
+    table = out["prediction"]
+    change = 100.0 * (out["minutes_planned"] / out["minutes_written"] - 1.0)
+    print(f"  step {out['adjust_step']}: {out['minutes_planned']:.1f} min for the target "
+          f"{table['target_nm']:g} nm (written: {out['minutes_written']:.1f} min, {change:+.1f} %)")
+    print(f"  {'zone':<10} {'slots':>7} {'trim K':>7} {'mean nm':>9} {'min':>8} {'max':>8} {'vs target':>9}")
+    for z in table["zones"]:
+        dev = "" if z["deviation_pct"] is None else f"{z['deviation_pct']:+.2f} %"
+        print(f"  {z['zone']:<10} {z['first_slot']:>3}-{z['last_slot']:<3} {z['trim_C']:>7.2f} "
+              f"{z['mean_nm']:>9.2f} {z['min_nm']:>8.2f} {z['max_nm']:>8.2f} {dev:>9}")
+    if args.slots:
+        print(f"  {'slot':>4} {'role':<8} {'offset K':>8} {'nm':>9}")
+        for r in table["slots"]:
+            print(f"  {r['slot']:>4} {r['role']:<8} {r['offset_C']:>8.2f} {r['thickness_nm']:>9.2f}")
+    for note in table["notes"]:
+        print(f"  note: {note}")
+    print(CAUTION)
+    return 0
+
+
 def main(argv=None):
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -459,7 +565,7 @@ def main(argv=None):
         parser.print_help()
         return 0
     handler = {"reduce": cmd_reduce, "demo": cmd_demo, "predict": cmd_predict,
-               "history": cmd_history}[args.command]
+               "history": cmd_history, "plan": cmd_plan}[args.command]
     try:
         return handler(args)
     except FilmmapInputError as exc:

@@ -55,6 +55,7 @@ from scipy.optimize import brentq, lsq_linear
 
 from filmmap.errors import FilmmapInputError
 from filmmap.growth.boat import fit_boat
+from filmmap.growth.settings import growth_settings
 from filmmap.growth.calibrate import (
     DEFAULT_INITIAL_NM,
     calibrate_slots,
@@ -131,9 +132,10 @@ def _check_wafers(slot, mean_nm, role):
 class _Model:
     """The recipe with a variable adjust-step duration, evaluated on slot offset arrays."""
 
-    def __init__(self, steps, k, orientation, initial_nm, pressure_atm, thin_regime):
+    def __init__(self, steps, k, orientation, initial_nm, pressure_atm, thin_regime,
+                 constants=None):
         self.steps, self.k = steps, k
-        self.kw = dict(pressure_atm=pressure_atm, thin_regime=thin_regime)
+        self.kw = dict(pressure_atm=pressure_atm, thin_regime=thin_regime, constants=constants)
         self.orientation, self.initial_nm = orientation, initial_nm
 
     def steps_at(self, minutes):
@@ -210,7 +212,7 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
            shape="logistic", monitor_weight=1.0, reference_zone=None, n_failed_sites=0,
            n_sites=None, min_product_wafers=5, max_failed_fraction=0.05, max_residual_C=0.5,
            trim_regularisation=1e-2, n_iterations=3, boat_size=None, decay_slots=None,
-           dummy_slots=None):
+           dummy_slots=None, constants=None, growth_notes=()):
     """Advice for the next run: adjust-step time and zone trims, with predictions and warnings.
 
     Parameters
@@ -282,6 +284,11 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     dummy_slots : sequence of int, optional
         Dummy slots of the boat, measured or not (default: the wafers with role
         ``"dummy"``); each end effect starts after the last dummy at its end.
+    constants : dict, optional
+        Rate constants, as for `integrate_recipe` (None: the reference file's).
+    growth_notes : sequence of str
+        Where the growth model's pressures and constants came from, recorded under
+        ``model``.
 
     Returns
     -------
@@ -354,11 +361,11 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     initial_nm = float(initial_nm)
     m0 = float(st[k].minutes)
     step_name = st[k].name or str(k)
-    model = _Model(st, k, orientation, initial_nm, pressure_atm, thin_regime)
+    model = _Model(st, k, orientation, initial_nm, pressure_atm, thin_regime, constants)
     warnings = []
 
     cal = calibrate_slots(st, slots, mean, orientation=orientation, initial_nm=initial_nm,
-                          pressure_atm=pressure_atm, thin_regime=thin_regime)
+                          pressure_atm=pressure_atm, thin_regime=thin_regime, constants=constants)
     by_slot = {str(int(s)): _f(o) for s, o in zip(slots, cal.offset_C)}
     weight = np.where(roles == "product", 1.0,
                       np.where(roles == "monitor", float(monitor_weight), 0.0))
@@ -388,7 +395,10 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     settings = {"orientation": str(orientation), "initial_nm": _f(initial_nm),
                 "width_slots": float(width_slots), "shape": shape,
                 "reference_zone": reference_zone, "max_offset_C": max_off,
-                "max_time_change_pct": p_time}
+                "max_time_change_pct": p_time, "thin_regime": thin_regime,
+                "pressure_atm": (dict(pressure_atm) if isinstance(pressure_atm, dict)
+                                 else _f(pressure_atm)),
+                "growth": list(growth_notes)}
     trims = np.zeros(len(zs))
 
     def result(minutes_next, t, x_now, x_next):
@@ -641,7 +651,8 @@ def _choose_adjust_step(steps):
     return max(ox)[1]
 
 
-def advise_from_config(config, slot, mean_nm, role=None, n_failed_sites=0, **options):
+def advise_from_config(config, slot, mean_nm, role=None, n_failed_sites=0, rate_factors=None,
+                       **options):
     """`advise` with the recipe, target, zones, limits and orientation of a lot file.
 
     Parameters
@@ -659,6 +670,8 @@ def advise_from_config(config, slot, mean_nm, role=None, n_failed_sites=0, **opt
         Role per wafer; None takes them from ``config.boat`` (`roles_from_boat`).
     n_failed_sites : int
         Number of failed site fits in the lot (count).
+    rate_factors : dict, optional
+        ``{ambient: factor}`` on B and B/A, e.g. a furnace's rate learned from its history.
     **options
         Any further keyword of `advise` (e.g. ``n_sites``, ``width_slots``,
         ``initial_nm`` in nm, ``min_product_wafers``).
@@ -699,6 +712,11 @@ def advise_from_config(config, slot, mean_nm, role=None, n_failed_sites=0, **opt
                   max_time_change_pct=config.furnace.max_time_change_pct)
     if config.boat is not None:
         kw.update(boat_size=config.boat.slots, dummy_slots=tuple(config.boat.dummy_slots))
+    growth = growth_settings(config, rate_factors=rate_factors)
+    kw.update(pressure_atm=growth.pressure_atm, thin_regime=growth.thin_regime,
+              constants=growth.constants, growth_notes=growth.notes)
+    if config.furnace is not None and getattr(config.furnace, "coupling_width_slots", None) is not None:
+        kw.update(width_slots=config.furnace.coupling_width_slots)
     kw.update(options)
     if role is None:
         role = roles_from_boat(slot, config.boat)

@@ -328,7 +328,7 @@ def _offset_range(steps, search_K, temperature_range_C):
 
 def calibrate_slots(steps, slot, mean_nm, *, orientation="100", initial_nm=DEFAULT_INITIAL_NM,
                     pressure_atm=None, thin_regime="deal-grove", search_K=60.0, tol_nm=1e-7,
-                    temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C):
+                    temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C, constants=None):
     """Effective temperature offset of each slot that makes the model grow its measured mean.
 
     Parameters
@@ -355,6 +355,8 @@ def calibrate_slots(steps, slot, mean_nm, *, orientation="100", initial_nm=DEFAU
         Accepted thickness mismatch, nm (> 0).
     temperature_range_C : (float, float)
         Accepted temperatures of oxidising steps, degrees Celsius.
+    constants : dict, optional
+        Rate constants, as for `integrate_recipe` (None: the reference file's).
 
     Returns
     -------
@@ -395,7 +397,7 @@ def calibrate_slots(steps, slot, mean_nm, *, orientation="100", initial_nm=DEFAU
     lo_lim, hi_lim = _offset_range(st, search_K, temperature_range_C)
     x0 = np.broadcast_to(np.asarray(initial_nm, dtype=float), mean.shape)
     kw = dict(pressure_atm=pressure_atm, thin_regime=thin_regime,
-              temperature_range_C=temperature_range_C)
+              temperature_range_C=temperature_range_C, constants=constants)
     status = np.where(np.isfinite(mean), "ok", "missing").astype(object)
     offset = np.full(mean.shape, np.nan)
     model = np.full(mean.shape, np.nan)

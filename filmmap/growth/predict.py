@@ -27,6 +27,7 @@ from filmmap.growth.calibrate import (
     steps_from_config,
     zones_from_config,
 )
+from filmmap.growth.settings import growth_settings
 from filmmap.growth.recipe import integrate_recipe, step_index, validate_steps
 
 __all__ = ["apply_overrides", "predict_by_zone"]
@@ -124,8 +125,8 @@ def _slot_profile(slot_offsets_C, slots):
 
 
 def predict_by_zone(config, overrides=None, zone_offsets_C=None, *, slot_offsets_C=None,
-                    initial_nm=DEFAULT_INITIAL_NM, width_slots=0.0, shape="logistic",
-                    pressure_atm=None, thin_regime="deal-grove"):
+                    initial_nm=DEFAULT_INITIAL_NM, width_slots=None, shape="logistic",
+                    pressure_atm=None, thin_regime=None, growth=None):
     """Predicted oxide thickness per heater zone and per slot for a lot file's recipe.
 
     Parameters
@@ -146,14 +147,19 @@ def predict_by_zone(config, overrides=None, zone_offsets_C=None, *, slot_offsets
         constant beyond the ends) and listed in the notes.
     initial_nm : float
         Oxide before the first step, nm (default 1.5, native oxide).
-    width_slots : float
-        Zone transition width of the gain model, slots (0 = pure step).
+    width_slots : float, optional
+        Zone transition width of the gain model, slots (default: the lot file's
+        ``coupling_width_slots``, else 0 = pure step).
     shape : {"logistic", "linear"}
         Transition shape of the gain model.
     pressure_atm : float, mapping or None
-        Oxidant partial pressure, atm, as for `integrate_recipe`.
-    thin_regime : str
-        Initial-regime treatment of dry steps, as for `integrate_recipe`.
+        Oxidant partial pressure, atm, as for `integrate_recipe` (default: the growth
+        settings').
+    thin_regime : str, optional
+        Initial-regime treatment of dry steps (default: the growth settings').
+    growth : GrowthSettings, optional
+        Pressures, thin regime and constants (default: `growth_settings` of the lot file,
+        i.e. its ``[growth]``).
 
     Returns
     -------
@@ -204,12 +210,18 @@ def predict_by_zone(config, overrides=None, zone_offsets_C=None, *, slot_offsets
             raise FilmmapInputError(f"trim of zone {name!r} must be a finite number of K",
                                     field="zone_offsets_C")
         trims[names.index(name)] = float(v)
+    settings = growth_settings(config) if growth is None else growth
+    if width_slots is None:
+        width_slots = (getattr(config.furnace, "coupling_width_slots", None) or 0.0
+                       if config.furnace is not None else 0.0)
     G = gain_matrix(zones, slots, width_slots, shape)
     profile, filled = _slot_profile(slot_offsets_C, slots)
     offset = profile + G @ trims
-    x = np.asarray(integrate_recipe(steps, config.stack.orientation, initial_nm, offset,
-                                    pressure_atm=pressure_atm, thin_regime=thin_regime),
-                   dtype=float).reshape(slots.shape)
+    x = np.asarray(integrate_recipe(
+        steps, config.stack.orientation, initial_nm, offset,
+        pressure_atm=settings.pressure_atm if pressure_atm is None else pressure_atm,
+        thin_regime=settings.thin_regime if thin_regime is None else thin_regime,
+        constants=settings.constants), dtype=float).reshape(slots.shape)
     roles = roles_from_boat(slots, config.boat)
     target = config.target.thickness_nm if config.target is not None else None
     # a slot belongs to the zone whose range holds it (the gain only blends temperatures)
@@ -238,6 +250,7 @@ def predict_by_zone(config, overrides=None, zone_offsets_C=None, *, slot_offsets
                      "its zone trim")
     if filled:
         notes.append(f"slot offsets interpolated for slot(s) {', '.join(map(str, filled))}")
+    notes.extend(f"growth model: {n}" for n in settings.notes)
     return {
         "recipe": [{"name": s.name, "ambient": s.ambient, "minutes": s.minutes, "at_C": s.at_C,
                     "from_C": s.from_C, "to_C": s.to_C, "changed": s.name in changed}
@@ -251,3 +264,74 @@ def predict_by_zone(config, overrides=None, zone_offsets_C=None, *, slot_offsets
         "tolerance_pct": config.target.tolerance_pct if config.target is not None else None,
         "notes": notes,
     }
+
+
+def plan_run(config, *, growth=None, slot_offsets_C=None, zone_offsets_C=None,
+             initial_nm=DEFAULT_INITIAL_NM, max_minutes=10000.0):
+    """Plan a run before it happens: the adjust-step time that puts the product mean on target.
+
+    Parameters
+    ----------
+    config : filmmap.io.lotfile.LotConfig
+        Lot file with a recipe and a ``[target]`` (no spectra needed).
+    growth : GrowthSettings, optional
+        Pressures, thin regime and constants, e.g. with a rate factor learned from the
+        furnace's history (default: the lot file's ``[growth]``).
+    slot_offsets_C, zone_offsets_C : optional
+        A calibrated furnace profile and trims, as for `predict_by_zone`.
+    initial_nm : float
+        Oxide before the first step, nm.
+    max_minutes : float
+        Longest duration searched, minutes.
+
+    Returns
+    -------
+    dict
+        ``adjust_step`` (str), ``minutes_written`` and ``minutes_planned`` (min), and the
+        `predict_by_zone` table at the planned time under ``prediction``.
+
+    Raises
+    ------
+    FilmmapInputError
+        Without a recipe or a target, or when no duration within ``max_minutes`` reaches
+        the target.
+
+    References
+    ----------
+    .. [1] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965).
+    """
+    from scipy.optimize import brentq
+
+    if not config.recipe:
+        raise FilmmapInputError("nothing to plan: the lot file has no [[recipe.step]]",
+                                field="recipe")
+    if config.target is None:
+        raise FilmmapInputError("nothing to plan: the lot file has no [target] (the thickness "
+                                "to aim for)", field="target")
+    steps = steps_from_config(config)
+    if config.target.adjust_step is not None:
+        name = config.target.adjust_step
+    else:
+        ox = [(s.minutes, s.name) for s in steps if s.oxidising]
+        if not ox:
+            raise FilmmapInputError("the recipe has no oxidising step to plan", field="recipe")
+        name = max(ox)[1]
+    written = next(s.minutes for s in steps if s.name == name)
+    target = float(config.target.thickness_nm)
+
+    def mean_at(minutes):
+        table = predict_by_zone(config, {name: {"minutes": minutes}}, zone_offsets_C,
+                                slot_offsets_C=slot_offsets_C, initial_nm=initial_nm,
+                                growth=growth)
+        return table["product_mean_nm"] - target, table
+
+    lo, hi = 1e-3, float(max_minutes)
+    f_lo, _ = mean_at(lo)
+    f_hi, _ = mean_at(hi)
+    if f_lo > 0 or f_hi < 0:
+        raise FilmmapInputError(f"no duration of step {name!r} between {lo:g} and {hi:g} min "
+                                f"reaches the target {target:g} nm", field="target.thickness_nm")
+    minutes = brentq(lambda m: mean_at(m)[0], lo, hi, xtol=1e-6)
+    _, table = mean_at(minutes)
+    return {"adjust_step": name, "minutes_written": float(written),
+            "minutes_planned": float(minutes), "prediction": table}

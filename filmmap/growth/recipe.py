@@ -284,14 +284,16 @@ def step_index(steps, step):
 class _Kinetics:
     """Arrhenius constants of one oxidising step, evaluated on temperature arrays (um, h)."""
 
-    def __init__(self, ambient, orientation, pressure_atm):
-        consts = dg.load_constants()
+    def __init__(self, ambient, orientation, pressure_atm, constants=None):
+        consts = dg.load_constants() if constants is None else constants
         table = consts[ambient]
         factor = dg.pressure_factor(ambient, pressure_atm)
-        self.C1 = table["B_prefactor_um2_per_h"] * factor
+        # a furnace's own rate factor (lot file [growth], or learned from its history)
+        rate = float(table.get("rate_factor", 1.0))
+        self.C1 = table["B_prefactor_um2_per_h"] * factor * rate
         self.E1 = table["B_activation_eV"]
         ratio = 1.0 if orientation == consts["B_over_A_orientation"] else consts["orientation_ratio_111_to_100"]
-        self.C2 = table["B_over_A_prefactor_um_per_h"] * factor / ratio
+        self.C2 = table["B_over_A_prefactor_um_per_h"] * factor * rate / ratio
         self.E2 = table["B_over_A_activation_eV"]
         m = consts["massoud"]
         self.massoud = ambient in m["ambients"]
@@ -399,7 +401,7 @@ class _Plan:
     """A validated recipe with its slot arrays, ready to integrate repeatedly."""
 
     def __init__(self, steps, orientation, initial_nm, temperature_offset_C, pressure_atm,
-                 thin_regime, temperature_range_C, extra_shapes=()):
+                 thin_regime, temperature_range_C, extra_shapes=(), constants=None):
         self.steps = validate_steps(steps, temperature_range_C)
         self.orientation = dg.check_orientation(orientation)
         if thin_regime not in THIN_REGIMES:
@@ -438,8 +440,9 @@ class _Plan:
                 p = pressure_atm.get(s.ambient) if isinstance(pressure_atm, Mapping) else pressure_atm
             if p is not None:
                 p = np.broadcast_to(np.asarray(p, dtype=float), self.shape)
-            self.kinetics.append(_Kinetics(s.ambient, self.orientation, p))
-        self.x_i_um = dg.initial_oxide_nm("O2") / _NM_PER_UM
+            self.kinetics.append(_Kinetics(s.ambient, self.orientation, p, constants))
+        self.x_i_um = (dg.initial_oxide_nm("O2") if constants is None
+                       else float(constants["O2"]["initial_oxide_nm"])) / _NM_PER_UM
 
     def run(self, minutes_override=None, offset_delta=0.0, record=False, start=0, x_start=None):
         """Thickness (um) after the recipe; optionally the thickness after every step.
@@ -487,7 +490,8 @@ def _out(a_um):
 
 
 def integrate_recipe(steps, orientation, initial_nm, temperature_offset_C=0.0, pressure_atm=None, *,
-                     thin_regime="deal-grove", temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C):
+                     thin_regime="deal-grove", temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C,
+                     constants=None):
     """Oxide thickness at the end of a recipe, per slot.
 
     Parameters
@@ -510,6 +514,10 @@ def integrate_recipe(steps, orientation, initial_nm, temperature_offset_C=0.0, p
         Massoud thin-oxide term is off unless ``"massoud"`` is chosen.
     temperature_range_C : (float, float)
         Accepted temperatures of oxidising steps (after offsets), degrees Celsius.
+    constants : dict, optional
+        Rate constants shaped like `filmmap.growth.deal_grove.load_constants` (with an
+        optional ``rate_factor`` per ambient), e.g. from the lot file's ``[growth]``
+        (`filmmap.growth.settings`); None = the reference file's.
 
     Returns
     -------
@@ -532,12 +540,13 @@ def integrate_recipe(steps, orientation, initial_nm, temperature_offset_C=0.0, p
     .. [2] H. Z. Massoud, J. D. Plummer and E. A. Irene, J. Electrochem. Soc. 132, 2685 (1985).
     """
     plan = _Plan(steps, orientation, initial_nm, temperature_offset_C, pressure_atm,
-                 thin_regime, temperature_range_C)
+                 thin_regime, temperature_range_C, constants=constants)
     return _out(plan.run())
 
 
 def step_thicknesses(steps, orientation, initial_nm, temperature_offset_C=0.0, pressure_atm=None, *,
-                     thin_regime="deal-grove", temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C):
+                     thin_regime="deal-grove", temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C,
+                     constants=None):
     """Oxide thickness before the recipe and after each step, per slot.
 
     Parameters
@@ -552,7 +561,7 @@ def step_thicknesses(steps, orientation, initial_nm, temperature_offset_C=0.0, p
         row i the thickness after step i - 1.
     """
     plan = _Plan(steps, orientation, initial_nm, temperature_offset_C, pressure_atm,
-                 thin_regime, temperature_range_C)
+                 thin_regime, temperature_range_C, constants=constants)
     return np.asarray(plan.run(record=True)) * _NM_PER_UM
 
 
@@ -562,7 +571,8 @@ def _five_point(f, h):
 
 def thickness_sensitivity_to_minutes(steps, step, orientation, initial_nm, temperature_offset_C=0.0,
                                      pressure_atm=None, *, thin_regime="deal-grove",
-                                     temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C):
+                                     temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C,
+                                     constants=None):
     """d(final thickness) / d(duration of one step), per slot.
 
     Parameters
@@ -585,7 +595,7 @@ def thickness_sensitivity_to_minutes(steps, step, orientation, initial_nm, tempe
     truncation error is of relative order 1e-8.
     """
     plan = _Plan(steps, orientation, initial_nm, temperature_offset_C, pressure_atm,
-                 thin_regime, temperature_range_C)
+                 thin_regime, temperature_range_C, constants=constants)
     k = step_index(plan.steps, step)
     m = plan.steps[k].minutes
     x_before = plan.run(record=True)[k]
@@ -594,7 +604,8 @@ def thickness_sensitivity_to_minutes(steps, step, orientation, initial_nm, tempe
 
 def thickness_sensitivity_to_temperature(steps, orientation, initial_nm, temperature_offset_C=0.0,
                                          pressure_atm=None, *, thin_regime="deal-grove",
-                                         temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C):
+                                         temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C,
+                                         constants=None):
     """d(final thickness) / d(temperature offset applied to every step), per slot.
 
     Parameters
@@ -613,14 +624,14 @@ def thickness_sensitivity_to_temperature(steps, orientation, initial_nm, tempera
     about 1 % per K, so truncation error is of relative order 1e-10).
     """
     plan = _Plan(steps, orientation, initial_nm, temperature_offset_C, pressure_atm,
-                 thin_regime, temperature_range_C)
+                 thin_regime, temperature_range_C, constants=constants)
     return _out(_five_point(lambda d: plan.run(offset_delta=d), 0.25))
 
 
 def minutes_for_target(steps, step, target_nm, orientation, initial_nm, temperature_offset_C=0.0,
                        pressure_atm=None, *, thin_regime="deal-grove",
                        temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C,
-                       max_minutes=10000.0, on_unreachable="raise", tol_nm=1e-6):
+                       max_minutes=10000.0, on_unreachable="raise", tol_nm=1e-6, constants=None):
     """Duration of one step that makes the final thickness equal a target, per slot.
 
     Parameters
@@ -663,7 +674,7 @@ def minutes_for_target(steps, step, target_nm, orientation, initial_nm, temperat
         raise FilmmapInputError(f"target thickness must be finite and >= 0 nm, got {target_nm!r}",
                                 field="target_nm")
     plan = _Plan(steps, orientation, initial_nm, temperature_offset_C, pressure_atm,
-                 thin_regime, temperature_range_C, extra_shapes=(target.shape,))
+                 thin_regime, temperature_range_C, extra_shapes=(target.shape,), constants=constants)
     k = step_index(plan.steps, step)
     s = plan.steps[k]
     if not s.oxidising:

@@ -99,7 +99,7 @@ import math
 import os
 import re
 import tomllib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath, PureWindowsPath
 
 import numpy as np
@@ -128,7 +128,7 @@ DEFAULT_MAX_LOT_BYTES = 4 * 2**20
 _TEMPERATURE_RANGE_C = (0.0, 1400.0)
 
 _KEYS = {
-    "": ("lot", "measurement", "stack", "target", "boat", "furnace", "recipe"),
+    "": ("lot", "measurement", "stack", "target", "boat", "furnace", "recipe", "growth"),
     "lot": ("id", "furnace", "run_date"),
     "measurement": ("technique", "angle_deg", "files", "wafer_diameter_mm", "edge_exclusion_mm",
                     "reflectance_unit", "dark_file", "reference_file", "fit_offset",
@@ -140,7 +140,12 @@ _KEYS = {
     "stack.layer.cauchy": ("A", "B", "C", "range_nm"),
     "target": ("thickness_nm", "tolerance_pct", "adjust_step"),
     "boat": ("slots", "dummy_slots", "monitor_slots"),
-    "furnace": ("zones", "max_offset_C", "max_time_change_pct"),
+    "furnace": ("zones", "max_offset_C", "max_time_change_pct", "coupling_width_slots"),
+    "growth": ("wet_source", "h2o_pressure_atm", "o2_pressure_atm", "thin_regime",
+               "initial_oxide_nm", "massoud", "O2", "H2O"),
+    "growth.massoud": ("C_prefactor_um_per_h", "C_activation_eV", "decay_length_nm"),
+    "growth.ambient": ("B_prefactor_um2_per_h", "B_activation_eV", "B_over_A_prefactor_um_per_h",
+                       "B_over_A_activation_eV", "rate_factor"),
     "furnace.zones": ("name", "slots"),
     "recipe": ("step",),
     "recipe.step": ("name", "ambient", "minutes", "at_C", "from_C", "to_C"),
@@ -392,11 +397,15 @@ class FurnaceConfig:
         Largest zone temperature offset to propose, deg C.
     max_time_change_pct : float
         Largest step-time change to propose, percent.
+    coupling_width_slots : float or None
+        Width of the transition between neighbouring zones in the zone-to-slot model,
+        slots (10-90 %); None = a sharp step (docs/furnace.md says how to measure it).
     """
 
     zones: tuple
     max_offset_C: float = 5.0
     max_time_change_pct: float = 15.0
+    coupling_width_slots: float | None = None
 
     def zone_of(self, slot):
         """The `Zone` holding ``slot``, or None."""
@@ -469,6 +478,8 @@ class LotConfig:
     furnace : FurnaceConfig or None
     recipe : tuple of RecipeStep
         In order; empty when the file has no recipe.
+    growth : GrowthConfig or None
+        The growth model's pressures, thin regime and constants, when given.
     """
 
     path: Path
@@ -481,6 +492,7 @@ class LotConfig:
     boat: BoatConfig | None
     furnace: FurnaceConfig | None
     recipe: tuple = ()
+    growth: GrowthConfig | None = None
 
     def step(self, name):
         """The recipe step called ``name``, or None."""
@@ -757,7 +769,7 @@ def _relative_file(rd, value, field, folder, allow_outside, what):
     return path
 
 
-def _resolve_globs(rd, patterns, folder, allow_outside, exclude):
+def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=True):
     field = "measurement.files"
     if not patterns:
         rd.fail("files is empty; expected at least one glob such as \"*.csv\"", field)
@@ -778,7 +790,7 @@ def _resolve_globs(rd, patterns, folder, allow_outside, exclude):
             matches = [folder / m for m in glob.glob(pattern, root_dir=folder, recursive=True)]
         matches = [m for m in matches if m.is_file()]
         kept = [m for m in matches if m.resolve() not in excluded]
-        if not kept:
+        if not kept and require_files:
             extra = (" (only the lot file or its dark/reference/nk files, which are not data "
                      "files)" if matches else "")
             rd.fail(f"glob {pattern!r} matches no data files in {folder}{extra}; expected at "
@@ -945,7 +957,7 @@ def _pair(rd, t, key, where, default=None):
     return (lo, hi)
 
 
-def _read_measurement(rd, doc, folder, allow_outside, exclude):
+def _read_measurement(rd, doc, folder, allow_outside, exclude, require_files=True):
     t = rd.table(doc, "measurement", "", required=True, what="[measurement] table")
     w = "measurement"
     rd.keys(t, w, "measurement")
@@ -987,7 +999,8 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude):
                 "[\"*.csv\"])", f"{w}.files")
     patterns = rd.value(t, "files", w, "array")
     extra = [p for p in (reference, dark) if p is not None]
-    files = _resolve_globs(rd, patterns, folder, allow_outside, list(exclude) + extra)
+    files = _resolve_globs(rd, patterns, folder, allow_outside, list(exclude) + extra,
+                           require_files)
     fit_offset = rd.value(t, "fit_offset", w, "boolean", default=None)
     if fit_offset is not None and technique != "reflectance":
         rd.fail("fit_offset applies to technique 'reflectance' only; remove it",
@@ -1115,7 +1128,91 @@ def _read_furnace(rd, doc, boat):
                        lo_open=True, unit=" C")
     change = rd.number(t, "max_time_change_pct", w, default=15.0, lo=0.0, hi=100.0,
                        lo_open=True, hi_open=True, unit=" %")
-    return FurnaceConfig(zones=tuple(zones), max_offset_C=offset, max_time_change_pct=change)
+    width = rd.number(t, "coupling_width_slots", w, default=None, lo=0.0, hi=50.0, unit=" slots")
+    return FurnaceConfig(zones=tuple(zones), max_offset_C=offset, max_time_change_pct=change,
+                         coupling_width_slots=width)
+
+
+@dataclass(frozen=True)
+class GrowthConfig:
+    """``[growth]``: the growth model in the furnace owner's hands.
+
+    Attributes
+    ----------
+    wet_source : str or None
+        ``"bubbler"`` (H2O at 640 torr, Deal & Grove's own data) or ``"pyrogenic"``
+        (H2/O2 torch, near 1 atm of steam); None = the rate data's reference (640 torr).
+    h2o_pressure_atm, o2_pressure_atm : float or None
+        Oxidant partial pressures, atm (override ``wet_source``).
+    thin_regime : str or None
+        Dry-oxidation thin regime: ``"deal-grove"`` (initial-oxide rule), ``"massoud"``
+        or ``"none"``; None = ``"deal-grove"``.
+    initial_oxide_nm : float or None
+        Deal-Grove initial-oxide offset x_i of dry oxidation, nm.
+    massoud : dict
+        Overrides of the Massoud term (``C_prefactor_um_per_h``, ``C_activation_eV``,
+        ``decay_length_nm``).
+    ambients : dict
+        Per ambient (``"O2"``, ``"H2O"``) overrides of ``B_prefactor_um2_per_h``,
+        ``B_activation_eV``, ``B_over_A_prefactor_um_per_h``, ``B_over_A_activation_eV`` and
+        ``rate_factor``.
+    """
+
+    wet_source: str | None = None
+    h2o_pressure_atm: float | None = None
+    o2_pressure_atm: float | None = None
+    thin_regime: str | None = None
+    initial_oxide_nm: float | None = None
+    massoud: dict = field(default_factory=dict)
+    ambients: dict = field(default_factory=dict)
+
+
+#: Bounds of the rate-constant overrides: far outside any published value, inside which a
+#: typo (an exponent off by ten) is still caught.
+_RATE_BOUNDS = {"B_prefactor_um2_per_h": (1e-3, 1e8), "B_activation_eV": (0.1, 5.0),
+                "B_over_A_prefactor_um_per_h": (1e2, 1e14), "B_over_A_activation_eV": (0.1, 5.0),
+                "rate_factor": (0.2, 5.0), "C_prefactor_um_per_h": (1.0, 1e14),
+                "C_activation_eV": (0.1, 5.0), "decay_length_nm": (0.1, 100.0)}
+
+
+def _read_growth(rd, doc):
+    t = rd.table(doc, "growth", "")
+    if t is None:
+        return None
+    w = "growth"
+    rd.keys(t, w, "growth")
+    source = rd.string(t, "wet_source", w, default=None, choices=("bubbler", "pyrogenic"))
+    h2o = rd.number(t, "h2o_pressure_atm", w, default=None, lo=0.001, hi=30.0, unit=" atm")
+    o2 = rd.number(t, "o2_pressure_atm", w, default=None, lo=0.001, hi=30.0, unit=" atm")
+    if source is not None and h2o is not None:
+        rd.fail("give wet_source or h2o_pressure_atm, not both", f"{w}.h2o_pressure_atm")
+    regime = rd.string(t, "thin_regime", w, default=None, choices=("deal-grove", "massoud", "none"))
+    x_i = rd.number(t, "initial_oxide_nm", w, default=None, lo=0.0, hi=100.0, unit=" nm")
+    massoud = {}
+    mt = rd.table(t, "massoud", w)
+    if mt is not None:
+        rd.keys(mt, f"{w}.massoud", "growth.massoud")
+        for key in _KEYS["growth.massoud"]:
+            lo, hi = _RATE_BOUNDS[key]
+            v = rd.number(mt, key, f"{w}.massoud", default=None, lo=lo, hi=hi)
+            if v is not None:
+                massoud[key] = v
+    ambients = {}
+    for amb in ("O2", "H2O"):
+        at = rd.table(t, amb, w)
+        if at is None:
+            continue
+        rd.keys(at, f"{w}.{amb}", "growth.ambient")
+        vals = {}
+        for key in _KEYS["growth.ambient"]:
+            lo, hi = _RATE_BOUNDS[key]
+            v = rd.number(at, key, f"{w}.{amb}", default=None, lo=lo, hi=hi)
+            if v is not None:
+                vals[key] = v
+        ambients[amb] = vals
+    return GrowthConfig(wet_source=source, h2o_pressure_atm=h2o, o2_pressure_atm=o2,
+                        thin_regime=regime, initial_oxide_nm=x_i, massoud=massoud,
+                        ambients=ambients)
 
 
 def _read_recipe(rd, doc):
@@ -1185,7 +1282,7 @@ def _check_adjust_step(rd, target, recipe):
 
 # --------------------------------------------------------------------------- entry point
 
-def read_lot_file(path, allow_outside=False, max_bytes=DEFAULT_MAX_LOT_BYTES):
+def read_lot_file(path, allow_outside=False, max_bytes=DEFAULT_MAX_LOT_BYTES, require_files=True):
     """Read and validate a lot file.
 
     Parameters
@@ -1197,6 +1294,9 @@ def read_lot_file(path, allow_outside=False, max_bytes=DEFAULT_MAX_LOT_BYTES):
         or symlinks pointing outside).
     max_bytes : int
         Refuse lot files larger than this many bytes (default 4 MiB).
+    require_files : bool
+        Refuse globs that match no spectra file (default); False reads a lot file
+        before its run, for planning (``filmmap plan``, ``filmmap predict``).
 
     Returns
     -------
@@ -1253,11 +1353,13 @@ def read_lot_file(path, allow_outside=False, max_bytes=DEFAULT_MAX_LOT_BYTES):
     lot = _read_lot(rd, doc)
     stack = _read_stack(rd, doc, folder, allow_outside, path)
     exclude = [path] + [layer.nk_file for layer in stack.layers if layer.nk_file is not None]
-    measurement = _read_measurement(rd, doc, folder, allow_outside, exclude)
+    measurement = _read_measurement(rd, doc, folder, allow_outside, exclude, require_files)
     target = _read_target(rd, doc, stack)
     boat = _read_boat(rd, doc)
     furnace = _read_furnace(rd, doc, boat)
     recipe = _read_recipe(rd, doc)
     _check_adjust_step(rd, target, recipe)
+    growth = _read_growth(rd, doc)
     return LotConfig(path=path, folder=folder, sha256=sha, lot=lot, measurement=measurement,
-                     stack=stack, target=target, boat=boat, furnace=furnace, recipe=recipe)
+                     stack=stack, target=target, boat=boat, furnace=furnace, recipe=recipe,
+                     growth=growth)
