@@ -113,3 +113,17 @@ def test_fit_boat_end_effect_not_found_in_a_flat_boat():
     offs = 0.05 * rng.standard_normal(PRODUCT.size)
     fit = fit_boat(PRODUCT, offs, ZONES, boat_size=50, dummy_slots=DUMMIES)
     assert not any(e.detected for e in fit.ends)
+
+
+def test_coupling_width_from_a_profiling_run():
+    # two runs of the independent furnace whose zones blend over 4 slots: the second with
+    # the center zone trimmed +3 K; filmmap reads both lots and recovers the width
+    from filmmap.growth.boat import coupling_width_from_profiling
+    from filmmap.growth.calibrate import calibrate_slots
+
+    base = zone_profile(PRODUCT, ZONES, [-1.0, 0.0, 0.5], width_slots=4.0)
+    after = base + zone_profile(PRODUCT, ZONES, [0.0, 3.0, 0.0], width_slots=4.0)
+    cal = [calibrate_slots(RECIPE, PRODUCT, measured_means(T)).offset_C for T in (base, after)]
+    width, rms = coupling_width_from_profiling(PRODUCT, cal[0], cal[1], ZONES, "center", 3.0)
+    assert width == pytest.approx(4.0, abs=0.5)
+    assert rms < 0.1

@@ -212,7 +212,7 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
            shape="logistic", monitor_weight=1.0, reference_zone=None, n_failed_sites=0,
            n_sites=None, min_product_wafers=5, max_failed_fraction=0.05, max_residual_C=0.5,
            trim_regularisation=1e-2, n_iterations=3, boat_size=None, decay_slots=None,
-           dummy_slots=None, constants=None, growth_notes=()):
+           dummy_slots=None, constants=None, growth_notes=(), width_source=None):
     """Advice for the next run: adjust-step time and zone trims, with predictions and warnings.
 
     Parameters
@@ -289,6 +289,9 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     growth_notes : sequence of str
         Where the growth model's pressures and constants came from, recorded under
         ``model``.
+    width_source : str, optional
+        Where ``width_slots`` came from (the lot file, a profiling run), recorded under
+        ``model``; default: "given" when non-zero, else "default: a sharp step".
 
     Returns
     -------
@@ -394,6 +397,8 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
 
     settings = {"orientation": str(orientation), "initial_nm": _f(initial_nm),
                 "width_slots": float(width_slots), "shape": shape,
+                "width_source": width_source or ("given by the caller" if width_slots
+                                                 else "default: a sharp step between zones"),
                 "reference_zone": reference_zone, "max_offset_C": max_off,
                 "max_time_change_pct": p_time, "thin_regime": thin_regime,
                 "pressure_atm": (dict(pressure_atm) if isinstance(pressure_atm, dict)
@@ -715,8 +720,9 @@ def advise_from_config(config, slot, mean_nm, role=None, n_failed_sites=0, rate_
     growth = growth_settings(config, rate_factors=rate_factors)
     kw.update(pressure_atm=growth.pressure_atm, thin_regime=growth.thin_regime,
               constants=growth.constants, growth_notes=growth.notes)
-    if config.furnace is not None and getattr(config.furnace, "coupling_width_slots", None) is not None:
-        kw.update(width_slots=config.furnace.coupling_width_slots)
+    width = getattr(config.furnace, "coupling_width_slots", None) if config.furnace else None
+    if width is not None and "width_slots" not in options:
+        kw.update(width_slots=width, width_source="lot file ([furnace] coupling_width_slots)")
     kw.update(options)
     if role is None:
         role = roles_from_boat(slot, config.boat)

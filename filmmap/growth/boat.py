@@ -46,7 +46,8 @@ import numpy as np
 from filmmap.errors import FilmmapInputError
 from filmmap.growth.calibrate import gain_matrix, normalise_zones
 
-__all__ = ["BoatFit", "EndEffect", "fit_boat", "end_shape", "DECAY_SCAN_SLOTS"]
+__all__ = ["BoatFit", "EndEffect", "fit_boat", "end_shape", "coupling_width_from_profiling",
+           "DECAY_SCAN_SLOTS"]
 
 DECAY_SCAN_SLOTS = (1.0, 1.5, 2.0, 3.0, 4.0)
 """Decay lengths of the end effect tried, slots (the one with the smallest residual wins)."""
@@ -357,3 +358,66 @@ def fit_boat(slot, offset_C, zones, weight=None, *, boat_size=None, dummy_slots=
     return BoatFit(names, absolute, zone_se, common, absolute - common, observed, tuple(ends),
                    s_u, d_u, zone_part, end_part, resid, w_u, rms, ex_zone, ex_end,
                    float(width_slots), shape, notes, zone_slots=zs)
+
+
+def coupling_width_from_profiling(slot, offset_before_C, offset_after_C, zones, trimmed_zone,
+                                  trim_K, *, shape="logistic", widths=None):
+    """Zone coupling width measured by a profiling run: one zone trimmed, the rest unchanged.
+
+    Procedure (docs/furnace.md): run the same recipe twice, the second time with one zone's
+    offset changed by ``trim_K`` and nothing else; reduce both lots; the per-slot effective
+    offsets of the two advice files differ by that zone's column of the gain matrix times
+    the trim. The width whose column fits that difference best (least squares over a scan)
+    is the furnace's coupling width.
+
+    Parameters
+    ----------
+    slot : array_like of int
+        Slots measured in both runs (1 = load end).
+    offset_before_C, offset_after_C : array_like of float
+        Effective offsets of those slots in the two runs, K (an advice's
+        ``effective_offset_C_by_slot``).
+    zones : sequence
+        Heater zones, load end first.
+    trimmed_zone : str
+        The zone whose offset was changed.
+    trim_K : float
+        The change, K (a few K, well above the run-to-run scatter).
+    shape : {"logistic", "linear"}
+        Transition shape.
+    widths : sequence of float, optional
+        Widths tried, slots (default 0 to 12 in steps of 0.25).
+
+    Returns
+    -------
+    (float, float)
+        The width (slots) and the rms misfit of its column (K).
+
+    References
+    ----------
+    .. [1] Zone-to-slot coupling model and profiling procedure: common practice, no source.
+    """
+    zs = normalise_zones(zones)
+    names = [z[0] for z in zs]
+    if trimmed_zone not in names:
+        raise FilmmapInputError(f"zone {trimmed_zone!r} is not a zone ({', '.join(names)})",
+                                field="trimmed_zone")
+    if not (math.isfinite(float(trim_K)) and abs(float(trim_K)) > 0):
+        raise FilmmapInputError("the profiling trim must be a non-zero number of K",
+                                field="trim_K")
+    s = np.asarray(slot).ravel()
+    diff = np.asarray(offset_after_C, dtype=float).ravel() - np.asarray(offset_before_C,
+                                                                         dtype=float).ravel()
+    use = np.isfinite(diff)
+    s, diff = s[use], diff[use]
+    # the common part (a run-to-run rate or time difference) is not the zone's doing
+    k = names.index(trimmed_zone)
+    best = None
+    for w in (np.arange(0.0, 12.01, 0.25) if widths is None else widths):
+        col = gain_matrix(zs, s, float(w), shape)[:, k] * float(trim_K)
+        # the trim's own amplitude is known: fit only the common offset beside it
+        resid = diff - col - (diff - col).mean()
+        rms = float(np.sqrt(np.mean(resid**2)))
+        if best is None or rms < best[1] - 1e-12:
+            best = (float(w), rms)
+    return best

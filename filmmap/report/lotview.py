@@ -197,6 +197,7 @@ class LotView:
     warnings: list
     notes: list
     suspect_sites: tuple = ()
+    recommendations: tuple = ()
 
     @property
     def product_lines(self):
@@ -511,4 +512,6 @@ def with_boat_model(view, advice):
         "edge slots, extra dummies and the flat zone come from the advice's boat model "
         "(zone errors, end effects and residual fitted together): edge slots are those the "
         "advised run still leaves out of tolerance because of an end effect"]
-    return replace(view, profile=profile, notes=notes)
+    recs = tuple({"action": str(r.get("action", "")), "answers": str(r.get("answers", ""))}
+                 for r in advice.get("recommendations", ()))
+    return replace(view, profile=profile, notes=notes, recommendations=recs)

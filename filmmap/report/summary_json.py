@@ -127,6 +127,7 @@ def summary_dict(view):
         "excluded_wafers": list(view.excluded),
         "failed_sites": len(view.failed_sites),
         "suspect_sites": len(view.suspect_sites),
+        "recommendations": [dict(r) for r in getattr(view, "recommendations", ())],
         "verdict": view.verdict,
     }
     return {"lot": lot, "wafers": wafer_rows(view), "warnings": list(view.warnings),
