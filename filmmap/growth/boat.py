@@ -44,7 +44,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.growth.calibrate import gain_matrix, normalise_zones
+from filmmap.growth.calibrate import gain_matrix, normalise_zones, slot_arrays
 
 __all__ = ["BoatFit", "EndEffect", "fit_boat", "end_shape", "coupling_width_from_profiling",
            "DECAY_SCAN_SLOTS"]
@@ -255,18 +255,11 @@ def fit_boat(slot, offset_C, zones, weight=None, *, boat_size=None, dummy_slots=
     if not zs:
         raise FilmmapInputError("at least one heater zone is needed", field="zones")
     names = tuple(z[0] for z in zs)
-    s = np.asarray(slot).ravel().astype(int)
-    d = np.asarray(offset_C, dtype=float).ravel()
-    w = np.ones(d.shape) if weight is None else np.asarray(weight, dtype=float).ravel()
-    if not (s.size == d.size == w.size):
-        raise FilmmapInputError(f"slot, offset_C and weight have {s.size}, {d.size} and {w.size} "
-                                "entries; expected one per slot", field="offset_C")
-    if np.any(~np.isfinite(w)) or np.any(w < 0):
-        raise FilmmapInputError("fit weights must be finite and >= 0", field="weight")
-    use = np.isfinite(d) & (w > 0)
-    s_u, d_u, w_u = s[use], d[use], w[use]
+    s_u, d_u, w_u = slot_arrays(slot, offset_C, weight)
+    s_u = s_u.astype(int)
     nan = float("nan")
-    size = int(boat_size) if boat_size is not None else int(s.max(initial=0))
+    size = (int(boat_size) if boat_size is not None
+            else int(np.max(np.asarray(slot).astype(int), initial=0)))
     G = gain_matrix(zs, s_u, width_slots, shape)
     observed = (w_u @ G) >= min_zone_weight if s_u.size else np.zeros(len(zs), bool)
     notes = []

@@ -502,6 +502,40 @@ class ZoneFit:
                 for n, e in zip(self.names, self.error_C)}
 
 
+def slot_arrays(slot, offset_C, weight=None):
+    """Checked slot, offset and weight arrays of the slots a fit can use.
+
+    Parameters
+    ----------
+    slot : array_like of int
+        Boat slots (1 = load end).
+    offset_C : array_like of float
+        Effective offset per slot, K (NaN = not usable).
+    weight : array_like of float, optional
+        Fit weight per slot (default 1; 0 leaves the slot out).
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray, numpy.ndarray)
+        Slots, offsets and weights of the usable slots (finite offset, weight > 0).
+
+    Raises
+    ------
+    FilmmapInputError
+        For arrays of different lengths or negative or non-finite weights.
+    """
+    s = np.asarray(slot).ravel()
+    d = np.asarray(offset_C, dtype=float).ravel()
+    w = np.ones(d.shape) if weight is None else np.asarray(weight, dtype=float).ravel()
+    if not (s.size == d.size == w.size):
+        raise FilmmapInputError(f"slot, offset_C and weight have {s.size}, {d.size} and {w.size} "
+                                "entries; expected one per slot", field="offset_C")
+    if np.any(~np.isfinite(w)) or np.any(w < 0):
+        raise FilmmapInputError("fit weights must be finite and >= 0", field="weight")
+    use = np.isfinite(d) & (w > 0)
+    return s[use], d[use], w[use]
+
+
 def fit_zones(slot, offset_C, zones, weight=None, *, width_slots=0.0, shape="logistic",
               min_zone_weight=1.0):
     """Fit one temperature error per heater zone to the per-slot effective offsets.
@@ -549,16 +583,7 @@ def fit_zones(slot, offset_C, zones, weight=None, *, width_slots=0.0, shape="log
     """
     zs = normalise_zones(zones)
     names = tuple(z[0] for z in zs)
-    s = np.asarray(slot).ravel()
-    d = np.asarray(offset_C, dtype=float).ravel()
-    w = np.ones(d.shape) if weight is None else np.asarray(weight, dtype=float).ravel()
-    if not (s.size == d.size == w.size):
-        raise FilmmapInputError(f"slot, offset_C and weight have {s.size}, {d.size} and {w.size} "
-                                "entries; expected one per slot", field="offset_C")
-    if np.any(~np.isfinite(w)) or np.any(w < 0):
-        raise FilmmapInputError("fit weights must be finite and >= 0", field="weight")
-    use = np.isfinite(d) & (w > 0)
-    s_u, d_u, w_u = s[use], d[use], w[use]
+    s_u, d_u, w_u = slot_arrays(slot, offset_C, weight)
     G = gain_matrix(zs, s_u, width_slots, shape)
     observed = (w_u @ G) >= min_zone_weight if s_u.size else np.zeros(len(zs), bool)
     absolute = np.full(len(zs), np.nan)
