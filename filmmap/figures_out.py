@@ -10,6 +10,19 @@ from filmmap.outputs import coordinate_groups
 from filmmap.wafermap.figures import lot_contact_sheet, render_wafer_pngs, save_figure
 
 
+CONTACT_SHEET_MAX_IN = 40.0
+"""Largest contact-sheet side, inches (4000 px at 100 dpi): panels shrink for big lots, so
+the sheet's memory (an RGBA canvas, 4 bytes a pixel) stays bounded (common practice, no
+source)."""
+
+
+def contact_panel_in(n_wafers, largest_in=2.0):
+    """Panel size of the contact sheet, inches: 2 in, less when the square grid would exceed
+    `CONTACT_SHEET_MAX_IN` (at 1,200 wafers, 35 columns of 1.1 in)."""
+    ncols = max(1, int(np.ceil(np.sqrt(n_wafers))))
+    return min(largest_in, CONTACT_SHEET_MAX_IN / ncols)
+
+
 def write_figures(ds, config, outdir, workers=1):
     """Render wafer maps (figures/<wafer>.png) and the contact sheet (contact_sheet.png).
 
@@ -47,6 +60,7 @@ def write_figures(ds, config, outdir, workers=1):
         fig = lot_contact_sheet(np.where(present, t, np.nan), ok & present, x, y,
                                 m.wafer_diameter_mm, m.edge_exclusion_mm,
                                 wafer_ids=[str(w) for w in wafers], slots=[int(s) for s in slots],
-                                title=f"lot {config.lot.id}: thickness (nm), common scale")
+                                title=f"lot {config.lot.id}: thickness (nm), common scale",
+                                panel_in=contact_panel_in(len(wafers)))
         written["contact_sheet.png"] = save_figure(fig, outdir / "contact_sheet.png")
     return written
