@@ -55,6 +55,20 @@ def _fault_point(name):
         os._exit(86)
 
 
+@contextlib.contextmanager
+def _late_write_errors(outdir):
+    """An OSError while writing the results (a disk filling up meanwhile, which no check
+    before the work can foresee) as an error naming the path; the staging folder is gone
+    and the previous results are untouched by then."""
+    try:
+        yield
+    except OSError as exc:
+        where = exc.filename or Path(outdir).parent
+        raise FilmmapOutputError(f"could not write the results ({exc.strerror or exc}: {where}); "
+                                 f"the previous results in {outdir} are intact, nothing was "
+                                 "replaced", file=outdir, field="-o") from None
+
+
 def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=False,
                      figure_workers=None, progress=None, protect=(), follow_output_link=False,
                      preflight=None, pending_record=None, rate_factors=None):
@@ -134,39 +148,32 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
                                                         len(sites.wafer), n_values, figures,
                                                         keep_spectra))
     # every output goes to a staging folder that replaces OUTDIR only once complete
-    try:
-        with staged_output(outdir) as stage:
-            written = write_lot(reduction, stage, keep_spectra=keep_spectra)
-            advice = write_advice(reduction.config, written, stage, rate_factors)
-            if advice is not None:
-                written.files["advice.json"] = stage / "advice.json"
-            # the boat-end verdicts follow the advice's one model of the boat when there is one
-            view = with_boat_model(lot_view(written.dataset, reduction.config,
-                                            min_sites=MIN_SITES_FOR_LOT), advice)
-            written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
-            written.files["summary.json"] = write_summary_json(view, stage)
-            written.advice = advice
-            written.view = view
-            if figures:
-                from filmmap.figures_out import write_figures
-                from filmmap.report import ReportImages, write_html_report, write_pdf_report
+    with _late_write_errors(outdir), staged_output(outdir) as stage:
+        written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+        advice = write_advice(reduction.config, written, stage, rate_factors)
+        if advice is not None:
+            written.files["advice.json"] = stage / "advice.json"
+        # the boat-end verdicts follow the advice's one model of the boat when there is one
+        view = with_boat_model(lot_view(written.dataset, reduction.config,
+                                        min_sites=MIN_SITES_FOR_LOT), advice)
+        written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
+        written.files["summary.json"] = write_summary_json(view, stage)
+        written.advice = advice
+        written.view = view
+        if figures:
+            from filmmap.figures_out import write_figures
+            from filmmap.report import ReportImages, write_html_report, write_pdf_report
 
-                written.files.update(write_figures(written.dataset, reduction.config, stage,
-                                                   workers=figure_workers or max(2, workers)))
-                images = ReportImages(view, written.dataset, stage)
-                written.files["report.html"] = write_html_report(view, written.dataset, stage,
-                                                                 images=images, advice=advice)
-                written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
-                                                               images=images, advice=advice)
-            if pending_record is not None:
-                write_text_atomic(stage / PENDING_RECORD, json.dumps(pending_record) + "\n")
-            _fault_point("after-staging")
-    except OSError as exc:
-        # a check before the work cannot foresee a disk filling up meanwhile
-        where = exc.filename or outdir.parent
-        raise FilmmapOutputError(f"could not write the results ({exc.strerror or exc}: {where}); "
-                                 f"the previous results in {outdir} are intact, nothing was "
-                                 "replaced", file=outdir, field="-o") from None
+            written.files.update(write_figures(written.dataset, reduction.config, stage,
+                                               workers=figure_workers or max(2, workers)))
+            images = ReportImages(view, written.dataset, stage)
+            written.files["report.html"] = write_html_report(view, written.dataset, stage,
+                                                             images=images, advice=advice)
+            written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
+                                                           images=images, advice=advice)
+        if pending_record is not None:
+            write_text_atomic(stage / PENDING_RECORD, json.dumps(pending_record) + "\n")
+        _fault_point("after-staging")
     _fault_point("after-publish")
     written.outdir = Path(outdir)
     return reduction, written, time.perf_counter() - t0

@@ -163,3 +163,19 @@ def test_failed_numbers_shown_as_failed(report):
     words = " ".join(check(text).text)
     assert "— (too few sites)" in words
     assert "only 4 usable sites, fewer than 5" in words
+
+
+def test_streamed_file_equals_the_rendered_string(report):
+    # report.html is written part by part (memory of one wafer section); the file must be
+    # the same page as render_html's string, but for the report-creation time
+    import re
+
+    text, _, view, out = report
+    ds, _, view, images = shared_lot()
+    advice = {"step <wet>": {"minutes": 117.5, "clipped": False}, "zone trims": [1.5, None]}
+    again = render_html(view, ds, images=images, advice=advice)
+
+    def stamp(s):
+        return re.sub(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d[+\-]\d\d:\d\d", "T", s)
+    assert stamp(text) == stamp(again)
+    assert len(text) > 10000 and text.endswith("</html>\n")

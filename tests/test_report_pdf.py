@@ -103,3 +103,70 @@ def test_pdf_write_is_atomic(lot, tmp_path, monkeypatch):
         write_pdf_report(view, ds, tmp_path, images=images)
     assert (tmp_path / "report.pdf").read_bytes() == b"%PDF-old"
     assert sorted(x.name for x in tmp_path.iterdir()) == ["report.pdf"]
+
+
+def test_page_images_are_written_as_pages_complete(tmp_path):
+    # report.pdf memory: each page's images go to the file when the page is done (not all
+    # at close), and every page still shows its own image (poppler's pdftoppm reads it back)
+    import shutil
+    import subprocess
+
+    import numpy as np
+    from matplotlib.backends.backend_pdf import PdfPages
+    from matplotlib.figure import Figure
+
+    from filmmap.report.pdf import _write_page_images_now
+
+    colours = [(255, 0, 0), (0, 160, 0), (0, 0, 255)]
+    path = tmp_path / "pages.pdf"
+    with PdfPages(path) as pdf:
+        for c in colours:
+            fig = Figure(figsize=(2, 2))
+            ax = fig.add_axes((0, 0, 1, 1))
+            ax.imshow(np.full((20, 20, 3), c, dtype=np.uint8), interpolation="none")
+            ax.set_axis_off()
+            pdf.savefig(fig)
+            _write_page_images_now(pdf)
+            assert all(isinstance(k, tuple) for k in pdf._file._images)   # none held back
+    data = path.read_bytes()
+    assert data.count(b"/Subtype /Image") == len(colours)
+    if shutil.which("pdftoppm") is None:
+        pytest.skip("pdftoppm (poppler) not installed: pages not rasterised")
+    subprocess.run(["pdftoppm", "-r", "20", str(path), str(tmp_path / "p")], check=True)
+    pages = sorted(tmp_path.glob("p*.ppm"))
+    assert len(pages) == len(colours)
+    for page, c in zip(pages, colours):
+        raw = page.read_bytes()
+        # binary PPM: "P6\nW H\n255\n" then RGB bytes; the centre pixel
+        parts = raw.split(b"\n", 3)
+        w, h = map(int, parts[1].split())
+        pix = np.frombuffer(parts[3], dtype=np.uint8).reshape(h, w, 3)
+        assert tuple(int(v) for v in pix[h // 2, w // 2]) == c
+
+
+def test_big_images_are_reduced_to_the_page_resolution():
+    # a 4000 x 3000 px sheet drawn 7 in wide is kept at PAGE_IMAGE_DPI (8-bit RGBA), and the
+    # size it is drawn at still comes from the stored PNG
+    import io
+
+    import numpy as np
+    from PIL import Image
+
+    from filmmap.figures_out import CONTACT_SHEET_MAX_IN, contact_panel_in
+    from filmmap.report.pdf import PAGE_IMAGE_DPI, _page_image
+
+    buf = io.BytesIO()
+    Image.fromarray(np.full((3000, 4000, 3), 200, dtype=np.uint8)).save(buf, format="PNG")
+    img, size = _page_image(buf.getvalue(), 7.0, 9.0)
+    assert size == (4000, 3000)
+    assert img.dtype == np.uint8 and img.shape[2] == 4
+    assert img.shape[1] <= 7.0 * PAGE_IMAGE_DPI and img.shape[0] <= 5.25 * PAGE_IMAGE_DPI + 1
+    assert img.shape[1] >= 7.0 * PAGE_IMAGE_DPI - 2          # not reduced further than needed
+    small = io.BytesIO()
+    Image.fromarray(np.zeros((50, 80, 3), dtype=np.uint8)).save(small, format="PNG")
+    assert _page_image(small.getvalue(), 7.0, 9.0)[0].shape[:2] == (50, 80)   # kept as is
+    # the contact sheet of a big lot stays within its largest side
+    for n in (1, 44, 300, 1200):
+        cols = int(np.ceil(np.sqrt(n)))
+        assert cols * contact_panel_in(n) <= CONTACT_SHEET_MAX_IN + 1e-9
+    assert contact_panel_in(44) == 2.0

@@ -288,13 +288,13 @@ def _reduce_many(args, trims, protect, preflight, pending):
 
 
 def cmd_history(args):
+    from filmmap.bounds import MAX_BASELINE_LOTS, check_in_range
     from filmmap.history import (control_charts, history_figures, lots, next_run_from_history,
                                  save_chart, write_history_html)
-    from filmmap.io.guard import (check_name_lengths, check_outputs_spare_inputs,
+    from filmmap.io.guard import (check_name_lengths, check_output_location,
+                                  check_outputs_spare_inputs, estimate_output_bytes,
                                   history_inputs, output_target)
     from filmmap.io.publish import check_outdir, staged_output
-
-    from filmmap.bounds import MAX_BASELINE_LOTS, check_in_range
 
     # every value before any work (the control-chart code would clip a bad baseline silently)
     check_in_range(args.baseline, "--baseline", 2, MAX_BASELINE_LOTS, "--baseline (lots)")
@@ -302,6 +302,7 @@ def cmd_history(args):
     check_in_range(args.weight, "--weight", 0.0, 1.0, "--weight", lo_open=True)
     outdir = output_target(args.output, args.follow_output_link)
     check_outdir(outdir)
+    check_output_location(outdir, estimate_output_bytes(0, 0, figures=False))
     if args.history:
         check_name_lengths(args.history, "--history")
     inputs = history_inputs(args.history)

@@ -21,7 +21,7 @@ import base64
 import html
 from pathlib import Path
 
-from filmmap.io.atomic import write_text_atomic
+from filmmap.io.atomic import atomic_path
 from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS_TITLE
 from filmmap.report.formatting import (MISSING, compact_dict_text, flag_text, fmt, fmt_in_spec,
                                        fmt_wafer, is_long_scalar_dict, scalar_text, wtw_rows)
@@ -233,6 +233,28 @@ def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
     -------
     str
     """
+    parts = []
+    _render(parts.append, view, ds, images, outdir, advice, dpi)
+    return "".join(parts)
+
+
+class _Sink:
+    """Where `_render` puts the parts: a list (`render_html`) or straight into the file."""
+
+    def __init__(self, write):
+        self.append = write
+
+    def extend(self, parts):
+        for part in parts:
+            self.append(part)
+
+
+def _render(emit, view, ds, images, outdir, advice, dpi):
+    """The parts of the report, in order, each handed to ``emit`` (str -> None) when made.
+
+    Streaming the parts keeps the memory of writing report.html to one wafer's section,
+    instead of the whole page (about 0.1 MB a wafer) held as parts and joined once more.
+    """
     images = images or ReportImages(view, ds, outdir, dpi=dpi)
     prov = provenance(ds, advice)
     lot = view.lot_id
@@ -247,7 +269,7 @@ def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
     if advice:
         nav.append(("advice", "Advice"))
     nav.append(("provenance", "Provenance"))
-    p = []
+    p = _Sink(emit)
     p.append("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
              "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
              f"<title>filmmap report: lot {e(lot)}</title><style>{_CSS}</style></head><body>")
@@ -351,7 +373,6 @@ def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
     p.append("</section>")
     p.append(f"<footer>filmmap report of lot {e(lot)}; {e(prov['report_software'])}. "
              "Advisory only: see the cautions at the top.</footer></body></html>\n")
-    return "".join(p)
 
 
 def write_html_report(view, ds, outdir, *, images=None, advice=None, dpi=100):
@@ -371,8 +392,11 @@ def write_html_report(view, ds, outdir, *, images=None, advice=None, dpi=100):
     dpi : float
         Resolution of images rendered here.
     """
-    text = render_html(view, ds, images=images, outdir=outdir, advice=advice, dpi=dpi)
-    return write_text_atomic(Path(outdir) / "report.html", text)
+    path = Path(outdir) / "report.html"
+    # the file is closed before atomic_path fsyncs and renames it (with-items exit in reverse)
+    with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8", newline="") as fh:
+        _render(fh.write, view, ds, images, outdir, advice, dpi)
+    return path
 
 
 __all__ = ["render_html", "write_html_report", "SLOT_PROFILE_IMG_ID", "SLOT_PROFILE_ALT", "e"]

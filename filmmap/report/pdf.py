@@ -37,7 +37,7 @@ import textwrap
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import matplotlib.image as mpimg
+import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
@@ -423,10 +423,33 @@ def _draw_lines(fig, lines, top_in):
     return y
 
 
+PAGE_IMAGE_DPI = 200
+"""Resolution, dots per inch, at most, of an image placed on a page (print quality)."""
+
+
+def _page_image(png, width_in, height_in):
+    """The PNG decoded as 8-bit RGBA, reduced to `PAGE_IMAGE_DPI` at its size on the page.
+
+    A big lot's contact sheet is thousands of pixels wide; decoded as floats (what
+    ``matplotlib.image.imread`` returns) it took hundreds of MB, for detail the page
+    cannot show.  Pillow (a matplotlib dependency) decodes to 8 bits and reduces it.
+    """
+    from PIL import Image
+
+    with Image.open(io.BytesIO(png)) as im:
+        im = im.convert("RGBA")
+        scale = min(width_in / im.width, height_in / im.height)
+        most = (max(1, int(im.width * scale * PAGE_IMAGE_DPI)),
+                max(1, int(im.height * scale * PAGE_IMAGE_DPI)))
+        size = im.size
+        if im.width > most[0] or im.height > most[1]:
+            im.thumbnail(most, Image.LANCZOS)
+        return np.asarray(im), size
+
+
 def _draw_png(fig, png, top_in, height_in, width_in=None):
     width_in = width_in or PAGE_IN[0] - 2 * _MARGIN_IN
-    img = mpimg.imread(io.BytesIO(png), format="png")
-    h_px, w_px = img.shape[:2]
+    img, (w_px, h_px) = _page_image(png, width_in, height_in)   # size as drawn, not as stored
     scale = min(width_in / w_px, height_in / h_px)
     w, h = w_px * scale, h_px * scale
     left = (PAGE_IN[0] - w) / 2
@@ -537,4 +560,46 @@ def write_pdf_report(view, ds, outdir, *, images=None, advice=None, dpi=100):
         with PdfPages(tmp, metadata=meta) as pdf:
             for n, page in enumerate(plan, start=1):
                 pdf.savefig(_render_page(page, view, ds, images, n, len(plan)))
+                _write_page_images_now(pdf)
     return path
+
+
+def _write_page_images_now(pdf):
+    """Write the images of the pages so far into the file now, and let them go.
+
+    matplotlib's PDF writer keeps every page's images (decoded RGBA arrays) until the file
+    is closed, so the memory of report.pdf grew with the wafer count (about 1.4 MB a wafer
+    map, gigabytes for a 1,200-wafer lot).  An image is its own PDF object, referenced by
+    name from the pages, so it can be written as soon as its page is complete (between
+    pages no content stream is open).  Each written image keeps only its name and object
+    number, under a key that no live image id can take, for the XObject table written at
+    the end; the writer's `writeImages` then writes the remaining ones only.  With a
+    matplotlib that lacks these internals the images simply stay until the end, as before.
+    """
+    f = getattr(pdf, "_file", None)
+    images = getattr(f, "_images", None)
+    if not (isinstance(images, dict) and hasattr(f, "_unpack") and hasattr(f, "_writeImg")
+            and hasattr(f, "reserveObject") and getattr(f, "currentstream", 0) is None):
+        return
+    for key in [k for k in images if not isinstance(k, tuple)]:
+        image, name, ob = images.pop(key)
+        data, alpha = f._unpack(image)
+        smask = None
+        if alpha is not None:
+            smask = f.reserveObject("smask")
+            f._writeImg(alpha, smask.id)
+        f._writeImg(data, ob.id, smask)
+        images[("written", name)] = (None, name, ob)
+    if "writeImages" not in vars(f):
+        write_remaining = f.writeImages
+
+        def write_images():
+            written = {k: v for k, v in images.items() if isinstance(k, tuple)}
+            for k in written:
+                del images[k]
+            try:
+                write_remaining()
+            finally:
+                images.update(written)
+
+        f.writeImages = write_images

@@ -36,6 +36,11 @@ from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_polar_surface
 from filmmap.workers import end_with_parent
 
+RENDER_CHUNK = 8
+"""Wafer maps per task sent to a figure worker; with at most 4 chunks per worker in flight,
+the memory of the queue is bounded, not proportional to the lot (common practice, no
+source)."""
+
 #: Colour maps accepted by the figure functions (perceptually uniform).
 ALLOWED_CMAPS = ("viridis", "cividis", "viridis_r", "cividis_r")
 
@@ -466,20 +471,27 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     s = tps_polar_surface(t, good, x, y, d, ee) if surface is None else surface
-    meshes = [_mesh(s, i, W) for i in range(W)]
     if common_scale:
         use = good & inside_edge_exclusion(x, y, d, ee)
-        lo, hi = _value_range(*[m[2] for m in meshes], t[use])
+        lo, hi = _value_range(np.asarray(s.thickness_nm), t[use])   # every wafer's mesh values
         kwargs.setdefault("vmin", lo)
         kwargs.setdefault("vmax", hi)
-    tasks = []
-    for i in range(W):
+
+    def task(i):
+        # made when submitted, not all at once: a lot's meshes and pickled tasks grew with
+        # the wafer count (hundreds of MB at 1,200 wafers)
         kw = dict(kwargs, wafer_id=ids[i], slot=None if slots is None else slots[i],
-                  surface=meshes[i])
-        tasks.append((out / names[i], (t[i], good[i], x, y, d, ee), kw))
+                  surface=_mesh(s, i, W))
+        return (out / names[i], (t[i], good[i], x, y, d, ee), kw)
+
     if workers == 1 or W == 1:
-        return [Path(_render_task(task)) for task in tasks]
-    chunk = max(1, W // (4 * workers))
+        return [Path(_render_task(task(i))) for i in range(W)]
+    chunk = max(1, min(W // (4 * workers), RENDER_CHUNK))
+    window = 4 * workers * chunk          # tasks in flight at most
+    paths = []
     with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context,
                              initializer=end_with_parent) as pool:
-        return [Path(p) for p in pool.map(_render_task, tasks, chunksize=chunk)]
+        for start in range(0, W, window):
+            batch = [task(i) for i in range(start, min(W, start + window))]
+            paths += [Path(p) for p in pool.map(_render_task, batch, chunksize=chunk)]
+    return paths
