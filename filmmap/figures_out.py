@@ -10,19 +10,28 @@ from filmmap.outputs import coordinate_groups
 from filmmap.wafermap.figures import lot_contact_sheet, render_wafer_pngs, save_figure
 
 
-def write_figures(ds, config, outdir, workers=1):
+def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=None, notes=None):
     """Render wafer maps (figures/<wafer>.png) and the contact sheet (contact_sheet.png).
+
+    Wafers with different site layouts (a missing site, another pattern) are each mapped
+    from their own sites; a missing site is never drawn, a failed site is a white X.
 
     Parameters
     ----------
     ds : xarray.Dataset
         The lot dataset (see `filmmap.io.results.lot_dataset`).
     config : LotConfig
-        For the wafer diameter and edge exclusion.
+        For the wafer diameter, the edge exclusion and the lot id.
     outdir : path-like
         Output folder.
     workers : int
         Processes rendering wafer maps.
+    out_of_spec : iterable of str
+        Wafer ids marked out of spec on the contact sheet.
+    progress : callable(total) -> object with update(n) and close(), optional
+        Progress display factory for the wafer maps.
+    notes : list, optional
+        Receives plain-text notes on what was left out of the figures (for the console).
 
     Returns
     -------
@@ -30,23 +39,38 @@ def write_figures(ds, config, outdir, workers=1):
     """
     outdir = Path(outdir)
     m = config.measurement
+    lot_id = str(config.lot.id)
     t, ok = ds["thickness"].values, ds["fit_ok"].values
     wafers, slots = ds.wafer.values, ds.slot.values
+    notes = [] if notes is None else notes
     written = {}
     fig_dir = outdir / "figures"
     groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
-    for rows, x, y, present in groups:
-        paths = render_wafer_pngs(fig_dir, np.where(present, t[rows], np.nan), ok[rows] & present,
-                                  x, y, m.wafer_diameter_mm, m.edge_exclusion_mm,
-                                  wafer_ids=[str(w) for w in wafers[rows]],
-                                  slots=[int(s) for s in slots[rows]], workers=workers)
-        for w, path in zip(wafers[rows], paths):
-            written[f"figures/{Path(path).name}"] = path
-    if len(groups) == 1:
-        rows, x, y, present = groups[0]
-        fig = lot_contact_sheet(np.where(present, t, np.nan), ok & present, x, y,
-                                m.wafer_diameter_mm, m.edge_exclusion_mm,
-                                wafer_ids=[str(w) for w in wafers], slots=[int(s) for s in slots],
-                                title=f"lot {config.lot.id}: thickness (nm), common scale")
-        written["contact_sheet.png"] = save_figure(fig, outdir / "contact_sheet.png")
+    if len(groups) > 1:
+        notes.append(f"the wafers have {len(groups)} different site layouts (missing sites): "
+                     "each wafer is mapped from its own sites")
+    bar = progress(len(wafers)) if progress is not None else None
+    try:
+        for rows, x, y, present in groups:
+            paths = render_wafer_pngs(
+                fig_dir, np.where(present, t[rows], np.nan), ok[rows] & present, x, y,
+                m.wafer_diameter_mm, m.edge_exclusion_mm,
+                wafer_ids=[str(w) for w in wafers[rows]], slots=[int(s) for s in slots[rows]],
+                workers=workers, present=present, lot_id=lot_id,
+                progress=bar.update if bar is not None else None)
+            for path in paths:
+                written[f"figures/{Path(path).name}"] = path
+    finally:
+        if bar is not None:
+            bar.close()
+    no_fit = [str(w) for w, okw in zip(wafers, ok) if not np.any(okw)]
+    if no_fit:
+        notes.append(f"{len(no_fit)} wafer map(s) show no thickness (no accepted fit): "
+                     + ", ".join(no_fit[:8]) + (" ..." if len(no_fit) > 8 else ""))
+    oos = set(map(str, out_of_spec))
+    fig = lot_contact_sheet(t, ok, ds["x_mm"].values, ds["y_mm"].values,
+                            m.wafer_diameter_mm, m.edge_exclusion_mm,
+                            wafer_ids=[str(w) for w in wafers], slots=[int(s) for s in slots],
+                            out_of_spec=[str(w) in oos for w in wafers], lot_id=lot_id)
+    written["contact_sheet.png"] = save_figure(fig, outdir / "contact_sheet.png")
     return written

@@ -1,6 +1,7 @@
 """Wafer-map figures: PNG files, sizes, colour maps, common lot scale, atomic writes."""
 
 import os
+from pathlib import Path
 
 import matplotlib.image as mpimg
 import numpy as np
@@ -110,19 +111,21 @@ def test_parallel_render(tmp_path):
                           wafer_ids=["a", "a", "b"])
 
 
-def test_atomic_write_keeps_old_file_on_failure(tmp_path):
-    # Python docs, os.replace: the destination changes only when the new file is complete
+def test_atomic_write_keeps_old_file_on_failure(tmp_path, monkeypatch):
+    # Python docs, os.replace: the destination changes only when the new file is complete;
+    # a failure after the temporary file was written leaves the old file and no temporary
+    import filmmap.wafermap.figures as figmod
+
     dest = tmp_path / "w.png"
     dest.write_bytes(b"old")
+    fig = figmod.Figure(figsize=(1, 1), dpi=20)
 
-    class Broken:
-        dpi = 72
+    def no_rename(src, dst):
+        assert Path(src).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"   # complete PNG written
+        raise RuntimeError("disk full")
 
-        def savefig(self, fh, **kwargs):
-            fh.write(b"partial")
-            raise RuntimeError("disk full")
-
+    monkeypatch.setattr(figmod.os, "replace", no_rename)
     with pytest.raises(RuntimeError):
-        save_figure(Broken(), dest)
+        save_figure(fig, dest)
     assert dest.read_bytes() == b"old"
     assert os.listdir(tmp_path) == ["w.png"]

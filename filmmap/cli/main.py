@@ -38,7 +38,13 @@ def build_parser():
     red.add_argument("--applied-trims", action="append", default=[], metavar="ZONE=KELVIN",
                      help="zone trims that were in force during this run (for run-to-run "
                           "control), e.g. --applied-trims load=+2.2 (repeatable)")
-    red.add_argument("--no-figures", action="store_true", help="skip the PNG figures")
+    red.add_argument("--no-figures", action="store_true",
+                     help="skip the PNG wafer maps and contact sheet (report.html and report.pdf "
+                          "are still written, without maps; see --no-report)")
+    red.add_argument("--no-report", action="store_true",
+                     help="skip report.html and report.pdf")
+    red.add_argument("--pdf-wafer-pages", action="store_true",
+                     help="one page per wafer in report.pdf (default: an index of the wafers)")
     red.add_argument("--follow-output-link", action="store_true",
                      help="OUTDIR may be a symbolic link: replace the folder it points to and "
                           "keep the link (without this option a link is refused)")
@@ -81,7 +87,9 @@ def build_parser():
     demo = sub.add_parser("demo", help="generate the invented demo lot and reduce it")
     demo.add_argument("-o", "--output", default="filmmap-demo", metavar="DIR",
                       help="folder for the demo lot (DIR/lot) and its results (DIR/results)")
-    demo.add_argument("--no-figures", action="store_true", help="skip the PNG figures")
+    demo.add_argument("--no-figures", action="store_true",
+                      help="skip the PNG wafer maps and contact sheet (the reports are still "
+                           "written, without maps)")
     demo.add_argument("--quiet", action="store_true")
     demo.add_argument("--debug", action="store_true", help="show tracebacks")
     return parser
@@ -89,17 +97,20 @@ def build_parser():
 
 def _progress_bar(total, desc):
     from tqdm import tqdm
-    return tqdm(total=total, desc=desc, unit="wafer", leave=False, disable=None)
+    unit = "page" if desc.endswith(".pdf") else "wafer"
+    return tqdm(total=total, desc=desc, unit=unit, leave=False, disable=None)
 
 
 def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_spectra=False,
-               figure_workers=None, protect=(), follow_output_link=False):
-    """`filmmap.pipeline.reduce_to_folder` with a progress bar unless quiet."""
+               figure_workers=None, protect=(), follow_output_link=False, report=True,
+               pdf_wafer_pages=False):
+    """`filmmap.pipeline.reduce_to_folder` with progress bars (fitting, maps, report.pdf)."""
     from filmmap.pipeline import reduce_to_folder
 
     return reduce_to_folder(lotfile, outdir, workers, figures, keep_spectra, figure_workers,
-                            progress=None if quiet else (lambda n: _progress_bar(n, "fitting")),
-                            protect=protect, follow_output_link=follow_output_link)
+                            progress=None if quiet else _progress_bar,
+                            protect=protect, follow_output_link=follow_output_link,
+                            report=report, pdf_wafer_pages=pdf_wafer_pages)
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -108,7 +119,7 @@ def print_advice(advice, stream=sys.stdout):
     p(f"  advice (advisory only): {advice['adjust_step']} {advice['minutes_now']:.1f} -> "
       f"{advice['minutes_next']:.1f} min")
     if advice["zone_offsets_C"]:
-        p("; zone trims " + ", ".join(f"{k} {v:+.2f} C" for k, v in advice["zone_offsets_C"].items()))
+        p("; zone trims " + ", ".join(f"{k} {v:+.2f} K" for k, v in advice["zone_offsets_C"].items()))
     p("\n")
     now, nxt = advice["predicted_wtw_pct_now"], advice["predicted_wtw_pct_next"]
     if now is not None and nxt is not None:
@@ -132,9 +143,15 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
         p(f"  warning: {w}\n")
     view = written.view
     if view is not None:
+        from filmmap.report.decision import decision
+
+        for line in decision(view, written.advice).lines():   # same block as report page 1
+            p(f"  {line}\n")
         p(f"  verdict: {view.verdict}\n")
         for w in view.warnings[:5]:
             p(f"  warning: {w}\n")
+    for note in getattr(written, "figure_notes", None) or ():
+        p(f"  figures: {note}\n")
     if "role" in ds.coords:
         prod = ds["mean_nm"].where(ds["role"] == "product")
         if prod.notnull().any():
@@ -168,7 +185,9 @@ def cmd_reduce(args):
     reduction, written, seconds = run_reduce(args.lotfile[0], args.output, args.workers,
                                              not args.no_figures, args.quiet, args.keep_spectra,
                                              protect=protect,
-                                             follow_output_link=args.follow_output_link)
+                                             follow_output_link=args.follow_output_link,
+                                             report=not args.no_report,
+                                             pdf_wafer_pages=args.pdf_wafer_pages)
     if not args.quiet:
         print_summary(reduction, written, seconds)
     if not args.no_history:

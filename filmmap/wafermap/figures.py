@@ -80,6 +80,15 @@ def wafer_outline(diameter_mm, notch_depth_mm=None, n_points=361):
     return x, y
 
 
+def _present_sites(x_mm, y_mm, present):
+    """(x, y, present): coordinates with missing sites at 0 (never drawn) and the mask."""
+    x = np.asarray(x_mm, dtype=float)
+    y = np.asarray(y_mm, dtype=float)
+    finite = np.isfinite(x) & np.isfinite(y)
+    present = finite if present is None else np.asarray(present, bool) & finite
+    return np.where(finite, x, 0.0), np.where(finite, y, 0.0), present
+
+
 def _value_range(*arrays):
     vals = np.concatenate([np.asarray(a, dtype=float).ravel() for a in arrays])
     vals = vals[np.isfinite(vals)]
@@ -111,30 +120,71 @@ def _mesh(surface, i, n_wafers):
     return surface.x_mm, surface.y_mm, z
 
 
+#: Marker of a site whose fit failed (drawn over the map; listed in the reports).
+FAILED_MARKER = dict(ls="none", marker="X", ms=7.5, mfc="white", mec="black", mew=0.9)
+#: Marker of a site outside the edge exclusion (measured, not used).
+EXCLUDED_MARKER = dict(ls="none", marker="o", ms=3.0, mfc="none", mec="0.35", mew=0.6)
+
+
+#: Colour bands per colour-bar tick interval: fine enough that noise in the sites does not
+#: make blobs of one colour (the bands read as a continuous scale; common practice, no source).
+BANDS_PER_TICK = 4
+
+
+def _fine_levels(bounds):
+    """Contour levels: each tick interval of ``bounds`` split into `BANDS_PER_TICK` bands."""
+    bounds = np.asarray(bounds, dtype=float)
+    return np.linspace(bounds[0], bounds[-1], BANDS_PER_TICK * (bounds.size - 1) + 1)
+
+
+def _shade(ax, gx, gy, z, norm, cmap, levels):
+    """Filled contours on fine bands (`_fine_levels` of the tick boundaries ``levels``).
+
+    A fresh Normalize per panel: a shared one makes matplotlib re-run a callback of every
+    earlier panel for each new one (contact-sheet time growing with the square of the
+    wafers).
+    """
+    return ax.contourf(gx, gy, np.ma.masked_invalid(z), levels=_fine_levels(levels), cmap=cmap,
+                       norm=Normalize(norm.vmin, norm.vmax), extend="both")
+
+
 def _draw_wafer(ax, diameter_mm, edge_exclusion_mm, gx, gy, z, x, y, t, use, norm, cmap,
-                levels, labels, value_fmt, fontsize):
-    """Contours, outline, edge-exclusion ring and sites on one axes; return the mappable."""
+                levels, labels, value_fmt, fontsize, present=None, failed=None):
+    """Map, outline, edge-exclusion ring and sites on one axes; return the mappable.
+
+    ``present`` marks the sites the wafer has (a missing site is not drawn at all);
+    ``failed`` the measured sites whose fit failed (a white X, clearly not data).
+    """
     r = diameter_mm / 2
+    present = np.ones(x.shape, bool) if present is None else np.asarray(present, bool)
+    failed = (present & ~np.isfinite(t)) if failed is None else np.asarray(failed, bool) & present
     mappable = None
     if z is not None and np.isfinite(z).sum() >= 4:
-        mappable = ax.contourf(gx, gy, np.ma.masked_invalid(z), levels=levels, cmap=cmap,
-                               norm=norm, extend="both")
+        mappable = _shade(ax, gx, gy, z, norm, cmap, levels)
     ox, oy = wafer_outline(diameter_mm)
     ax.plot(ox, oy, color="black", lw=1.0)
     if edge_exclusion_mm > 0:
         ax.add_patch(Circle((0.0, 0.0), r - edge_exclusion_mm, fill=False, ls="--", lw=0.7,
                             ec="0.35"))
     if mappable is None:   # no map (too few sites): colour the sites themselves
-        mappable = ax.scatter(x[use], y[use], c=t[use], cmap=cmap, norm=norm, s=30,
+        mappable = ax.scatter(x[use], y[use], c=t[use], cmap=cmap,
+                              norm=Normalize(norm.vmin, norm.vmax), s=30,
                               edgecolors="black", linewidths=0.4)
     ax.plot(x[use], y[use], ls="none", marker=".", ms=2.5, color="black")
-    ax.plot(x[~use], y[~use], ls="none", marker="x", ms=3.5, color="0.5")
+    outside = present & ~use & ~failed
+    if outside.any():
+        ax.plot(x[outside], y[outside], **EXCLUDED_MARKER)
+    if failed.any():
+        ax.plot(x[failed], y[failed], **FAILED_MARKER)
     if labels:
-        dy = 0.022 * r
-        for xi, yi, ti, ui in zip(x, y, t, use):
+        # labels above the site, below it near the top edge, so none crosses the outline
+        dy = 0.03 * r
+        for xi, yi, ti, ui in zip(x[present], y[present], t[present], use[present]):
             if np.isfinite(ti):
-                ax.text(xi, yi + dy, value_fmt.format(ti), ha="center", va="bottom",
-                        fontsize=fontsize, color="black" if ui else "0.45")
+                up = yi < 0.82 * r
+                ax.text(xi, yi + (dy if up else -dy), value_fmt.format(ti), ha="center",
+                        va="bottom" if up else "top", fontsize=fontsize,
+                        color="black" if ui else "0.35")
     ax.set_xlim(-1.05 * r, 1.05 * r)
     ax.set_ylim(-1.05 * r, 1.05 * r)
     ax.set_aspect("equal")
@@ -144,7 +194,7 @@ def _draw_wafer(ax, diameter_mm, edge_exclusion_mm, gx, gy, z, x, y, t, use, nor
 def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                      wafer_id="", slot=None, surface=None, vmin=None, vmax=None,
                      cmap="viridis", levels=12, figsize_in=(6.4, 5.6), dpi=100,
-                     value_fmt="{:.1f}"):
+                     value_fmt="{:.1f}", lot_id="", present=None):
     """Thickness map of one wafer as a matplotlib Figure (Agg canvas, no pyplot).
 
     Parameters
@@ -177,6 +227,12 @@ def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_m
         Resolution in dots per inch.
     value_fmt : str
         Format of the site values (nm).
+    lot_id : str
+        Lot id, shown in the title (every figure names its lot).
+    present : array_like of bool, shape (n_sites,), optional
+        Sites the wafer has; a missing site (False) is not drawn (its coordinates may be
+        anything). Default: every site with finite coordinates. A present site without
+        an accepted fit is drawn as a white X (failed).
 
     Returns
     -------
@@ -192,7 +248,9 @@ def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_m
     """
     d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
     cm = _colormap(cmap)
+    x_mm, y_mm, present = _present_sites(x_mm, y_mm, present)
     t, good, x, y, single = lot_arrays(thickness_nm, ok, x_mm, y_mm)
+    good = good & present
     if not single and t.shape[0] != 1:
         raise FilmmapInputError("wafer_map_figure draws one wafer: thickness must be 1-D",
                                 field="thickness_nm")
@@ -210,34 +268,53 @@ def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_m
     FigureCanvasAgg(fig)
     ax = fig.add_axes((0.05, 0.05, 0.72, 0.81))
     cax = fig.add_axes((0.80, 0.14, 0.03, 0.64))
+    failed = present & ~good
     mappable = _draw_wafer(ax, d, ee, gx, gy, z, x, y, t, use, norm, cm, bounds, True,
-                           value_fmt, 5.5)
+                           value_fmt, 6.0, present=present, failed=failed)
     fig.colorbar(mappable, cax=cax, ticks=bounds[::max(1, len(bounds) // 7)])
+    if failed.any():
+        from matplotlib.lines import Line2D
+
+        ax.legend(handles=[Line2D([], [], label=f"failed fit ({int(failed.sum())} site"
+                                  f"{'s' if failed.sum() != 1 else ''})", **FAILED_MARKER)],
+                  loc="upper right", bbox_to_anchor=(1.02, 1.02), fontsize=7, frameon=False)
     cax.set_ylabel(COLORBAR_LABEL, fontsize=9)
     cax.tick_params(labelsize=7)
     ax.set_axis_off()       # tick machinery is most of the render time; the notch orients
     ax.text(-1.04 * d / 2, -1.04 * d / 2, f"Ø {d:g} mm, edge exclusion {ee:g} mm, notch at -y",
             fontsize=7, color="0.3", ha="left", va="bottom")
     st = within_wafer_stats(t, good, x, y, d, ee)
-    head = f"Wafer {wafer_id}" + ("" if slot is None else f"  slot {slot}")
+    head = (f"Lot {lot_id} · " if lot_id else "") + f"Wafer {wafer_id}" + (
+        "" if slot is None else f"  slot {slot}")
     fig.suptitle(f"{head}\nmean {st.mean_nm:.2f} ± {st.sigma_nm:.2f} nm (1σ), "
                  f"NU {st.nu_pct:.2f} %, {int(st.sites_used)} sites", fontsize=10, parse_math=False)
     return fig
 
 
+def _layout_groups(x2, y2):
+    """Rows of wafers sharing one site layout (NaN = missing site), as a list of arrays."""
+    key = np.nan_to_num(np.stack([x2, y2], axis=1), nan=np.inf)
+    _, inverse = np.unique(key.reshape(key.shape[0], -1), axis=0, return_inverse=True)
+    inverse = inverse.ravel()
+    return [np.flatnonzero(inverse == g) for g in np.unique(inverse)]
+
+
 def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                       wafer_ids=None, slots=None, surface=None, ncols=None, cmap="viridis",
-                      levels=12, panel_in=2.0, dpi=100, title=None):
+                      levels=12, panel_in=2.0, dpi=100, title=None, out_of_spec=None,
+                      lot_id=""):
     """Every wafer of a lot in a grid, on one common colour scale with one colour bar.
 
     Parameters
     ----------
     thickness_nm : array_like, shape (W, n_sites)
-        Thickness in nm, NaN for a missing site.
+        Thickness in nm, NaN for a missing site or a failed fit.
     ok : array_like of bool or None
         Fit-quality flag broadcastable to ``thickness_nm``; None = all ok.
-    x_mm, y_mm : array_like, shape (n_sites,)
-        Site coordinates in mm.
+    x_mm, y_mm : array_like, shape (n_sites,) or (W, n_sites)
+        Site coordinates in mm: one layout for the lot, or one per wafer with NaN where
+        a wafer lacks a site (uneven layouts: each wafer is mapped from its own sites,
+        and a missing site is not drawn).
     diameter_mm, edge_exclusion_mm : float
         Wafer diameter and edge exclusion in mm.
     wafer_ids : sequence of str, length W, optional
@@ -245,19 +322,23 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     slots : sequence of int, length W, optional
         Slots shown with the ids.
     surface : PolarSurface or Surface, optional
-        Precomputed map of the lot; default `tps_polar_surface`.
+        Precomputed map of the lot (one layout only); default `tps_polar_surface`.
     ncols : int, optional
         Panels per row; default ceil(sqrt(W)).
     cmap : str
         One of `ALLOWED_CMAPS`.
     levels : int
-        Filled contour bands.
+        Colour-bar ticks (about ``levels`` / 2) and the bands of the contour fallback.
     panel_in : float
         Panel size in inches.
     dpi : float
         Resolution in dots per inch.
     title : str, optional
-        Sheet title.
+        Sheet title (default names the lot).
+    out_of_spec : sequence of bool, length W, optional
+        Wafers whose mean is out of spec: a thick frame and "OUT OF SPEC" in the label.
+    lot_id : str
+        Lot id for the default title.
 
     Returns
     -------
@@ -270,19 +351,38 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     """
     d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
     cm = _colormap(cmap)
-    t, good, x, y, _ = lot_arrays(thickness_nm, ok, x_mm, y_mm)
-    W = t.shape[0]
+    t = np.atleast_2d(np.asarray(thickness_nm, dtype=float))
+    W, n_sites = t.shape
+    x2 = np.broadcast_to(np.asarray(x_mm, dtype=float), (W, n_sites))
+    y2 = np.broadcast_to(np.asarray(y_mm, dtype=float), (W, n_sites))
+    ok2 = np.ones((W, n_sites), bool) if ok is None else np.broadcast_to(
+        np.asarray(ok, bool), (W, n_sites))
     ids = [str(i + 1) for i in range(W)] if wafer_ids is None else [str(v) for v in wafer_ids]
     if len(ids) != W or (slots is not None and len(slots) != W):
         raise FilmmapInputError(f"wafer_ids and slots need one entry per wafer ({W})",
                                 field="wafer_ids")
-    use = good & inside_edge_exclusion(x, y, d, ee)
-    s = tps_polar_surface(t, good, x, y, d, ee) if surface is None else surface
-    meshes = [_mesh(s, i, W) for i in range(W)]
-    bounds, norm = _levels(*_value_range(*[m[2] for m in meshes], t[use]), levels)
-    st = within_wafer_stats(t, good, x, y, d, ee)
+    oos = np.zeros(W, bool) if out_of_spec is None else np.asarray(out_of_spec, bool)
+    # one surface computation per site layout (usually one for the whole lot)
+    groups = _layout_groups(x2, y2)
+    if surface is not None and len(groups) != 1:
+        raise FilmmapInputError("a precomputed surface needs one site layout for the lot",
+                                field="surface")
+    per = [None] * W
+    for rows in groups:
+        x, y, present = _present_sites(x2[rows[0]], y2[rows[0]], None)
+        tg, good, x, y, _ = lot_arrays(t[rows], ok2[rows], x, y)
+        good = good & present
+        use = good & inside_edge_exclusion(x, y, d, ee)
+        s = tps_polar_surface(tg, good, x, y, d, ee) if surface is None else surface
+        nu = within_wafer_stats(tg, good, x, y, d, ee).nu_pct
+        for k, i in enumerate(rows):
+            per[i] = (_mesh(s, k, len(rows)), x, y, tg[k], use[k], present, present & ~good[k],
+                      float(np.atleast_1d(nu)[k]))
+    lo, hi = _value_range(*[p[0][2] for p in per], *[p[3][p[4]] for p in per])
+    bounds, norm = _levels(lo, hi, levels)
     ncols = int(np.ceil(np.sqrt(W))) if ncols is None else max(1, int(ncols))
     nrows = max(1, int(np.ceil(W / ncols)))
+    title = title or (f"Lot {lot_id}: thickness (nm), common scale" if lot_id else None)
     bar_in, head_in, cap_in = 1.1, 0.5 if title else 0.15, 0.45
     width = ncols * panel_in + bar_in
     height = nrows * (panel_in + cap_in) + head_in
@@ -294,10 +394,17 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
         bottom = 1 - (head_in + (row + 1) * (panel_in + cap_in) - 0.05) / height
         ax = fig.add_axes((left + 0.04 * panel_in / width, bottom,
                            0.92 * panel_in / width, 0.92 * panel_in / height))
-        _draw_wafer(ax, d, ee, *meshes[i], x, y, t[i], use[i], norm, cm, bounds, False, "", 0)
+        mesh, x, y, ti, ui, pi, fi, nu = per[i]
+        _draw_wafer(ax, d, ee, *mesh, x, y, ti, ui, norm, cm, bounds, False, "", 0,
+                    present=pi, failed=fi)
         ax.set_axis_off()
         label = ids[i] + ("" if slots is None else f" (slot {slots[i]})")
-        ax.set_title(f"{label}\nNU {st.nu_pct[i]:.2f} %", fontsize=7, pad=2, parse_math=False)
+        nu_text = f"NU {nu:.2f} %" if np.isfinite(nu) else "NU —"
+        if oos[i]:
+            ax.add_patch(Circle((0.0, 0.0), 0.518 * d, fill=False, lw=2.2, ec="black"))
+            nu_text = "OUT OF SPEC · " + nu_text
+        ax.set_title(f"{label}\n{nu_text}", fontsize=7, pad=2, parse_math=False,
+                     weight="bold" if oos[i] else "normal")
     cax = fig.add_axes((1 - 0.75 * bar_in / width, 0.15, 0.18 * bar_in / width, 0.7))
     fig.colorbar(ScalarMappable(norm=norm, cmap=cm), cax=cax,
                  ticks=bounds[::max(1, len(bounds) // 7)])
@@ -306,6 +413,43 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     if title:
         fig.suptitle(title, fontsize=11, y=1 - 0.1 / height, va="top", parse_math=False)
     return fig
+
+
+#: Colours of the palette PNGs (maps, contact sheet, report images).
+PNG_COLOURS = 192
+
+
+def png_bytes(fig, dpi=None):
+    """A figure as a palette PNG (`PNG_COLOURS` colours): about 3 x smaller than RGBA.
+
+    The figure is drawn once on its Agg canvas; its pixels are reduced to a palette by
+    Pillow's fast octree quantiser (Pillow is a dependency of matplotlib). Maps use one
+    colour map and greys, so the palette holds them without visible steps.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    dpi : float, optional
+        Resolution; default the figure's own.
+
+    Returns
+    -------
+    bytes
+    """
+    import io
+
+    from PIL import Image
+
+    if dpi is not None and dpi != fig.dpi:
+        fig.set_dpi(dpi)
+    canvas = fig.canvas if isinstance(fig.canvas, FigureCanvasAgg) else FigureCanvasAgg(fig)
+    canvas.draw()
+    rgba = np.asarray(canvas.buffer_rgba())
+    image = Image.fromarray(rgba[..., :3].copy(), "RGB").quantize(
+        PNG_COLOURS, method=Image.Quantize.FASTOCTREE)
+    buf = io.BytesIO()
+    image.save(buf, format="png", compress_level=6)
+    return buf.getvalue()
 
 
 def save_figure(fig, path, dpi=None):
@@ -333,9 +477,9 @@ def save_figure(fig, path, dpi=None):
     path = Path(path)
     tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}.tmp")
     try:
+        data = png_bytes(fig, dpi)
         with open(tmp, "xb") as fh:
-            fig.savefig(fh, format="png", dpi=dpi if dpi is not None else fig.dpi,
-                        pil_kwargs={"compress_level": 3})
+            fh.write(data)
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
@@ -405,7 +549,7 @@ def safe_filename(text):
 
 def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                       wafer_ids, slots=None, workers=2, surface=None, common_scale=False,
-                      mp_context=None, **kwargs):
+                      mp_context=None, progress=None, **kwargs):
     """One map PNG per wafer, rendered in parallel worker processes, each written atomically.
 
     Parameters
@@ -435,6 +579,8 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
         Use one colour scale for the whole lot instead of one per wafer.
     mp_context : multiprocessing context, optional
         Start method for the workers (default: the platform's).
+    progress : callable(n), optional
+        Called with 1 as each map is written (a progress display's ``update``).
     **kwargs
         Passed to `wafer_map_figure` (cmap, levels, figsize_in, dpi, ...).
 
@@ -476,8 +622,16 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
         kw = dict(kwargs, wafer_id=ids[i], slot=None if slots is None else slots[i],
                   surface=meshes[i])
         tasks.append((out / names[i], (t[i], good[i], x, y, d, ee), kw))
+    tick = progress or (lambda n: None)
+    out = []
     if workers == 1 or W == 1:
-        return [Path(_render_task(task)) for task in tasks]
-    chunk = max(1, W // (4 * workers))
+        for task in tasks:
+            out.append(Path(_render_task(task)))
+            tick(1)
+        return out
+    chunk = max(1, W // (8 * workers))
     with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context) as pool:
-        return [Path(p) for p in pool.map(_render_task, tasks, chunksize=chunk)]
+        for p in pool.map(_render_task, tasks, chunksize=chunk):
+            out.append(Path(p))
+            tick(1)
+    return out
