@@ -121,10 +121,26 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
             written.files["report.pdf"] = write_pdf_report(
                 view, written.dataset, stage, images=images, advice=advice,
                 wafer_pages=pdf_wafer_pages, progress=lambda n: _bar(progress, n, "report.pdf"))
+            written.files.update(_write_evidence_pdf(view, written.dataset, images, stage))
+            images.close()
     written.outdir = Path(outdir)
     return reduction, written, time.perf_counter() - t0
 
 
+
+
+def _write_evidence_pdf(view, ds, images, folder):
+    """evidence.pdf with every failed and suspect site when the report page shows only some."""
+    from filmmap.report.evidence import MAX_ON_PAGE, all_bad_sites, write_evidence_pdf
+
+    spectra = images.spectra()
+    if spectra is None:
+        return {}
+    sites = all_bad_sites(view, ds)
+    if len(sites) <= MAX_ON_PAGE:
+        return {}
+    return {"evidence.pdf": write_evidence_pdf(sites, spectra, folder / "evidence.pdf",
+                                               lot_id=view.lot_id)}
 
 
 def _bar(progress, total, what):

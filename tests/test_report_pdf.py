@@ -53,16 +53,17 @@ def test_pdf_pages_lot_pages_and_index_by_default(lot, written):
     ds, view, _ = lot
     data = written[0].read_bytes()
     assert BASE_LOT_PAGES == 7
-    assert lot_page_count(view, ds) == BASE_LOT_PAGES
-    assert pages_in(data) == BASE_LOT_PAGES
+    # this lot has failed sites: + 1 evidence page
+    assert lot_page_count(view, ds) == BASE_LOT_PAGES + 1
+    assert pages_in(data) == BASE_LOT_PAGES + 1
     plan = pdf_page_plan(view, ds)
-    assert [p.kind for p in plan] == ["cover", "profile", "tables", "contact", "fitq", "index",
-                                      "provenance"]
-    index_rows = [t for _, t in plan[5].lines if t.startswith(("W0", "W1", "EV"))]
+    assert [p.kind for p in plan] == ["cover", "profile", "tables", "contact", "fitq",
+                                      "evidence", "index", "provenance"]
+    index_rows = [t for _, t in plan[6].lines if t.startswith(("W0", "W1", "EV"))]
     assert len(index_rows) == len(view.wafers)                   # every wafer in the index
     plan = pdf_page_plan(view, ds, wafer_pages=True)
     assert [p.kind for p in plan] == ["cover", "profile", "tables", "contact", "fitq",
-                                      "provenance"] + ["wafer"] * 8
+                                      "evidence", "provenance"] + ["wafer"] * 8
     assert [p.wafer.wafer for p in plan if p.kind == "wafer"] == [w.wafer for w in view.wafers]
     cover = [t for _, t in plan[0].lines]
     # the decision heads page 1; the cautions follow (the only copy in the PDF)
@@ -73,7 +74,7 @@ def test_pdf_pages_lot_pages_and_index_by_default(lot, written):
 def test_wafer_pages_on_request(lot, tmp_path):
     ds, view, images = lot
     data = write_pdf_report(view, ds, tmp_path, images=images, wafer_pages=True).read_bytes()
-    assert pages_in(data) == BASE_LOT_PAGES - 1 + len(view.wafers)
+    assert pages_in(data) == BASE_LOT_PAGES + len(view.wafers)   # - index + evidence
 
 
 def test_advice_and_long_sections_continue_with_exact_count(tmp_path):

@@ -129,3 +129,78 @@ def test_atomic_write_keeps_old_file_on_failure(tmp_path, monkeypatch):
         save_figure(fig, dest)
     assert dest.read_bytes() == b"old"
     assert os.listdir(tmp_path) == ["w.png"]
+
+
+def _points(ax):
+    """Every (x, y) drawn as a marker or scatter point on an axes."""
+    pts = []
+    for line in ax.lines:
+        if line.get_marker() not in (None, "None", "", " "):
+            pts += list(zip(line.get_xdata(), line.get_ydata()))
+    for coll in ax.collections:
+        if type(coll).__name__ == "PathCollection":          # scatter points
+            pts += [tuple(p) for p in np.asarray(coll.get_offsets())]
+    return pts
+
+
+def _ring_layout():
+    """12 sites on a 100 mm ring: no site at the centre, so (0, 0) is never a real site."""
+    ang = np.deg2rad(np.arange(0, 360, 30))
+    return 100 * np.cos(ang), 100 * np.sin(ang)
+
+
+def test_missing_site_is_not_drawn_at_the_centre():
+    # A site the wafer lacks (NaN coordinates) is not a measurement: nothing at (0, 0)
+    # (the issue's finding: it was drawn over the real centre site). Common practice, no source.
+    x, y = _ring_layout()
+    x[4] = y[4] = np.nan
+    t = 500 + 0.01 * np.nan_to_num(x)
+    fig = wafer_map_figure(t, None, x, y, D, EE, wafer_id="W1", lot_id="LOT-7")
+    ax = fig.axes[0]
+    pts = _points(ax)
+    assert pts and not any(abs(px) < 1e-9 and abs(py) < 1e-9 for px, py in pts)
+    assert "LOT-7" in fig._suptitle.get_text()                 # lot id on every map
+
+
+def test_failed_site_is_marked_and_counted():
+    x, y = _ring_layout()
+    t = 500 + 0.01 * x
+    ok = np.ones(12, bool)
+    ok[[2, 7]] = False
+    fig = wafer_map_figure(np.where(ok, t, np.nan), ok, x, y, D, EE)
+    ax = fig.axes[0]
+    marked = [line for line in ax.lines if line.get_marker() == "X"]
+    assert len(marked) == 1
+    xy = set(zip(np.round(marked[0].get_xdata(), 6), np.round(marked[0].get_ydata(), 6)))
+    assert xy == {(round(x[2], 6), round(y[2], 6)), (round(x[7], 6), round(y[7], 6))}
+    assert "failed fit (2 sites)" in [t.get_text() for t in ax.get_legend().get_texts()]
+
+
+def test_contact_sheet_with_uneven_layouts_draws_every_wafer():
+    # One wafer lacks a site, another has a different pattern: each wafer keeps its own
+    # sites on one common scale (one colour bar), and no panel is dropped.
+    x, y = SITES.x_mm, SITES.y_mm
+    t = _lot(3)
+    x2, y2 = np.tile(x, (3, 1)), np.tile(y, (3, 1))
+    x2[1, 10] = y2[1, 10] = np.nan
+    t[1, 10] = np.nan
+    x2[2] = 0.9 * x
+    y2[2] = 0.9 * y
+    fig = lot_contact_sheet(t, None, x2, y2, D, EE, wafer_ids=["A", "B", "C"], slots=[1, 2, 3],
+                            out_of_spec=[False, True, False], lot_id="LOT-9")
+    panels = [ax for ax in fig.axes if ax.get_title()]
+    assert len(panels) == 3
+    assert "LOT-9" in fig._suptitle.get_text()
+    assert "OUT OF SPEC" in panels[1].get_title() and "OUT OF SPEC" not in panels[0].get_title()
+    # wafer B: its 48 sites drawn, none at the missing site's place or at (0, 0) twice
+    pts_b = _points(panels[1])
+    assert (x[10], y[10]) not in pts_b
+    assert sum(abs(px) < 1e-9 and abs(py) < 1e-9 for px, py in pts_b) == 1   # the centre site
+    # wafer C is drawn at its own coordinates
+    pts_c = {(round(px, 6), round(py, 6)) for px, py in _points(panels[2])}
+    assert (round(0.9 * x[30], 6), round(0.9 * y[30], 6)) in pts_c
+    # one common scale: every panel's map has the same colour limits
+    lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6))
+            for ax in panels for c in ax.collections
+            if hasattr(c, "norm") and c.get_array() is not None}
+    assert len(lims) == 1

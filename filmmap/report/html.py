@@ -256,6 +256,39 @@ def _advice_html(view, advice, images):
     return "".join(p)
 
 
+def _evidence_html(view, images):
+    """Measured vs model spectra of failed, suspect and worst-fitting sites."""
+    from filmmap.report.evidence import MAX_ON_PAGE
+
+    png, sites, hints, n_bad = images.evidence()
+    p = ['<section id="evidence"><h2>Evidence: measured against model spectra</h2>']
+    if not sites:
+        p.append("<p>No failed or suspect site, and no fit quality to rank the accepted "
+                 "ones.</p></section>")
+        return "".join(p)
+    p.append(f"<p>{n_bad} failed or suspect site(s) in the lot. Shown: the worst site of "
+             "each cause in turn, then the worst-fitting accepted sites, at most "
+             f"{MAX_ON_PAGE}. Each panel: measured points and the model at the site's best "
+             "fit (above), the residual measured - model (below).</p>")
+    if png is not None:
+        p.append("<figure>" + _img(png, "Measured and model spectra of failed and suspect "
+                                        "sites", "evidence-spectra")
+                 + "</figure>")
+        if n_bad > len([s for s in sites if s.verdict != "accepted"]):
+            p.append("<p>All failed and suspect sites are drawn in evidence.pdf.</p>")
+    else:
+        p.append('<p class="missing">The spectra were not kept, so no overlay is drawn: '
+                 "run reduce again with --keep-spectra (writes spectra.nc) to see the measured "
+                 "and model spectra of these sites.</p>")
+    rows = [(s.wafer, str(s.slot), str(s.site), s.verdict, s.kind,
+             fmt(s.fit_quality, 3, reason="no value"), h or MISSING, s.note)
+            for s, h in zip(sites, hints)]
+    p.append(_table(("wafer", "slot", "site", "verdict", "cause", "fit quality",
+                     "what the overlay shows", "fit note"), rows, (0, 3, 4, 6, 7)))
+    p.append("</section>")
+    return "".join(p)
+
+
 WIW_HEADER = ("wafer", "slot", "role", "mean (nm)", "sigma (nm)", "NU (%)", "range (nm)",
               "half-range (%)", "sites used", "in spec", "slot flag")
 
@@ -356,7 +389,7 @@ def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
     nav = [("decision", "Decision")] + ([("advice", "Advice")] if advice else []) + [
            ("cautions", "Cautions"), ("profile", "Slot profile"), ("wtw", "WTW"),
            ("wiw", "WIW table"), ("contact", "Contact sheet"), ("wafers", "Wafers"),
-           ("fit", "Fit quality"), ("warnings", "Warnings")]
+           ("fit", "Fit quality"), ("evidence", "Evidence"), ("warnings", "Warnings")]
     nav.append(("provenance", "Provenance"))
     p = []
     p.append("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
@@ -426,6 +459,8 @@ def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
     else:
         p.append("<p>None: every measured site has an accepted fit.</p>")
     p.append("</section>")
+
+    p.append(_evidence_html(view, images))
 
     # warnings and notes
     p.append('<section id="warnings"><h2>Warnings and notes</h2>')

@@ -77,6 +77,41 @@ class ReportImages:
         return self._cached("advice", lambda: figure_png(
             advice_profile_figure(self.view, advice, dpi=self.dpi)))
 
+    def spectra(self):
+        """spectra.nc of the output folder as a dataset (None when spectra were not kept)."""
+        def load():
+            path = None if self.outdir is None else self.outdir / "spectra.nc"
+            if path is None or not path.is_file():
+                return None
+            import xarray as xr
+
+            return xr.open_dataset(path, engine="h5netcdf")
+        return self._cached("spectra", load)
+
+    def evidence(self):
+        """``(png or None, sites, hints, n_bad)``: measured-vs-model panels of the report.
+
+        ``sites`` are the chosen `filmmap.report.evidence.EvidenceSite`, ``hints`` their
+        overlays in words, ``n_bad`` the failed plus suspect sites in all; the PNG is None
+        when the spectra were not kept (or no site needs evidence).
+        """
+        def make():
+            from filmmap.report.evidence import evidence_figure, evidence_sites
+
+            sites, n_bad = evidence_sites(self.view, self.ds)
+            spectra = self.spectra()
+            if not sites or spectra is None:
+                return None, sites, [""] * len(sites), n_bad
+            fig, hints = evidence_figure(sites, spectra, dpi=self.dpi)
+            return figure_png(fig), sites, hints, n_bad
+        return self._cached("evidence", make)
+
+    def close(self):
+        """Close spectra.nc if it was opened."""
+        sp = self._cache.pop("spectra", None)
+        if sp is not None:
+            sp.close()
+
     def _on_disk(self, relpath):
         if self.outdir is None:
             return None

@@ -15,11 +15,14 @@ Lot pages first; per-wafer pages only on request (``wafer_pages=True``):
    every wafer.
 5. **Contact sheet** (or the reason there is none).
 6. **Fit quality**: the histogram (vector) and the failed sites.
+   **Evidence**, only when sites failed or are suspect: measured against model spectra
+   of the worst site of each cause (`filmmap.report.evidence`), or how to get them.
 7. **Index of wafers**: slot, role, failed and suspect sites and the map file of each
    wafer (left out with ``wafer_pages=True``, which adds one page per wafer instead).
 8. **Provenance**: software, input files with SHA-256, stack, models and sources.
 
-So a lot has `BASE_LOT_PAGES` = 7 lot pages (8 or more with advice) as long as every
+So a lot has `BASE_LOT_PAGES` = 7 lot pages (one more with failed or suspect sites,
+one or more with advice) as long as every
 section fits its page; a section that does not (many warnings, flagged slots, wafers,
 failed sites or input files) continues on extra pages headed "(continued)", with the
 table header repeated. `lot_page_count` gives the exact number for a lot before
@@ -461,6 +464,8 @@ def pdf_page_plan(view, ds, advice=None, prov=None, wafer_pages=False):
     pages.append(PageSpec("contact", "Lot contact sheet"))
     fl, fh = _fit_lines(view)
     pages += _paginate("fitq", "Fit quality", fl, PAGE_UNITS - _FITQ_UNITS, fh)
+    if view.failed_sites or view.suspect_sites:
+        pages.append(PageSpec("evidence", "Evidence: measured against model spectra"))
     if not wafer_pages:
         il, ih = _index_lines(view)
         pages += _paginate("index", "Index of wafers", il, PAGE_UNITS, ih)
@@ -588,6 +593,21 @@ def _render_page(page, view, ds, images, number, total, advice=None):
                            h * 0.74 / PAGE_IN[1]))
         draw_fit_quality(ax, ds, fontsize=7.5)
         top += h
+    elif page.kind == "evidence":
+        png, sites, hints, n_bad = images.evidence()
+        lines = _wrap("p", f"{n_bad} failed or suspect site(s). Shown: the worst of each cause "
+                           "in turn, then the worst-fitting accepted sites.")
+        if png is not None:
+            top = _draw_png(fig, png, top + 0.1, 6.4) + 0.15
+        else:
+            lines += _wrap("p", "The spectra were not kept, so no overlay is drawn: run reduce "
+                                "again with --keep-spectra (writes spectra.nc).")
+        for s, h in zip(sites, hints):
+            lines += _wrap("m", f"{_short(s.wafer, 20)} slot {s.slot} site {s.site}: "
+                                f"{s.verdict}, {s.kind}" + (f"; {h}" if h else ""),
+                           indent="    ")
+        _draw_lines(fig, lines, top)
+        return fig
     elif page.kind == "contact":
         png, why = images.contact_sheet()
         if png is not None:
