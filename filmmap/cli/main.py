@@ -254,6 +254,7 @@ def _reduce_many(args, trims, protect):
 def cmd_history(args):
     from filmmap.history import (control_charts, history_figures, lots, next_run_from_history,
                                  save_chart, write_history_html)
+    from filmmap.history.charts import baseline_warnings, chart_filename, next_run_lines
     from filmmap.io.guard import check_outputs_spare_inputs, history_inputs, output_target
     from filmmap.io.publish import check_outdir, staged_output
 
@@ -279,25 +280,29 @@ def cmd_history(args):
               f"{f(r.lot_mean_nm):>9} {f(r.wtw_pct, 3):>7} {f(r.wiw_mean_pct, 3):>7}")
     charts = control_charts(rows, baseline=args.baseline, lam=args.ewma_lambda)
     figs = history_figures(rows, charts)
-    with staged_output(outdir) as stage:
-        for i, (caption, fig) in enumerate(figs.items()):
-            save_chart(fig, stage / f"chart_{i + 1:02d}.png")
-        write_history_html(stage / "history.html", rows, figs, signals=charts)
-    print(f"charts and history.html in {args.output}")
-    for metric, (ind, ewma) in charts.items():
-        flagged = [rows[i].lot_id for i, fl in enumerate(ind.flags) if fl]
-        if flagged:
-            print(f"  {metric}: Western Electric signals at lots " + ", ".join(flagged))
+    nxt = config = None
     if args.next_run:
         from filmmap.io.lotfile import read_lot_file
 
         config = read_lot_file(args.next_run)
         mine = [r for r in rows if r.furnace == config.lot.furnace] or rows
         nxt = next_run_from_history(mine, config, weight=args.weight).as_dict()
-        print(f"run-to-run estimate (EWMA weight {args.weight:g}) for {config.lot.id}'s recipe:")
-        for key, value in nxt.items():
-            if key != "caution":
-                print(f"  {key}: {value}")
+    with staged_output(outdir) as stage:
+        for caption, fig in figs.items():
+            save_chart(fig, stage / chart_filename(caption))     # named by what it shows
+        write_history_html(stage / "history.html", rows, figs, signals=charts, next_run=nxt)
+    print(f"charts and history.html in {args.output}")
+    for w in baseline_warnings(charts):
+        print(f"  warning: {w}")
+    for metric, (ind, ewma) in charts.items():
+        flagged = [rows[i].lot_id for i, fl in enumerate(ind.flags) if fl]
+        if flagged:
+            print(f"  {metric}: Western Electric signals at lots " + ", ".join(flagged))
+    if nxt is not None:
+        print(f"run-to-run estimate (EWMA weight {args.weight:g}) for {config.lot.id}'s recipe "
+              "(also on history.html):")
+        for line in next_run_lines(nxt):
+            print(f"  {line}")
         print(nxt.get("caution", CAUTION))
     print(CAUTION)
     return 0

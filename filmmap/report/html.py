@@ -330,8 +330,31 @@ def _failed_table(sites):
     return "".join(out)
 
 
-def _wafer_section(view, images, index, w):
-    png, why = images.wafer_map(w.wafer)
+#: Lots of up to this many wafers have every wafer map embedded; larger lots embed the maps
+#: of the wafers that need a look (`maps_to_embed`) and point to figures/ for the rest, so
+#: that report.html stays a few MB (the contact sheet shows every wafer).
+MAX_EMBEDDED_MAPS = 50
+
+
+def maps_to_embed(view):
+    """Ids of the wafers whose map report.html embeds (see `MAX_EMBEDDED_MAPS`)."""
+    if len(view.wafers) <= MAX_EMBEDDED_MAPS:
+        return {w.wafer for w in view.wafers}
+    bad = {f.wafer for f in view.failed_sites} | {f.wafer for f in view.suspect_sites}
+    need = [w.wafer for w in view.wafers
+            if w.in_spec is False or w.flagged or w.excluded or w.wafer in bad]
+    return set(need[:MAX_EMBEDDED_MAPS])
+
+
+def _wafer_section(view, images, index, w, embed=True):
+    from filmmap.wafermap.figures import safe_filename
+
+    if not embed:
+        png, why = None, (f"not embedded in a lot of {len(view.wafers)} wafers (only those "
+                          "that need a look are); the map is figures/"
+                          f"{safe_filename(w.wafer)}.png and the wafer is on the contact sheet")
+    else:
+        png, why = images.wafer_map(w.wafer)
     fig = (f"<figure>{_img(png, f'Thickness map of wafer {w.wafer}', width=560)}"
            f"<figcaption>Thickness map, wafer {e(w.wafer)}, slot {w.slot}</figcaption></figure>"
            if png is not None else f'<p class="missing">No map: {e(why)}</p>')
@@ -441,7 +464,9 @@ def render_html(view, ds, *, images=None, outdir=None, advice=None, dpi=100):
 
     # wafers
     p.append('<section id="wafers"><h2>Wafers</h2>')
-    p.extend(_wafer_section(view, images, i + 1, w) for i, w in enumerate(view.wafers))
+    embed = maps_to_embed(view)
+    p.extend(_wafer_section(view, images, i + 1, w, w.wafer in embed)
+             for i, w in enumerate(view.wafers))
     p.append("</section>")
 
     # fit quality
