@@ -80,11 +80,13 @@ def test_contact_sheet_common_scale(tmp_path):
                             title="lot A", dpi=40)
     bars = [ax for ax in fig.axes if ax.get_ylabel() == COLORBAR_LABEL]
     assert len(bars) == 1
+    # every wafer on one axes (one axes per wafer costs more than the wafer): 5 maps, 5 labels
     panels = [ax for ax in fig.axes if ax not in bars]
-    assert len(panels) == 5
-    limits = {(round(c.norm.vmin, 9), round(c.norm.vmax, 9))
-              for ax in panels for c in ax.collections
-              if hasattr(c, "norm") and c.get_array() is not None}
+    assert len(panels) == 1
+    maps = [c for c in panels[0].collections if hasattr(c, "norm") and c.get_array() is not None]
+    assert len(maps) == 5
+    assert sorted(t.get_text().split(" ")[0] for t in panels[0].texts) == [f"W{i}" for i in range(5)]
+    limits = {(round(c.norm.vmin, 9), round(c.norm.vmax, 9)) for c in maps}
     assert len(limits) == 1
     vmin, vmax = limits.pop()
     assert vmin <= np.nanmin(t) and vmax >= np.nanmax(t)
@@ -188,19 +190,27 @@ def test_contact_sheet_with_uneven_layouts_draws_every_wafer():
     y2[2] = 0.9 * y
     fig = lot_contact_sheet(t, None, x2, y2, D, EE, wafer_ids=["A", "B", "C"], slots=[1, 2, 3],
                             out_of_spec=[False, True, False], lot_id="LOT-9")
-    panels = [ax for ax in fig.axes if ax.get_title()]
-    assert len(panels) == 3
+    sheet = [ax for ax in fig.axes if ax.get_ylabel() != COLORBAR_LABEL][0]
+    labels = {t.get_text().split(" ")[0]: t for t in sheet.texts}
+    assert sorted(labels) == ["A", "B", "C"]                  # no wafer dropped
     assert "LOT-9" in fig._suptitle.get_text()
-    assert "OUT OF SPEC" in panels[1].get_title() and "OUT OF SPEC" not in panels[0].get_title()
-    # wafer B: its 48 sites drawn, none at the missing site's place or at (0, 0) twice
-    pts_b = _points(panels[1])
-    assert (x[10], y[10]) not in pts_b
-    assert sum(abs(px) < 1e-9 and abs(py) < 1e-9 for px, py in pts_b) == 1   # the centre site
+    assert "OUT OF SPEC" in labels["B"].get_text() and "OUT OF SPEC" not in labels["A"].get_text()
+
+    def points_of(wafer):
+        """Marks of one panel, relative to its centre (the label sits 0.54 D above it)."""
+        cx, top = labels[wafer].get_position()
+        cy = top - 0.54 * D
+        return [(round(px - cx, 6), round(py - cy, 6)) for px, py in _points(sheet)
+                if abs(px - cx) <= 0.55 * D and abs(py - cy) <= 0.55 * D]
+
+    # wafer B: the missing site is not drawn, and nothing but the centre site at (0, 0)
+    pts_b = points_of("B")
+    assert (round(x[10], 6), round(y[10], 6)) not in pts_b
+    assert sum(abs(px) < 1e-6 and abs(py) < 1e-6 for px, py in pts_b) == 1
+    assert len(pts_b) == 48
     # wafer C is drawn at its own coordinates
-    pts_c = {(round(px, 6), round(py, 6)) for px, py in _points(panels[2])}
-    assert (round(0.9 * x[30], 6), round(0.9 * y[30], 6)) in pts_c
-    # one common scale: every panel's map has the same colour limits
-    lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6))
-            for ax in panels for c in ax.collections
+    assert (round(0.9 * x[30], 6), round(0.9 * y[30], 6)) in points_of("C")
+    # one common scale: every wafer's map has the same colour limits
+    lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6)) for c in sheet.collections
             if hasattr(c, "norm") and c.get_array() is not None}
     assert len(lims) == 1

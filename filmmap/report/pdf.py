@@ -46,7 +46,7 @@ import textwrap
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import matplotlib.image as mpimg
+import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
@@ -523,12 +523,26 @@ def _draw_lines(fig, lines, top_in):
     return y
 
 
+#: Resolution of raster images placed on a PDF page (dots per inch of the page): a larger
+#: PNG is scaled down to it before embedding, so a big lot's contact sheet does not make
+#: the PDF slow to write and heavy to hold.
+PDF_IMAGE_DPI = 200
+
+
 def _draw_png(fig, png, top_in, height_in, width_in=None):
+    from PIL import Image
+
     width_in = width_in or PAGE_IN[0] - 2 * _MARGIN_IN
-    img = mpimg.imread(io.BytesIO(png), format="png")
-    h_px, w_px = img.shape[:2]
+    pil = Image.open(io.BytesIO(png))
+    w_px, h_px = pil.size
     scale = min(width_in / w_px, height_in / h_px)
     w, h = w_px * scale, h_px * scale
+    if w_px > w * PDF_IMAGE_DPI * 1.05:
+        # scaled with a box filter, then back to a palette: few colours compress well
+        pil = pil.convert("RGB").resize((max(1, int(w * PDF_IMAGE_DPI)),
+                                         max(1, int(h * PDF_IMAGE_DPI))), Image.BOX).quantize(
+            192, method=Image.Quantize.FASTOCTREE)
+    img = np.asarray(pil.convert("RGB"))
     left = (PAGE_IN[0] - w) / 2
     ax = fig.add_axes((_fx(left), _fy(top_in + h), w / PAGE_IN[0], h / PAGE_IN[1]))
     ax.imshow(img, interpolation="none")

@@ -14,6 +14,7 @@ drawn as a 90 deg V, enlarged to 3 % of the radius (real notches are about
 
 from __future__ import annotations
 
+import math
 import os
 import hashlib
 import re
@@ -149,22 +150,29 @@ def _shade(ax, gx, gy, z, norm, cmap, levels):
 
 
 def _draw_wafer(ax, diameter_mm, edge_exclusion_mm, gx, gy, z, x, y, t, use, norm, cmap,
-                levels, labels, value_fmt, fontsize, present=None, failed=None):
+                levels, labels, value_fmt, fontsize, present=None, failed=None,
+                offset=(0.0, 0.0), set_limits=True):
     """Map, outline, edge-exclusion ring and sites on one axes; return the mappable.
 
     ``present`` marks the sites the wafer has (a missing site is not drawn at all);
     ``failed`` the measured sites whose fit failed (a white X, clearly not data).
+    ``offset`` (mm) places the wafer on a shared axes (the contact sheet draws every wafer
+    on one axes: one axes per wafer costs more than the wafer itself).
     """
     r = diameter_mm / 2
+    ox_, oy_ = float(offset[0]), float(offset[1])
+    if ox_ or oy_:
+        gx, gy = np.asarray(gx) + ox_, np.asarray(gy) + oy_
+        x, y = np.asarray(x) + ox_, np.asarray(y) + oy_
     present = np.ones(x.shape, bool) if present is None else np.asarray(present, bool)
     failed = (present & ~np.isfinite(t)) if failed is None else np.asarray(failed, bool) & present
     mappable = None
     if z is not None and np.isfinite(z).sum() >= 4:
         mappable = _shade(ax, gx, gy, z, norm, cmap, levels)
     ox, oy = wafer_outline(diameter_mm)
-    ax.plot(ox, oy, color="black", lw=1.0)
+    ax.plot(ox + ox_, oy + oy_, color="black", lw=1.0)
     if edge_exclusion_mm > 0:
-        ax.add_patch(Circle((0.0, 0.0), r - edge_exclusion_mm, fill=False, ls="--", lw=0.7,
+        ax.add_patch(Circle((ox_, oy_), r - edge_exclusion_mm, fill=False, ls="--", lw=0.7,
                             ec="0.35"))
     if mappable is None:   # no map (too few sites): colour the sites themselves
         mappable = ax.scatter(x[use], y[use], c=t[use], cmap=cmap,
@@ -185,9 +193,10 @@ def _draw_wafer(ax, diameter_mm, edge_exclusion_mm, gx, gy, z, x, y, t, use, nor
                 ax.text(xi, yi + (dy if up else -dy), value_fmt.format(ti), ha="center",
                         va="bottom" if up else "top", fontsize=fontsize,
                         color="black" if ui else "0.35")
-    ax.set_xlim(-1.05 * r, 1.05 * r)
-    ax.set_ylim(-1.05 * r, 1.05 * r)
-    ax.set_aspect("equal")
+    if set_limits:
+        ax.set_xlim(-1.05 * r, 1.05 * r)
+        ax.set_ylim(-1.05 * r, 1.05 * r)
+        ax.set_aspect("equal")
     return mappable
 
 
@@ -409,6 +418,11 @@ class MapCanvas:
         return encode_png(self.stamps.stamp(rgb, items))
 
 
+#: Largest contact sheet in pixels (see `lot_contact_sheet`): 12 Mpx is a 150-wafer lot at
+#: 100 dpi with room to spare; larger lots are drawn at a lower resolution.
+MAX_SHEET_PIXELS = 12e6
+
+
 def _layout_groups(x2, y2):
     """Rows of wafers sharing one site layout (NaN = missing site), as a list of arrays."""
     key = np.nan_to_num(np.stack([x2, y2], axis=1), nan=np.inf)
@@ -420,7 +434,7 @@ def _layout_groups(x2, y2):
 def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                       wafer_ids=None, slots=None, surface=None, ncols=None, cmap="viridis",
                       levels=12, panel_in=2.0, dpi=100, title=None, out_of_spec=None,
-                      lot_id=""):
+                      lot_id="", max_pixels=MAX_SHEET_PIXELS):
     """Every wafer of a lot in a grid, on one common colour scale with one colour bar.
 
     Parameters
@@ -457,6 +471,10 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
         Wafers whose mean is out of spec: a thick frame and "OUT OF SPEC" in the label.
     lot_id : str
         Lot id for the default title.
+    max_pixels : float
+        Largest image in pixels: a bigger sheet gets a lower resolution (same layout), so
+        that the memory to draw and encode it stays bounded however many wafers the lot
+        has.
 
     Returns
     -------
@@ -504,25 +522,33 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     bar_in, head_in, cap_in = 1.1, 0.5 if title else 0.15, 0.45
     width = ncols * panel_in + bar_in
     height = nrows * (panel_in + cap_in) + head_in
+    dpi = min(float(dpi), math.sqrt(float(max_pixels) / (width * height)))
     fig = Figure(figsize=(width, height), dpi=dpi)
     FigureCanvasAgg(fig)
+    # every wafer on ONE axes in mm, panels placed by offsets: the data scale k (mm per
+    # inch) makes a panel's map span 92 % of panel_in, as separate axes did
+    k = 1.05 * d / (0.92 * panel_in)
+    cell_h = panel_in + cap_in
+    grid_w, grid_h = ncols * panel_in, nrows * cell_h
+    ax = fig.add_axes((0.0, (height - head_in - grid_h) / height, grid_w / width,
+                       grid_h / height))
+    ax.set_xlim(0.0, grid_w * k)
+    ax.set_ylim(0.0, grid_h * k)
+    ax.set_axis_off()
     for i in range(W):
         row, col = divmod(i, ncols)
-        left = col * panel_in / width
-        bottom = 1 - (head_in + (row + 1) * (panel_in + cap_in) - 0.05) / height
-        ax = fig.add_axes((left + 0.04 * panel_in / width, bottom,
-                           0.92 * panel_in / width, 0.92 * panel_in / height))
+        cx = (col + 0.5) * panel_in * k
+        cy = ((nrows - row - 1) * cell_h + 0.5 * panel_in) * k
         mesh, x, y, ti, ui, pi, fi, nu = per[i]
         _draw_wafer(ax, d, ee, *mesh, x, y, ti, ui, norm, cm, bounds, False, "", 0,
-                    present=pi, failed=fi)
-        ax.set_axis_off()
+                    present=pi, failed=fi, offset=(cx, cy), set_limits=False)
         label = ids[i] + ("" if slots is None else f" (slot {slots[i]})")
         nu_text = f"NU {nu:.2f} %" if np.isfinite(nu) else "NU —"
         if oos[i]:
-            ax.add_patch(Circle((0.0, 0.0), 0.518 * d, fill=False, lw=2.2, ec="black"))
+            ax.add_patch(Circle((cx, cy), 0.518 * d, fill=False, lw=2.2, ec="black"))
             nu_text = "OUT OF SPEC · " + nu_text
-        ax.set_title(f"{label}\n{nu_text}", fontsize=7, pad=2, parse_math=False,
-                     weight="bold" if oos[i] else "normal")
+        ax.text(cx, cy + 0.54 * d, f"{label}\n{nu_text}", ha="center", va="bottom",
+                fontsize=7, parse_math=False, weight="bold" if oos[i] else "normal")
     cax = fig.add_axes((1 - 0.75 * bar_in / width, 0.15, 0.18 * bar_in / width, 0.7))
     fig.colorbar(ScalarMappable(norm=norm, cmap=cm), cax=cax,
                  ticks=bounds[::max(1, len(bounds) // 7)])
