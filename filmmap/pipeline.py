@@ -71,7 +71,8 @@ def _late_write_errors(outdir):
 
 def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=False,
                      figure_workers=None, progress=None, protect=(), follow_output_link=False,
-                     preflight=None, pending_record=None, rate_factors=None):
+                     preflight=None, pending_record=None, rate_factors=None, report=True,
+                     pdf_wafer_pages=False):
     """Reduce a lot and publish every output in ``outdir`` at once.
 
     Parameters
@@ -83,13 +84,19 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     workers : int, optional
         Fitting processes (default: 2 with 2+ cores and 16+ files, else 1).
     figures : bool
-        Wafer maps, contact sheet, report.html and report.pdf.
+        Wafer maps (figures/) and the contact sheet (PNG); without them the reports say
+        that the maps were not drawn.
+    report : bool
+        report.html and report.pdf.
+    pdf_wafer_pages : bool
+        One page per wafer in report.pdf (default: an index of the wafers).
     keep_spectra : bool
         Also spectra.nc (measured, model, residual).
     figure_workers : int, optional
         Processes rendering maps.
-    progress : callable(total) -> object with update(n) and close(), optional
-        Progress display factory.
+    progress : callable(total, what) -> object with update(n) and close(), optional
+        Progress display factory (``what``: "fitting", "maps", "report.pdf"); a factory
+        of one argument is called for the fitting only.
     protect : iterable of (str, path-like)
         Further (role, path) inputs the output folder must not equal, contain or lie
         inside, e.g. `filmmap.io.guard.history_inputs` (the lot's own inputs are always
@@ -134,7 +141,7 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         workers = 2 if (os.cpu_count() or 1) >= 2 and n_files >= 16 else 1
     if workers < 1:
         raise FilmmapInputError(f"--workers must be >= 1, got {workers}", field="--workers")
-    bar = progress(n_files) if progress is not None else None
+    bar = _bar(progress, n_files, "fitting")
     try:
         reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra, config=config,
                                progress=(bar.update if bar is not None else None))
@@ -160,17 +167,38 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         written.files["summary.json"] = write_summary_json(view, stage)
         written.advice = advice
         written.view = view
-        if figures:
-            from filmmap.figures_out import write_figures
+        images = None
+        if report:
             from filmmap.report import ReportImages, write_html_report, write_pdf_report
 
-            written.files.update(write_figures(written.dataset, reduction.config, stage,
-                                               workers=figure_workers or max(2, workers)))
-            images = ReportImages(view, written.dataset, stage)
+            images = ReportImages(view, written.dataset, stage, render_missing=False,
+                                  no_map_reason=None if figures else
+                                  "maps not drawn (reduce --no-figures)")
+
+            def write_pdf():
+                written.files["report.pdf"] = write_pdf_report(
+                    view, written.dataset, stage, images=images, advice=advice,
+                    wafer_pages=pdf_wafer_pages,
+                    progress=lambda n: _bar(progress, n, "report.pdf"))
+        if figures:
+            from filmmap.figures_out import write_figures
+
+            written.figure_notes = []
+            # the PDF needs the contact sheet, no wafer map: it is written while the worker
+            # processes draw the maps (unless it has a page per wafer)
+            written.files.update(write_figures(
+                written.dataset, reduction.config, stage,
+                workers=figure_workers or max(2, workers),
+                out_of_spec=view.wtw.out_of_spec_ids if view.target_nm is not None else (),
+                progress=lambda n: _bar(progress, n, "maps"), notes=written.figure_notes,
+                while_maps=write_pdf if report and not pdf_wafer_pages else None))
+        if report:
+            if "report.pdf" not in written.files:
+                write_pdf()
             written.files["report.html"] = write_html_report(view, written.dataset, stage,
                                                              images=images, advice=advice)
-            written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
-                                                           images=images, advice=advice)
+            written.files.update(_write_evidence_pdf(view, written.dataset, images, stage))
+            images.close()
         if pending_record is not None:
             write_text_atomic(stage / PENDING_RECORD, json.dumps(pending_record) + "\n")
         _fault_point("after-staging")
@@ -179,6 +207,31 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     return reduction, written, time.perf_counter() - t0
 
 
+
+
+def _write_evidence_pdf(view, ds, images, folder):
+    """evidence.pdf with every failed and suspect site when the report page shows only some."""
+    from filmmap.report.evidence import MAX_ON_PAGE, all_bad_sites, write_evidence_pdf
+
+    spectra = images.spectra()
+    if spectra is None:
+        return {}
+    sites = all_bad_sites(view, ds)
+    if len(sites) <= MAX_ON_PAGE:
+        return {}
+    return {"evidence.pdf": write_evidence_pdf(sites, spectra, folder / "evidence.pdf",
+                                               lot_id=view.lot_id)}
+
+
+def _bar(progress, total, what):
+    """A progress display from the factory (None without one); old one-argument factories
+    are used for the fitting only."""
+    if progress is None:
+        return None
+    try:
+        return progress(total, what)
+    except TypeError:
+        return progress(total) if what == "fitting" else None
 
 
 def write_advice(config, written, folder, rate_factors=None):

@@ -257,3 +257,64 @@ def test_history_html_is_self_contained_and_escaped():
     assert "rule 1" in page or "rule 2" in page or "beyond the EWMA limits" in page
     with pytest.raises(FilmmapInputError):
         history_html(rows, {"x": "not an image"})
+
+
+def test_chart_files_are_named_by_what_they_show():
+    from filmmap.history.charts import chart_filename
+
+    figs = history_figures(_rows(), dpi=40)
+    names = [chart_filename(c) for c in figs]
+    assert len(set(names)) == len(names) == 6
+    assert "lot_mean_thickness_individuals.png" in names
+    assert "wafer_to_wafer_non_uniformity_ewma.png" in names
+    assert not any(n.startswith("chart_") for n in names)
+
+
+def test_limits_from_few_lots_are_called_provisional_and_spreads_stay_non_negative():
+    # Montgomery (section 5.3, from memory): 20-25 subgroups for trial limits; a spread's
+    # lower limit below zero means nothing, so it is drawn at zero
+    from filmmap.history.charts import MIN_BASELINE_LOTS, baseline_warnings
+
+    import dataclasses
+
+    # WTW alternating 0.05 / 0.5 %: centre 0.275 %, sigma = mean moving range / 1.128 =
+    # 0.40 %, so centre - 3 sigma is about -0.92 %: below zero
+    rows = [dataclasses.replace(r, wtw_pct=(0.05, 0.5)[i % 2])
+            for i, r in enumerate(_rows(n=4, shift_at=99))]
+    charts = control_charts(rows, baseline=3)
+    warns = baseline_warnings(charts)
+    assert len(warns) == 3 and all("from only 3 lot(s)" in w for w in warns)
+    assert MIN_BASELINE_LOTS == 20
+    ind = charts["wtw_pct"][0]
+    figs = history_figures(rows, charts, dpi=40)
+    fig = figs["Wafer-to-wafer non-uniformity (WTW): individuals chart"]
+    texts = [t.get_text() for t in fig.axes[0].texts]
+    assert "limits from 3 lot(s): provisional" in texts
+    assert ind.lcl < -0.5                                    # the computed limit stays as is
+    dashed = [line.get_ydata()[0] for line in fig.axes[0].get_lines()
+              if line.get_linestyle() == "--"]
+    assert min(dashed) == 0.0                                # drawn at zero
+    assert not baseline_warnings(control_charts(_rows(n=24), baseline=20))
+
+
+def test_ewma_centre_is_labelled_as_the_baseline_mean():
+    _, ew = control_charts(_rows(), baseline=15)["lot_mean_nm"]
+    labels = [line.get_label() for line in ewma_figure(ew, dpi=40).axes[0].get_lines()]
+    assert "centre (baseline mean)" in labels and "target" not in labels
+
+
+def test_next_run_in_words_with_units():
+    from filmmap.history.charts import next_run_lines
+
+    nxt = {"adjust_step": "wet", "minutes_now": 115.0, "minutes_next": 116.50548055609704,
+           "zone_trims_C": {"load": 1.5914918558218443, "center": 1.16e-14, "source": -0.70},
+           "predicted_mean_nm": 600.0000000000002, "predicted_wtw_pct": 0.6210162659088198,
+           "time_clipped": 1, "clipped_zones": [], "warnings": ["few lots"], "caution": "c"}
+    text = "\n".join(next_run_lines(nxt))
+    assert "wet step: 115.0 min now -> 116.5 min next (at its upper bound)" in text
+    assert "absolute, relative to the untrimmed set points" in text
+    assert "load +1.6 K, center +0.0 K, source -0.7 K" in text
+    assert "predicted lot mean 600.0 nm, predicted WTW NU 0.62 %" in text
+    assert "e-14" not in text and "0000000" not in text
+    page = history_html(_rows(n=3), {}, next_run=nxt)
+    assert "Run-to-run estimate for the next run" in page and "116.5 min next" in page

@@ -69,7 +69,10 @@ def test_history_command_charts_recorded_lots(tmp_path, capsys):
     assert "T-0003" in text and "never drives equipment" in text
     html = (out / "history.html").read_text()
     assert "data:image/png;base64," in html and "http" not in html.replace("http-equiv", "")
-    assert len(list(out.glob("chart_*.png"))) >= 3
+    # charts named by what they show (issue 14), one trend and one EWMA chart per metric
+    names = sorted(p.name for p in out.glob("*.png"))
+    assert "lot_mean_thickness_individuals.png" in names and len(names) == 6
+    assert "provisional" in text                      # limits from 3 lots, said on the console
     assert main(["history", "--history", str(tmp_path / "empty.sqlite"), "-o",
                  str(tmp_path / "h2")]) == 2
 

@@ -179,3 +179,44 @@ def test_streamed_file_equals_the_rendered_string(report):
         return re.sub(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d[+\-]\d\d:\d\d", "T", s)
     assert stamp(text) == stamp(again)
     assert len(text) > 10000 and text.endswith("</html>\n")
+
+
+def standard_advice():
+    """An advice dict with the pinned keys of filmmap.growth.advice (values invented)."""
+    from test_report_decision import ADVICE
+
+    slots = range(4, 12)
+    return dict(ADVICE, predicted_nm_by_slot_now={str(s): 990.0 + s for s in slots},
+                predicted_nm_by_slot_next={str(s): 998.0 + 0.3 * s for s in slots},
+                effective_offset_C_by_slot={str(s): -2.0 + 0.1 * s for s in slots},
+                warnings=["the zones explain <50 %> of the profile"],
+                caution="Advisory only: approve before use.")
+
+
+def test_decision_block_heads_the_page_and_advice_is_readable(tmp_path):
+    # The decision comes before any other section; the advice is tables and a plot, not a
+    # dump of the advice keys; the cautions appear once (filmmap's own layout).
+    ds, _, view, images = shared_lot()
+    text = write_html_report(view, ds, tmp_path, images=images,
+                             advice=standard_advice()).read_text("utf-8")
+    p = check(text)
+    assert not p.errors, p.errors[:5]
+    ids = [a["id"] for _, a in p.tags if "id" in a]
+    assert ids.index("decision") < ids.index("advice") < ids.index("profile")
+    decision_html = text[text.index('id="decision"'):text.index("</section>",
+                                                                 text.index('id="decision"'))]
+    from filmmap.report.decision import lot_disposition
+
+    d = lot_disposition(view)
+    assert f'<span class="status">{d.action.upper()}</span> lot {d.status}' in decision_html
+    assert "Set wet to 116.5 min" in decision_html and "Rule:" in decision_html
+    advice_html = text[text.index('id="advice"'):]
+    advice_html = advice_html[:advice_html.index("</section>")]
+    assert "zone_offsets_C" not in advice_html and "predicted_nm_by_slot" not in advice_html
+    assert "<details><summary>Per-slot numbers (8 slots)</summary>" in advice_html
+    assert 'id="advice-profile"' in advice_html                  # predicted-profile plot
+    assert "&lt;50 %&gt;" in advice_html                          # warnings escaped
+    words = " ".join(p.text)
+    for para in CAUTION_PARAGRAPHS:
+        assert words.count(para) == 1
+    assert words.count("Advisory only: approve before use.") == 1

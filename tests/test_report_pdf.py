@@ -46,24 +46,39 @@ def test_pdf_opens(written):
     assert sorted(x.name for x in out.iterdir()) == ["report.pdf"]   # no temp file left
 
 
-def test_pdf_pages_lot_then_one_per_wafer(lot, written):
-    # Documented layout: BASE_LOT_PAGES = 6 lot pages (cover, slot profile, tables, contact
-    # sheet, fit quality, provenance) for a small lot, then one page per wafer (filmmap's own).
+def test_pdf_pages_lot_pages_and_index_by_default(lot, written):
+    # Documented layout: BASE_LOT_PAGES = 7 lot pages (cover, slot profile, tables, contact
+    # sheet, fit quality, index of wafers, provenance) and no per-wafer page by default
+    # (filmmap's own); wafer_pages=True swaps the index for one page per wafer.
     ds, view, _ = lot
     data = written[0].read_bytes()
-    assert BASE_LOT_PAGES == 6
-    assert lot_page_count(view, ds) == BASE_LOT_PAGES
-    assert pages_in(data) == BASE_LOT_PAGES + len(view.wafers) == 14
+    assert BASE_LOT_PAGES == 7
+    # this lot has failed sites: + 1 evidence page
+    assert lot_page_count(view, ds) == BASE_LOT_PAGES + 1
+    assert pages_in(data) == BASE_LOT_PAGES + 1
     plan = pdf_page_plan(view, ds)
     assert [p.kind for p in plan] == ["cover", "profile", "tables", "contact", "fitq",
-                                      "provenance"] + ["wafer"] * 8
+                                      "evidence", "index", "provenance"]
+    index_rows = [t for _, t in plan[6].lines if t.startswith(("W0", "W1", "EV"))]
+    assert len(index_rows) == len(view.wafers)                   # every wafer in the index
+    plan = pdf_page_plan(view, ds, wafer_pages=True)
+    assert [p.kind for p in plan] == ["cover", "profile", "tables", "contact", "fitq",
+                                      "evidence", "provenance"] + ["wafer"] * 8
     assert [p.wafer.wafer for p in plan if p.kind == "wafer"] == [w.wafer for w in view.wafers]
     cover = [t for _, t in plan[0].lines]
+    # the decision heads page 1; the cautions follow (the only copy in the PDF)
+    assert cover[0].startswith("Decision: ")
     assert "Cautions" in cover and view.verdict.startswith(cover[cover.index("Verdict") + 1][:40])
 
 
+def test_wafer_pages_on_request(lot, tmp_path):
+    ds, view, images = lot
+    data = write_pdf_report(view, ds, tmp_path, images=images, wafer_pages=True).read_bytes()
+    assert pages_in(data) == BASE_LOT_PAGES + len(view.wafers)   # - index + evidence
+
+
 def test_advice_and_long_sections_continue_with_exact_count(tmp_path):
-    # Advice adds one page (with the cautions); many failed sites overflow the fit-quality
+    # Advice adds one page (the cautions stay on page 1 only); many failed sites overflow the fit-quality
     # page onto continuation pages with the table header repeated, and lot_page_count still
     # equals the pages written (filmmap's own layout). Maps are not rendered here
     # (render_missing=False): the wafer pages then say why there is no map.
@@ -76,7 +91,8 @@ def test_advice_and_long_sections_continue_with_exact_count(tmp_path):
     assert lot_page_count(view, ds) == n_lot - 1
     assert n_lot > BASE_LOT_PAGES + 1
     advice_page = next(p for p in plan if p.kind == "advice")
-    assert any("Cautions" in text for _, text in advice_page.lines)
+    assert not any("Cautions" in text for _, text in advice_page.lines)   # once, on page 1
+    assert any("117.5" in text for _, text in advice_page.lines)
     cont = [p for p in plan if p.title == "Fit quality (continued)"]
     assert cont and all(p.lines[0][0] == "mh" for p in cont)        # header repeated
     rows = sum(1 for p in plan if p.title.startswith("Fit quality")
@@ -84,7 +100,7 @@ def test_advice_and_long_sections_continue_with_exact_count(tmp_path):
     assert rows == 92                                                # every failed site listed
     images = ReportImages(view, ds, None, dpi=30, render_missing=False)
     data = write_pdf_report(view, ds, tmp_path, images=images, advice=advice).read_bytes()
-    assert is_pdf(data) and pages_in(data) == n_lot + len(view.wafers)
+    assert is_pdf(data) and pages_in(data) == n_lot
     assert images.wafer_map(view.wafers[0].wafer) == (
         None, "the reduce step wrote no map for this wafer")
 
@@ -103,6 +119,29 @@ def test_pdf_write_is_atomic(lot, tmp_path, monkeypatch):
         write_pdf_report(view, ds, tmp_path, images=images)
     assert (tmp_path / "report.pdf").read_bytes() == b"%PDF-old"
     assert sorted(x.name for x in tmp_path.iterdir()) == ["report.pdf"]
+
+
+def test_page_one_text_holds_the_decision(lot, tmp_path):
+    # Text extracted from page 1 with pdftotext (poppler-utils, installed by .ci/run):
+    # the decision block with its rule and the next-run sentence head the first page.
+    import shutil
+    import subprocess
+
+    from test_report_html import standard_advice
+
+    if shutil.which("pdftotext") is None:
+        pytest.skip("pdftotext (Debian package poppler-utils) is not installed; "
+                    ".ci/run installs it")
+    ds, view, images = lot
+    path = write_pdf_report(view, ds, tmp_path, images=images, advice=standard_advice())
+    page1 = subprocess.run(["pdftotext", "-f", "1", "-l", "1", "-layout", str(path), "-"],
+                           check=True, capture_output=True, text=True).stdout
+    head = page1.strip().splitlines()
+    assert head[0].strip().startswith("Lot ") and head[1].strip().startswith("Decision: ")
+    flat = " ".join(page1.split())
+    assert "Rule: out of spec (hold)" in flat
+    assert "Next run: Set wet to 116.5 min (now 115.0 min, +1.3 %" in flat
+    assert flat.index("Decision: ") < flat.index("Cautions") < flat.index("Warnings")
 
 
 def test_page_images_are_written_as_pages_complete(tmp_path):
@@ -142,31 +181,3 @@ def test_page_images_are_written_as_pages_complete(tmp_path):
         w, h = map(int, parts[1].split())
         pix = np.frombuffer(parts[3], dtype=np.uint8).reshape(h, w, 3)
         assert tuple(int(v) for v in pix[h // 2, w // 2]) == c
-
-
-def test_big_images_are_reduced_to_the_page_resolution():
-    # a 4000 x 3000 px sheet drawn 7 in wide is kept at PAGE_IMAGE_DPI (8-bit RGBA), and the
-    # size it is drawn at still comes from the stored PNG
-    import io
-
-    import numpy as np
-    from PIL import Image
-
-    from filmmap.figures_out import CONTACT_SHEET_MAX_IN, contact_panel_in
-    from filmmap.report.pdf import PAGE_IMAGE_DPI, _page_image
-
-    buf = io.BytesIO()
-    Image.fromarray(np.full((3000, 4000, 3), 200, dtype=np.uint8)).save(buf, format="PNG")
-    img, size = _page_image(buf.getvalue(), 7.0, 9.0)
-    assert size == (4000, 3000)
-    assert img.dtype == np.uint8 and img.shape[2] == 4
-    assert img.shape[1] <= 7.0 * PAGE_IMAGE_DPI and img.shape[0] <= 5.25 * PAGE_IMAGE_DPI + 1
-    assert img.shape[1] >= 7.0 * PAGE_IMAGE_DPI - 2          # not reduced further than needed
-    small = io.BytesIO()
-    Image.fromarray(np.zeros((50, 80, 3), dtype=np.uint8)).save(small, format="PNG")
-    assert _page_image(small.getvalue(), 7.0, 9.0)[0].shape[:2] == (50, 80)   # kept as is
-    # the contact sheet of a big lot stays within its largest side
-    for n in (1, 44, 300, 1200):
-        cols = int(np.ceil(np.sqrt(n)))
-        assert cols * contact_panel_in(n) <= CONTACT_SHEET_MAX_IN + 1e-9
-    assert contact_panel_in(44) == 2.0

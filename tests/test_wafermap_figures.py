@@ -1,6 +1,7 @@
 """Wafer-map figures: PNG files, sizes, colour maps, common lot scale, atomic writes."""
 
 import os
+from pathlib import Path
 
 import matplotlib.image as mpimg
 import numpy as np
@@ -79,11 +80,13 @@ def test_contact_sheet_common_scale(tmp_path):
                             title="lot A", dpi=40)
     bars = [ax for ax in fig.axes if ax.get_ylabel() == COLORBAR_LABEL]
     assert len(bars) == 1
+    # every wafer on one axes (one axes per wafer costs more than the wafer): 5 maps, 5 labels
     panels = [ax for ax in fig.axes if ax not in bars]
-    assert len(panels) == 5
-    limits = {(round(c.norm.vmin, 9), round(c.norm.vmax, 9))
-              for ax in panels for c in ax.collections
-              if hasattr(c, "norm") and c.get_array() is not None}
+    assert len(panels) == 1
+    maps = [c for c in panels[0].collections if hasattr(c, "norm") and c.get_array() is not None]
+    assert len(maps) == 5
+    assert sorted(t.get_text().split(" ")[0] for t in panels[0].texts) == [f"W{i}" for i in range(5)]
+    limits = {(round(c.norm.vmin, 9), round(c.norm.vmax, 9)) for c in maps}
     assert len(limits) == 1
     vmin, vmax = limits.pop()
     assert vmin <= np.nanmin(t) and vmax >= np.nanmax(t)
@@ -110,19 +113,104 @@ def test_parallel_render(tmp_path):
                           wafer_ids=["a", "a", "b"])
 
 
-def test_atomic_write_keeps_old_file_on_failure(tmp_path):
-    # Python docs, os.replace: the destination changes only when the new file is complete
+def test_atomic_write_keeps_old_file_on_failure(tmp_path, monkeypatch):
+    # Python docs, os.replace: the destination changes only when the new file is complete;
+    # a failure after the temporary file was written leaves the old file and no temporary
+    import filmmap.wafermap.figures as figmod
+
     dest = tmp_path / "w.png"
     dest.write_bytes(b"old")
+    fig = figmod.Figure(figsize=(1, 1), dpi=20)
 
-    class Broken:
-        dpi = 72
+    def no_rename(src, dst):
+        assert Path(src).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"   # complete PNG written
+        raise RuntimeError("disk full")
 
-        def savefig(self, fh, **kwargs):
-            fh.write(b"partial")
-            raise RuntimeError("disk full")
-
+    monkeypatch.setattr(figmod.os, "replace", no_rename)
     with pytest.raises(RuntimeError):
-        save_figure(Broken(), dest)
+        save_figure(fig, dest)
     assert dest.read_bytes() == b"old"
     assert os.listdir(tmp_path) == ["w.png"]
+
+
+def _points(ax):
+    """Every (x, y) drawn as a marker or scatter point on an axes."""
+    pts = []
+    for line in ax.lines:
+        if line.get_marker() not in (None, "None", "", " "):
+            pts += list(zip(line.get_xdata(), line.get_ydata()))
+    for coll in ax.collections:
+        if type(coll).__name__ == "PathCollection":          # scatter points
+            pts += [tuple(p) for p in np.asarray(coll.get_offsets())]
+    return pts
+
+
+def _ring_layout():
+    """12 sites on a 100 mm ring: no site at the centre, so (0, 0) is never a real site."""
+    ang = np.deg2rad(np.arange(0, 360, 30))
+    return 100 * np.cos(ang), 100 * np.sin(ang)
+
+
+def test_missing_site_is_not_drawn_at_the_centre():
+    # A site the wafer lacks (NaN coordinates) is not a measurement: nothing at (0, 0)
+    # (the issue's finding: it was drawn over the real centre site). Common practice, no source.
+    x, y = _ring_layout()
+    x[4] = y[4] = np.nan
+    t = 500 + 0.01 * np.nan_to_num(x)
+    fig = wafer_map_figure(t, None, x, y, D, EE, wafer_id="W1", lot_id="LOT-7")
+    ax = fig.axes[0]
+    pts = _points(ax)
+    assert pts and not any(abs(px) < 1e-9 and abs(py) < 1e-9 for px, py in pts)
+    assert "LOT-7" in fig._suptitle.get_text()                 # lot id on every map
+
+
+def test_failed_site_is_marked_and_counted():
+    x, y = _ring_layout()
+    t = 500 + 0.01 * x
+    ok = np.ones(12, bool)
+    ok[[2, 7]] = False
+    fig = wafer_map_figure(np.where(ok, t, np.nan), ok, x, y, D, EE)
+    ax = fig.axes[0]
+    marked = [line for line in ax.lines if line.get_marker() == "X"]
+    assert len(marked) == 1
+    xy = set(zip(np.round(marked[0].get_xdata(), 6), np.round(marked[0].get_ydata(), 6)))
+    assert xy == {(round(x[2], 6), round(y[2], 6)), (round(x[7], 6), round(y[7], 6))}
+    assert "failed fit (2 sites)" in [t.get_text() for t in ax.get_legend().get_texts()]
+
+
+def test_contact_sheet_with_uneven_layouts_draws_every_wafer():
+    # One wafer lacks a site, another has a different pattern: each wafer keeps its own
+    # sites on one common scale (one colour bar), and no panel is dropped.
+    x, y = SITES.x_mm, SITES.y_mm
+    t = _lot(3)
+    x2, y2 = np.tile(x, (3, 1)), np.tile(y, (3, 1))
+    x2[1, 10] = y2[1, 10] = np.nan
+    t[1, 10] = np.nan
+    x2[2] = 0.9 * x
+    y2[2] = 0.9 * y
+    fig = lot_contact_sheet(t, None, x2, y2, D, EE, wafer_ids=["A", "B", "C"], slots=[1, 2, 3],
+                            out_of_spec=[False, True, False], lot_id="LOT-9")
+    sheet = [ax for ax in fig.axes if ax.get_ylabel() != COLORBAR_LABEL][0]
+    labels = {t.get_text().split(" ")[0]: t for t in sheet.texts}
+    assert sorted(labels) == ["A", "B", "C"]                  # no wafer dropped
+    assert "LOT-9" in fig._suptitle.get_text()
+    assert "OUT OF SPEC" in labels["B"].get_text() and "OUT OF SPEC" not in labels["A"].get_text()
+
+    def points_of(wafer):
+        """Marks of one panel, relative to its centre (the label sits 0.54 D above it)."""
+        cx, top = labels[wafer].get_position()
+        cy = top - 0.54 * D
+        return [(round(px - cx, 6), round(py - cy, 6)) for px, py in _points(sheet)
+                if abs(px - cx) <= 0.55 * D and abs(py - cy) <= 0.55 * D]
+
+    # wafer B: the missing site is not drawn, and nothing but the centre site at (0, 0)
+    pts_b = points_of("B")
+    assert (round(x[10], 6), round(y[10], 6)) not in pts_b
+    assert sum(abs(px) < 1e-6 and abs(py) < 1e-6 for px, py in pts_b) == 1
+    assert len(pts_b) == 48
+    # wafer C is drawn at its own coordinates
+    assert (round(0.9 * x[30], 6), round(0.9 * y[30], 6)) in points_of("C")
+    # one common scale: every wafer's map has the same colour limits
+    lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6)) for c in sheet.collections
+            if hasattr(c, "norm") and c.get_array() is not None}
+    assert len(lims) == 1

@@ -40,7 +40,13 @@ def build_parser():
     red.add_argument("--applied-trims", action="append", default=[], metavar="ZONE=KELVIN",
                      help="zone trims that were in force during this run (for run-to-run "
                           "control), e.g. --applied-trims load=+2.2 (repeatable)")
-    red.add_argument("--no-figures", action="store_true", help="skip the PNG figures")
+    red.add_argument("--no-figures", action="store_true",
+                     help="skip the PNG wafer maps and contact sheet (report.html and report.pdf "
+                          "are still written, without maps; see --no-report)")
+    red.add_argument("--no-report", action="store_true",
+                     help="skip report.html and report.pdf")
+    red.add_argument("--pdf-wafer-pages", action="store_true",
+                     help="one page per wafer in report.pdf (default: an index of the wafers)")
     red.add_argument("--follow-output-link", action="store_true",
                      help="OUTDIR may be a symbolic link: replace the folder it points to and "
                           "keep the link (without this option a link is refused)")
@@ -99,7 +105,9 @@ def build_parser():
     demo = sub.add_parser("demo", help="generate the invented demo lot and reduce it")
     demo.add_argument("-o", "--output", default="filmmap-demo", metavar="DIR",
                       help="folder for the demo lot (DIR/lot) and its results (DIR/results)")
-    demo.add_argument("--no-figures", action="store_true", help="skip the PNG figures")
+    demo.add_argument("--no-figures", action="store_true",
+                      help="skip the PNG wafer maps and contact sheet (the reports are still "
+                           "written, without maps)")
     demo.add_argument("--quiet", action="store_true")
     demo.add_argument("--debug", action="store_true", help="show tracebacks")
     return parser
@@ -107,20 +115,22 @@ def build_parser():
 
 def _progress_bar(total, desc):
     from tqdm import tqdm
-    return tqdm(total=total, desc=desc, unit="wafer", leave=False, disable=None)
+    unit = "page" if desc.endswith(".pdf") else "wafer"
+    return tqdm(total=total, desc=desc, unit=unit, leave=False, disable=None)
 
 
 def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_spectra=False,
                figure_workers=None, protect=(), follow_output_link=False, preflight=None,
-               pending_record=None, rate_factors=None):
-    """`filmmap.pipeline.reduce_to_folder` with a progress bar unless quiet."""
+               pending_record=None, rate_factors=None, report=True, pdf_wafer_pages=False):
+    """`filmmap.pipeline.reduce_to_folder` with progress bars (fitting, maps, report.pdf)."""
     from filmmap.pipeline import reduce_to_folder
 
     return reduce_to_folder(lotfile, outdir, workers, figures, keep_spectra, figure_workers,
-                            progress=None if quiet else (lambda n: _progress_bar(n, "fitting")),
+                            progress=None if quiet else _progress_bar,
                             protect=protect, follow_output_link=follow_output_link,
                             preflight=preflight, pending_record=pending_record,
-                            rate_factors=rate_factors)
+                            rate_factors=rate_factors, report=report,
+                            pdf_wafer_pages=pdf_wafer_pages)
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -129,7 +139,7 @@ def print_advice(advice, stream=sys.stdout):
     p(f"  advice (advisory only): {advice['adjust_step']} {advice['minutes_now']:.1f} -> "
       f"{advice['minutes_next']:.1f} min")
     if advice["zone_offsets_C"]:
-        p("; zone trims " + ", ".join(f"{k} {v:+.2f} C" for k, v in advice["zone_offsets_C"].items()))
+        p("; zone trims " + ", ".join(f"{k} {v:+.2f} K" for k, v in advice["zone_offsets_C"].items()))
     p("\n")
     now, nxt = advice["predicted_wtw_pct_now"], advice["predicted_wtw_pct_next"]
     if now is not None and nxt is not None:
@@ -153,9 +163,15 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
         p(f"  warning: {w}\n")
     view = written.view
     if view is not None:
+        from filmmap.report.decision import decision
+
+        for line in decision(view, written.advice).lines():   # same block as report page 1
+            p(f"  {line}\n")
         p(f"  verdict: {view.verdict}\n")
         for w in view.warnings[:5]:
             p(f"  warning: {w}\n")
+    for note in getattr(written, "figure_notes", None) or ():
+        p(f"  figures: {note}\n")
     if "role" in ds.coords:
         prod = ds["mean_nm"].where(ds["role"] == "product")
         if prod.notnull().any():
@@ -214,7 +230,8 @@ def cmd_reduce(args):
                                              protect=protect,
                                              follow_output_link=args.follow_output_link,
                                              preflight=preflight, pending_record=pending,
-                                             rate_factors=rates)
+                                             rate_factors=rates, report=not args.no_report,
+                                             pdf_wafer_pages=args.pdf_wafer_pages)
     if not args.quiet:
         print_summary(reduction, written, seconds)
     if not args.no_history:
@@ -291,6 +308,7 @@ def cmd_history(args):
     from filmmap.bounds import MAX_BASELINE_LOTS, check_in_range
     from filmmap.history import (control_charts, history_figures, lots, next_run_from_history,
                                  save_chart, write_history_html)
+    from filmmap.history.charts import baseline_warnings, chart_filename, next_run_lines
     from filmmap.io.guard import (check_name_lengths, check_output_location,
                                   check_outputs_spare_inputs, estimate_output_bytes,
                                   history_inputs, output_target)
@@ -327,25 +345,29 @@ def cmd_history(args):
         print(f"  baseline: all {len(rows)} lots (fewer recorded than --baseline {args.baseline})")
     charts = control_charts(rows, baseline=args.baseline, lam=args.ewma_lambda)
     figs = history_figures(rows, charts)
-    with staged_output(outdir) as stage:
-        for i, (caption, fig) in enumerate(figs.items()):
-            save_chart(fig, stage / f"chart_{i + 1:02d}.png")
-        write_history_html(stage / "history.html", rows, figs, signals=charts)
-    print(f"charts and history.html in {args.output}")
-    for metric, (ind, ewma) in charts.items():
-        flagged = [rows[i].lot_id for i, fl in enumerate(ind.flags) if fl]
-        if flagged:
-            print(f"  {metric}: Western Electric signals at lots " + ", ".join(flagged))
+    nxt = config = None
     if args.next_run:
         from filmmap.io.lotfile import read_lot_file
 
         config = read_lot_file(args.next_run)
         mine = [r for r in rows if r.furnace == config.lot.furnace] or rows
         nxt = next_run_from_history(mine, config, weight=args.weight).as_dict()
-        print(f"run-to-run estimate (EWMA weight {args.weight:g}) for {config.lot.id}'s recipe:")
-        for key, value in nxt.items():
-            if key != "caution":
-                print(f"  {key}: {value}")
+    with staged_output(outdir) as stage:
+        for caption, fig in figs.items():
+            save_chart(fig, stage / chart_filename(caption))     # named by what it shows
+        write_history_html(stage / "history.html", rows, figs, signals=charts, next_run=nxt)
+    print(f"charts and history.html in {args.output}")
+    for w in baseline_warnings(charts):
+        print(f"  warning: {w}")
+    for metric, (ind, ewma) in charts.items():
+        flagged = [rows[i].lot_id for i, fl in enumerate(ind.flags) if fl]
+        if flagged:
+            print(f"  {metric}: Western Electric signals at lots " + ", ".join(flagged))
+    if nxt is not None:
+        print(f"run-to-run estimate (EWMA weight {args.weight:g}) for {config.lot.id}'s recipe "
+              "(also on history.html):")
+        for line in next_run_lines(nxt):
+            print(f"  {line}")
         print(nxt.get("caution", CAUTION))
     print(CAUTION)
     return 0

@@ -558,6 +558,7 @@ def _x_axis(ax, n, labels, fontsize=7):
 
 
 def trend_figure(chart, labels=None, *, title="", ylabel="", target=None, tolerance=None,
+                 floor=None,
                  figsize_in=(9.0, 4.2), dpi=100):
     """Trend chart of one lot metric with its individuals-chart limits and flags.
 
@@ -607,7 +608,13 @@ def trend_figure(chart, labels=None, *, title="", ylabel="", target=None, tolera
     ax.axhline(chart.centre, color=COLOURS["centre"], lw=1.0, zorder=1, label="centre")
     ax.axhline(chart.ucl, color=COLOURS["limit"], lw=1.0, ls="--", zorder=1,
                label="±3 sigma limits")
-    ax.axhline(chart.lcl, color=COLOURS["limit"], lw=1.0, ls="--", zorder=1)
+    # a spread cannot go below zero: its lower limit is drawn there (floor = 0)
+    lcl = chart.lcl if floor is None else max(chart.lcl, floor)
+    ax.axhline(lcl, color=COLOURS["limit"], lw=1.0, ls="--", zorder=1)
+    n_base = int(np.asarray(chart.baseline).sum())
+    if n_base < MIN_BASELINE_LOTS:
+        ax.text(0.01, 0.98, f"limits from {n_base} lot(s): provisional", transform=ax.transAxes,
+                ha="left", va="top", fontsize=8, color="0.2")
     fin = np.isfinite(chart.values)
     ax.plot(x[fin], chart.values[fin], color=COLOURS["line"], lw=0.8, zorder=2)
     ax.plot(x[fin], chart.values[fin], "o", ms=4, color=COLOURS["point"], zorder=3,
@@ -621,7 +628,7 @@ def trend_figure(chart, labels=None, *, title="", ylabel="", target=None, tolera
                         textcoords="offset points", xytext=(0, 7), ha="center", fontsize=7)
     # the y range follows the data and the control limits (and the target), not the
     # tolerance band, which may be much wider
-    span = [chart.lcl, chart.ucl] + list(chart.values[fin]) + ([target] if target is not None
+    span = [lcl, chart.ucl] + list(chart.values[fin]) + ([target] if target is not None
                                                                else [])
     lo, hi = float(np.min(span)), float(np.max(span))
     pad = 0.12 * (hi - lo) if hi > lo else 1.0
@@ -662,7 +669,9 @@ def ewma_figure(chart, labels=None, *, title="", ylabel="", figsize_in=(9.0, 4.2
     fin = np.isfinite(chart.statistic)
     ax.plot(x[fin], chart.values[fin], "o", ms=3, color=COLOURS["raw"], zorder=2,
             label="lot value")
-    ax.axhline(chart.target, color=COLOURS["centre"], lw=1.0, zorder=1, label="target")
+    # the EWMA's centre is the baseline mean, not the spec target: say so
+    ax.axhline(chart.target, color=COLOURS["centre"], lw=1.0, zorder=1,
+               label="centre (baseline mean)")
     ax.step(x[fin], chart.ucl[fin], where="mid", color=COLOURS["limit"], lw=1.0, ls="--",
             zorder=1, label=f"limits (L = {chart.L:g})")
     ax.step(x[fin], chart.lcl[fin], where="mid", color=COLOURS["limit"], lw=1.0, ls="--",
@@ -719,7 +728,8 @@ def history_figures(rows, charts=None, *, dpi=100, **chart_options):
         extra = {"target": target, "tolerance": tol} if metric == "lot_mean_nm" else {}
         figs[f"{caption}: individuals chart"] = trend_figure(
             ind, labels, title=f"{caption}: individuals chart, Western Electric rules",
-            ylabel=f"{caption} ({unit})", dpi=dpi, **extra)
+            ylabel=f"{caption} ({unit})", dpi=dpi,
+            floor=0.0 if metric in NON_NEGATIVE else None, **extra)
     for metric, (_ind, ew) in charts.items():
         caption, unit = METRICS[metric]
         figs[f"{caption}: EWMA chart"] = ewma_figure(
@@ -808,7 +818,74 @@ def _signal_rows(rows, signals):
     return sorted(out, key=lambda t: (t[0], t[2], t[3]))
 
 
-def history_html(rows, charts, *, title="filmmap run history", signals=None):
+#: Fewest baseline lots for control limits that are more than provisional: 20 to 25
+#: subgroups is the usual advice for setting Shewhart limits (D. C. Montgomery, Introduction
+#: to Statistical Quality Control, 6th ed., Wiley (2009), section 5.3 - from memory).
+MIN_BASELINE_LOTS = 20
+
+#: Metrics that cannot be negative (spreads): their lower control limit is drawn at 0.
+NON_NEGATIVE = ("wtw_pct", "wiw_mean_pct")
+
+
+def chart_filename(caption):
+    """File name of a chart, from what it shows: ``"Lot mean thickness: EWMA chart"`` ->
+    ``"lot_mean_thickness_ewma.png"``."""
+    import re
+
+    text = caption.lower().replace("individuals chart", "individuals").replace(
+        "ewma chart", "ewma")
+    text = re.sub(r"\((wtw|wiw)\)", "", text)
+    slug = re.sub(r"[^a-z0-9]+", "_", text).strip("_")
+    return f"{slug}.png"
+
+
+def baseline_warnings(charts):
+    """Plain-text warnings on limits set from too few lots (see `MIN_BASELINE_LOTS`)."""
+    out = []
+    for metric, pair in (charts or {}).items():
+        ind = pair[0] if isinstance(pair, tuple) else pair
+        if isinstance(ind, IndividualsChart):
+            n = int(np.asarray(ind.baseline).sum())
+            if n < MIN_BASELINE_LOTS:
+                cap = METRICS.get(metric, (metric, ""))[0]
+                out.append(f"{cap}: control limits from only {n} lot(s) - provisional; "
+                           f"{MIN_BASELINE_LOTS} or more lots are usually wanted")
+    return out
+
+
+def next_run_lines(nxt):
+    """A run-to-run estimate (``NextRun.as_dict()``) in words with units, one item a line.
+
+    The zone trims of the run-to-run estimate are absolute: the trims to have in force
+    during the next run, relative to the zones' untrimmed set points (unlike the
+    single-lot advice, whose trims are changes to the set points of the measured run).
+    """
+    def num(v, fmt):
+        return "—" if v is None or (isinstance(v, float) and not math.isfinite(v)) else fmt.format(v)
+
+    lines = []
+    step, now, nxt_min = nxt.get("adjust_step"), nxt.get("minutes_now"), nxt.get("minutes_next")
+    clip = {-1: " (at its lower bound)", 1: " (at its upper bound)"}.get(nxt.get("time_clipped"), "")
+    lines.append(f"{step} step: {num(now, '{:.1f}')} min now -> {num(nxt_min, '{:.1f}')} min "
+                 f"next{clip}")
+    trims = nxt.get("zone_trims_C") or {}
+    if trims:
+        # round before the sign so that 1e-14 reads +0.0, not a float artefact
+        text = ", ".join(f"{z} {round(float(v), 1) + 0.0:+.1f} K" for z, v in trims.items()
+                         if v is not None)
+        clipped = nxt.get("clipped_zones") or []
+        lines.append("zone trims to have in force next run (absolute, relative to the "
+                     f"untrimmed set points): {text}"
+                     + (f" (at the bound: {', '.join(clipped)})" if clipped else ""))
+    lines.append(f"predicted lot mean {num(nxt.get('predicted_mean_nm'), '{:.1f}')} nm"
+                 + (f", predicted WTW NU {num(nxt.get('predicted_wtw_pct'), '{:.2f}')} %"
+                    if nxt.get("predicted_wtw_pct") is not None else ""))
+    for w in nxt.get("warnings") or []:
+        lines.append(f"warning: {w}")
+    return lines
+
+
+def history_html(rows, charts, *, title="filmmap run history", signals=None, next_run=None):
     """A self-contained HTML page of a furnace's history.
 
     Parameters
@@ -821,8 +898,11 @@ def history_html(rows, charts, *, title="filmmap run history", signals=None):
     title : str
         Page title (escaped).
     signals : dict, optional
-        As `control_charts` returns: its flagged points are listed, and the lots with a
-        signal are set in bold in the lot table.
+        As `control_charts` returns: its flagged points are listed, the lots with a
+        signal are set in bold in the lot table, and limits from fewer than
+        `MIN_BASELINE_LOTS` lots are called provisional.
+    next_run : dict, optional
+        A run-to-run estimate (``NextRun.as_dict()``), shown in words (`next_run_lines`).
 
     Returns
     -------
@@ -883,6 +963,14 @@ def history_html(rows, charts, *, title="filmmap run history", signals=None):
                 p.append(f'<p class="muted">{_e(cap)}: centre {_fmt(ind.centre, 3)} {_e(unit)}, '
                          f"sigma {_fmt(ind.sigma, 4)} {_e(unit)} (average moving range / 1.128 "
                          f"over {int(ind.baseline.sum())} baseline lot(s)).</p>")
+    warns = baseline_warnings(signals)
+    if warns:
+        p.append('<h2>Warnings</h2><ul>' + "".join(f"<li>{_e(w)}</li>" for w in warns)
+                 + "</ul>")
+    if next_run:
+        p.append("<h2>Run-to-run estimate for the next run (advisory only)</h2><ul>"
+                 + "".join(f"<li>{_e(x)}</li>" for x in next_run_lines(next_run)) + "</ul>"
+                 + f'<p class="caution">{_e(next_run.get("caution") or _CAUTION)}</p>')
     if charts:
         p.append("<h2>Charts</h2>")
         for caption, image in charts.items():

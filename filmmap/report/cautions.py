@@ -17,7 +17,7 @@ CAUTION_PARAGRAPHS = (
     "approved by the process owner, stay within the furnace's qualified limits, and go "
     "through your site's safety rules and change-control procedure. Those rules and "
     "procedures always take precedence over anything filmmap prints.",
-    "Hazards: furnace tubes run above 1000 C; steam and pyrogenic H2-O2 torches (hydrogen) "
+    "Hazards: furnace tubes run above 1000 °C; steam and pyrogenic H2-O2 torches (hydrogen) "
     "are in use; HF and its residues on cleaned wafers are dangerous. Follow your local "
     "training, personal protective equipment (PPE) rules and interlocks.",
 )

@@ -156,7 +156,9 @@ def wtw_rows(view):
          + (f" / {p.central_region[0]}-{p.central_region[1]}" if p.central_region else "")),
         ("reference level (median of centre slots)", fmt(p.reference_nm, 2, "nm", none)),
         ("robust sigma (1.4826 MAD, floored)", fmt(p.robust_sigma_nm, 3, "nm", none)),
-        ("flag limit", (f"± {p.limit_nm:.2f} nm (k = {p.k:.2f})" if p.limit_nm is not None
+        ("flag limit", (f"± {p.limit_nm:.2f} nm from the reference level (k = {p.k:.2f} "
+                        "robust sigmas, set so that a boat without a real outlier flags a slot "
+                        "by chance about once in 100 lots)" if p.limit_nm is not None
                         else f"{MISSING} (robust rule off)")),
         ("flagged slots", ", ".join(map(str, p.flagged_slots)) or "none"),
         ("edge slots, load end", ", ".join(map(str, p.edge_slots_load)) or "none"),

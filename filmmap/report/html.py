@@ -22,7 +22,11 @@ import html
 from pathlib import Path
 
 from filmmap.io.atomic import atomic_path
+from filmmap.report.advicefig import (SLOT_HEADER, ZONE_HEADER, slot_rows, time_row,
+                                      zone_rows)
 from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS_TITLE
+from filmmap.report.decision import (IN_SPEC, OUT_OF_SPEC, UNITS_NOTE, advice_causes, decision,
+                                     has_standard_advice)
 from filmmap.report.formatting import (MISSING, compact_dict_text, flag_text, fmt, fmt_in_spec,
                                        fmt_wafer, is_long_scalar_dict, scalar_text, wtw_rows)
 from filmmap.report.images import ReportImages
@@ -73,6 +77,23 @@ code { font-size: 0.82rem; word-break: break-all; }
 .advice-wrap > div { flex: 2 1 420px; }
 .advice-wrap > aside { flex: 1 1 260px; }
 footer { margin-top: 3rem; color: var(--muted); font-size: 0.8rem; }
+.decision { border: 3px solid var(--accent); padding: 0.5rem 0.9rem 0.6rem; margin: 0.6rem 0;
+            background: #fafbfd; }
+.decision h2 { border: none; margin: 0.1rem 0 0.3rem; font-size: 1.35rem; }
+.decision.hold { border-color: #6b1f1f; }
+.decision.review { border-color: #7a5a00; }
+.decision .status { display: inline-block; padding: 0.05rem 0.5rem; color: #fff;
+                    background: var(--accent); border-radius: 3px; }
+.decision.hold .status { background: #6b1f1f; }
+.decision.review .status { background: #7a5a00; }
+.decision ul { margin: 0.2rem 0 0.3rem 1.2rem; padding: 0; }
+.decision .rule { color: var(--muted); font-size: 0.82rem; margin: 0.2rem 0; }
+.decision .action { font-size: 1.02rem; margin: 0.4rem 0 0.2rem; }
+.decision .short-caution { font-size: 0.85rem; margin: 0.2rem 0; color: var(--muted); }
+.decision table.kv { margin: 0.2rem 0; }
+.decision table.kv th, .decision table.kv td { padding: 0.1rem 0.5rem; }
+details summary { cursor: pointer; color: var(--accent); margin: 0.4rem 0; }
+.evidence-grid { display: flex; flex-wrap: wrap; gap: 0.6rem; }
 @media print {
   @page { size: A4; margin: 14mm; }
   body { max-width: none; padding: 0; font-size: 10pt; }
@@ -85,7 +106,7 @@ footer { margin-top: 3rem; color: var(--muted); font-size: 0.8rem; }
   thead { display: table-header-group; }
   table { font-size: 8pt; }
   h2 { break-after: avoid; page-break-after: avoid; }
-  .verdict, .cautions, th { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+  .decision, .verdict, .cautions, th { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
 }
 """
 
@@ -121,9 +142,11 @@ def _kv_table(rows, cls="kv"):
     return "".join(out)
 
 
-def _cautions_html(title_tag="h2", with_id=True):
+def _cautions_html(title_tag="h2", with_id=True, advice=None):
     idattr = ' id="cautions"' if with_id else ""
-    paras = "".join(f"<p>{e(p)}</p>" for p in CAUTION_PARAGRAPHS)
+    extra = (advice or {}).get("caution") if isinstance(advice, dict) else None
+    paras = "".join(f"<p>{e(p)}</p>" for p in CAUTION_PARAGRAPHS
+                    + ((f"About the advice: {extra}",) if isinstance(extra, str) else ()))
     return (f'<div class="cautions"{idattr}><{title_tag}>{e(CAUTIONS_TITLE)}</{title_tag}>'
             f"{paras}</div>")
 
@@ -142,6 +165,128 @@ def _advice_value(value, depth=0):
         return "<ul>" + "".join(f"<li>{_advice_value(v, depth + 1)}</li>" for v in value) + "</ul>"
     text = scalar_text(value)
     return f'<span class="missing">{e(text)}</span>' if text == MISSING else e(text)
+
+
+def _decision_html(view, advice):
+    """The decision block (disposition, rule, key numbers, next-run action, short caution)."""
+    dec = decision(view, advice)
+    d = dec.disposition
+    klass = {IN_SPEC: "release", OUT_OF_SPEC: "hold"}.get(d.status, "review")
+    reasons = ("<ul>" + "".join(f"<li>{e(r)}</li>" for r in d.reasons) + "</ul>"
+               if d.reasons else "")
+    caution = e(dec.caution).replace("see the cautions",
+                                     'see the <a href="#cautions">cautions</a>')
+    action = (f'{e(dec.action)} <a href="#advice">Details of the advice</a>' if dec.action
+              else e(dec.no_action_reason))
+    return (f'<section id="decision" class="decision {klass}" aria-label="decision">'
+            f'<h2>Decision: <span class="status">{e(d.action.upper())}</span> '
+            f'lot {e(d.status)}</h2>{reasons}'
+            f'<p class="rule">{e(d.rule)}</p>'
+            + _kv_table(dec.key_numbers)
+            + f'<p class="action" id="next-run"><strong>Next run:</strong> {action}</p>'
+            f'<p class="short-caution">{caution}</p></section>')
+
+
+def _table(header, rows, text_cols=(0,)):
+    out = ["<table><thead><tr>"]
+    out += [f'<th class="text">{e(h)}</th>' if i in text_cols else f"<th>{e(h)}</th>"
+            for i, h in enumerate(header)]
+    out.append("</tr></thead><tbody>")
+    for r in rows:
+        out.append("<tr>" + "".join(_cell(c, "text" if i in text_cols else None)
+                                    for i, c in enumerate(r)) + "</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _advice_html(view, advice, images):
+    """The advice section: action, causes, tables by zone and step, the predicted profile."""
+    p = ['<section id="advice"><h2>Advice for the next run (advisory only)</h2>']
+    if not has_standard_advice(advice):
+        # an advice dict without the standard keys: shown as it is, escaped
+        p.append(_advice_value(dict(advice)) + "</section>")
+        return "".join(p)
+    dec = decision(view, advice)
+    p.append(f'<p class="action"><strong>{e(dec.action)}</strong></p>')
+    p.append(f'<p class="meta">{e(UNITS_NOTE)} The cautions at the top of the report apply '
+             "to every number here.</p>")
+    causes = advice_causes(advice, view)
+    if causes:
+        p.append("<h3>What each recommendation answers</h3>"
+                 + _table(("recommendation", "cause it answers"), causes, (0, 1)))
+    p.append("<h3>Step time</h3>" + _table(
+        ("step", "now (min)", "next (min)", "change (%)", "bound (%)"), [time_row(advice)]))
+    zrows = zone_rows(advice, view)
+    if zrows:
+        p.append("<h3>Heater zones</h3>" + _table(ZONE_HEADER, zrows))
+        common = advice.get("common_offset_C")
+        resid = advice.get("zone_fit_residual_C")
+        expl = advice.get("zone_fit_explained")
+        bits = []
+        if isinstance(common, (int, float)):
+            bits.append(f"common offset of the boat {common:+.2f} K (answered by the time, "
+                        "not by the trims)")
+        if isinstance(resid, (int, float)):
+            bits.append(f"slot-to-slot part the zones leave unexplained {resid:.2f} K rms")
+        if isinstance(expl, (int, float)):
+            bits.append(f"zones explain {100 * expl:.0f} % of the slot-to-slot variance")
+        if bits:
+            p.append(f"<p>{e('; '.join(bits))}.</p>")
+    png = images.advice_profile(advice)
+    if png is not None:
+        p.append("<figure>" + _img(png, "Slot profile now and predicted after the advice",
+                                   "advice-profile")
+                 + "<figcaption>Model of this lot per slot (now) and the model's prediction "
+                   "for the next run with the advised time and trims, against the tolerance "
+                   "band. A slot deviation the zones do not explain stays in the prediction."
+                   "</figcaption></figure>")
+    warns = advice.get("warnings") or []
+    p.append("<h3>Warnings about the advice</h3>"
+             + ("<ul>" + "".join(f"<li>{e(w)}</li>" for w in warns) + "</ul>" if warns
+                else "<p>None.</p>"))
+    srows = slot_rows(advice, view)
+    if srows:
+        p.append(f"<details><summary>Per-slot numbers ({len(srows)} slots)</summary>"
+                 + _table(SLOT_HEADER, srows) + "</details>")
+    model = advice.get("model")
+    if isinstance(model, dict):
+        p.append("<details><summary>Growth-model settings</summary>"
+                 + _kv_table([(k, scalar_text(v)) for k, v in model.items()]) + "</details>")
+    p.append("</section>")
+    return "".join(p)
+
+
+def _evidence_html(view, images):
+    """Measured vs model spectra of failed, suspect and worst-fitting sites."""
+    from filmmap.report.evidence import MAX_ON_PAGE
+
+    png, sites, hints, n_bad = images.evidence()
+    p = ['<section id="evidence"><h2>Evidence: measured against model spectra</h2>']
+    if not sites:
+        p.append("<p>No failed or suspect site, and no fit quality to rank the accepted "
+                 "ones.</p></section>")
+        return "".join(p)
+    p.append(f"<p>{n_bad} failed or suspect site(s) in the lot. Shown: the worst site of "
+             "each cause in turn, then the worst-fitting accepted sites, at most "
+             f"{MAX_ON_PAGE}. Each panel: measured points and the model at the site's best "
+             "fit (above), the residual measured - model (below).</p>")
+    if png is not None:
+        p.append("<figure>" + _img(png, "Measured and model spectra of failed and suspect "
+                                        "sites", "evidence-spectra")
+                 + "</figure>")
+        if n_bad > len([s for s in sites if s.verdict != "accepted"]):
+            p.append("<p>All failed and suspect sites are drawn in evidence.pdf.</p>")
+    else:
+        p.append('<p class="missing">The spectra were not kept, so no overlay is drawn: '
+                 "run reduce again with --keep-spectra (writes spectra.nc) to see the measured "
+                 "and model spectra of these sites.</p>")
+    rows = [(s.wafer, str(s.slot), str(s.site), s.verdict, s.kind,
+             fmt(s.fit_quality, 3, reason="no value"), h or MISSING, s.note)
+            for s, h in zip(sites, hints)]
+    p.append(_table(("wafer", "slot", "site", "verdict", "cause", "fit quality",
+                     "what the overlay shows", "fit note"), rows, (0, 3, 4, 6, 7)))
+    p.append("</section>")
+    return "".join(p)
 
 
 WIW_HEADER = ("wafer", "slot", "role", "mean (nm)", "sigma (nm)", "NU (%)", "range (nm)",
@@ -185,8 +330,31 @@ def _failed_table(sites):
     return "".join(out)
 
 
-def _wafer_section(view, images, index, w):
-    png, why = images.wafer_map(w.wafer)
+#: Lots of up to this many wafers have every wafer map embedded; larger lots embed the maps
+#: of the wafers that need a look (`maps_to_embed`) and point to figures/ for the rest, so
+#: that report.html stays a few MB (the contact sheet shows every wafer).
+MAX_EMBEDDED_MAPS = 50
+
+
+def maps_to_embed(view):
+    """Ids of the wafers whose map report.html embeds (see `MAX_EMBEDDED_MAPS`)."""
+    if len(view.wafers) <= MAX_EMBEDDED_MAPS:
+        return {w.wafer for w in view.wafers}
+    bad = {f.wafer for f in view.failed_sites} | {f.wafer for f in view.suspect_sites}
+    need = [w.wafer for w in view.wafers
+            if w.in_spec is False or w.flagged or w.excluded or w.wafer in bad]
+    return set(need[:MAX_EMBEDDED_MAPS])
+
+
+def _wafer_section(view, images, index, w, embed=True):
+    from filmmap.wafermap.figures import safe_filename
+
+    if not embed:
+        png, why = None, (f"not embedded in a lot of {len(view.wafers)} wafers (only those "
+                          "that need a look are); the map is figures/"
+                          f"{safe_filename(w.wafer)}.png and the wafer is on the contact sheet")
+    else:
+        png, why = images.wafer_map(w.wafer)
     fig = (f"<figure>{_img(png, f'Thickness map of wafer {w.wafer}', width=560)}"
            f"<figcaption>Thickness map, wafer {e(w.wafer)}, slot {w.slot}</figcaption></figure>"
            if png is not None else f'<p class="missing">No map: {e(why)}</p>')
@@ -263,25 +431,30 @@ def _render(emit, view, ds, images, outdir, advice, dpi):
             f"{len(view.wafers)} wafers measured, {view.n_sites_measured} sites",
             (f"target {view.target_nm:g} nm ± {view.tolerance_pct:g} %"
              if view.target_nm is not None else "no target")]
-    nav = [("cautions", "Cautions"), ("profile", "Slot profile"), ("wtw", "WTW"),
+    nav = [("decision", "Decision")] + ([("advice", "Advice")] if advice else []) + [
+           ("cautions", "Cautions"), ("profile", "Slot profile"), ("wtw", "WTW"),
            ("wiw", "WIW table"), ("contact", "Contact sheet"), ("wafers", "Wafers"),
-           ("fit", "Fit quality"), ("warnings", "Warnings")]
-    if advice:
-        nav.append(("advice", "Advice"))
+           ("fit", "Fit quality"), ("evidence", "Evidence"), ("warnings", "Warnings")]
     nav.append(("provenance", "Provenance"))
     p = _Sink(emit)
     p.append("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
              "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
              f"<title>filmmap report: lot {e(lot)}</title><style>{_CSS}</style></head><body>")
     p.append(f'<header id="top"><h1>Lot {e(lot)}</h1>')
-    p.append("".join(f'<p class="meta">{e(m)}</p>' for m in meta))
+    p.append(f'<p class="meta">{e(" · ".join(meta))}</p>')
+    p.append(_decision_html(view, advice))
     p.append(f'<p class="verdict" id="verdict">{e(view.verdict)}</p>')
-    p.append(_cautions_html())
+    p.append(_cautions_html(advice=advice))
     p.append("<nav><ul>" + "".join(f'<li><a href="#{a}">{e(t)}</a></li>' for a, t in nav)
              + "</ul></nav></header>")
 
+    # advice: right after the decision it details
+    if advice:
+        p.append(_advice_html(view, advice, images).replace('<section id="advice">',
+                                                            '<section id="advice" class="first">'))
+
     # slot profile
-    p.append('<section id="profile" class="first"><h2>Slot profile</h2><figure>'
+    p.append('<section id="profile"' + ('' if advice else ' class="first"') + '><h2>Slot profile</h2><figure>'
              + _img(images.slot_profile(), SLOT_PROFILE_ALT, SLOT_PROFILE_IMG_ID)
              + "<figcaption>Wafer mean thickness against boat slot, error bars ± 1 within-wafer "
              "sigma. Slot 1 is the load (door) end. Edge slots: flagged product slots "
@@ -313,7 +486,9 @@ def _render(emit, view, ds, images, outdir, advice, dpi):
 
     # wafers
     p.append('<section id="wafers"><h2>Wafers</h2>')
-    p.extend(_wafer_section(view, images, i + 1, w) for i, w in enumerate(view.wafers))
+    embed = maps_to_embed(view)
+    p.extend(_wafer_section(view, images, i + 1, w, w.wafer in embed)
+             for i, w in enumerate(view.wafers))
     p.append("</section>")
 
     # fit quality
@@ -332,6 +507,8 @@ def _render(emit, view, ds, images, outdir, advice, dpi):
         p.append("<p>None: every measured site has an accepted fit.</p>")
     p.append("</section>")
 
+    p.append(_evidence_html(view, images))
+
     # warnings and notes
     p.append('<section id="warnings"><h2>Warnings and notes</h2>')
     p.append("<h3>Warnings</h3>" + ("<ul>" + "".join(f"<li>{e(x)}</li>" for x in view.warnings)
@@ -340,12 +517,6 @@ def _render(emit, view, ds, images, outdir, advice, dpi):
         p.append("<h3>Notes on the slot profile</h3><ul>"
                  + "".join(f"<li>{e(x)}</li>" for x in view.notes) + "</ul>")
     p.append("</section>")
-
-    # advice
-    if advice:
-        p.append('<section id="advice"><h2>Advice for the next run (advisory only)</h2>'
-                 '<div class="advice-wrap"><div>' + _advice_value(dict(advice)) + "</div><aside>"
-                 + _cautions_html("h3", with_id=False) + "</aside></div></section>")
 
     # provenance
     p.append('<section id="provenance"><h2>Provenance</h2>')

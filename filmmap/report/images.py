@@ -20,10 +20,10 @@ from filmmap.report.slotplot import slot_profile_figure
 
 
 def figure_png(fig, dpi=None):
-    """PNG bytes of a matplotlib Figure."""
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi if dpi is not None else fig.dpi)
-    return buf.getvalue()
+    """PNG bytes (palette PNG, see `filmmap.wafermap.figures.png_bytes`) of a Figure."""
+    from filmmap.wafermap.figures import png_bytes
+
+    return png_bytes(fig, dpi)
 
 
 class ReportImages:
@@ -40,12 +40,17 @@ class ReportImages:
         Resolution of the images rendered here.
     render_missing : bool
         Render wafer maps and the contact sheet that are not on disk.
+    no_map_reason : str, optional
+        Why there are no maps (e.g. "maps not drawn (reduce --no-figures)"): then no map
+        and no contact sheet is looked for or drawn, and the reports say this reason.
     """
 
-    def __init__(self, view, ds, outdir=None, *, dpi=100, render_missing=True):
+    def __init__(self, view, ds, outdir=None, *, dpi=100, render_missing=True,
+                 no_map_reason=None):
         self.view, self.ds, self.dpi = view, ds, float(dpi)
         self.outdir = None if outdir is None else Path(outdir)
         self.render_missing = bool(render_missing)
+        self.no_map_reason = no_map_reason
         self._cache = {}
 
     def _cached(self, key, make):
@@ -62,6 +67,51 @@ class ReportImages:
         """PNG bytes of the fit-quality histogram."""
         return self._cached("fitq", lambda: figure_png(fit_quality_figure(self.ds, dpi=self.dpi)))
 
+    def advice_profile(self, advice):
+        """PNG bytes of the slot profile now and predicted after ``advice`` (None without one)."""
+        from filmmap.report.advicefig import advice_profile_figure
+        from filmmap.report.decision import has_standard_advice
+
+        if not has_standard_advice(advice) or not advice.get("predicted_nm_by_slot_next"):
+            return None
+        return self._cached("advice", lambda: figure_png(
+            advice_profile_figure(self.view, advice, dpi=self.dpi)))
+
+    def spectra(self):
+        """spectra.nc of the output folder as a dataset (None when spectra were not kept)."""
+        def load():
+            path = None if self.outdir is None else self.outdir / "spectra.nc"
+            if path is None or not path.is_file():
+                return None
+            import xarray as xr
+
+            return xr.open_dataset(path, engine="h5netcdf")
+        return self._cached("spectra", load)
+
+    def evidence(self):
+        """``(png or None, sites, hints, n_bad)``: measured-vs-model panels of the report.
+
+        ``sites`` are the chosen `filmmap.report.evidence.EvidenceSite`, ``hints`` their
+        overlays in words, ``n_bad`` the failed plus suspect sites in all; the PNG is None
+        when the spectra were not kept (or no site needs evidence).
+        """
+        def make():
+            from filmmap.report.evidence import evidence_figure, evidence_sites
+
+            sites, n_bad = evidence_sites(self.view, self.ds)
+            spectra = self.spectra()
+            if not sites or spectra is None:
+                return None, sites, [""] * len(sites), n_bad
+            fig, hints = evidence_figure(sites, spectra, dpi=self.dpi)
+            return figure_png(fig), sites, hints, n_bad
+        return self._cached("evidence", make)
+
+    def close(self):
+        """Close spectra.nc if it was opened."""
+        sp = self._cache.pop("spectra", None)
+        if sp is not None:
+            sp.close()
+
     def _on_disk(self, relpath):
         if self.outdir is None:
             return None
@@ -73,27 +123,26 @@ class ReportImages:
         return self._cached("sheet", self._make_contact_sheet)
 
     def _make_contact_sheet(self):
+        if self.no_map_reason:
+            return None, self.no_map_reason
         data = self._on_disk("contact_sheet.png")
         if data is not None:
             return data, ""
         if not self.render_missing:
             return None, "contact_sheet.png was not written by the reduce step"
-        from filmmap.outputs import coordinate_groups
         from filmmap.wafermap.figures import lot_contact_sheet
 
         ds = self.ds
-        groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
-        if len(groups) != 1:
-            return None, "the wafers do not share one site layout: no common contact sheet"
-        _, x, y, present = groups[0]
-        t, ok = ds["thickness"].values, ds["fit_ok"].values
+        oos = set(self.view.wtw.out_of_spec_ids) if self.view.target_nm is not None else set()
         try:
-            fig = lot_contact_sheet(np.where(present, t, np.nan), ok & present, x, y,
+            # per-wafer coordinates: wafers with another layout (a missing site) keep their own
+            fig = lot_contact_sheet(ds["thickness"].values, ds["fit_ok"].values,
+                                    ds["x_mm"].values, ds["y_mm"].values,
                                     self.view.diameter_mm, self.view.edge_exclusion_mm,
                                     wafer_ids=[str(w) for w in ds["wafer"].values],
                                     slots=[int(s) for s in ds["slot"].values],
-                                    dpi=self.dpi, panel_in=1.6,
-                                    title=f"lot {self.view.lot_id}: thickness (nm), common scale")
+                                    dpi=self.dpi, panel_in=1.6, lot_id=self.view.lot_id,
+                                    out_of_spec=[str(w) in oos for w in ds["wafer"].values])
             return figure_png(fig), ""
         except Exception as exc:  # noqa: BLE001 - the report says why, it does not abort
             return None, f"the contact sheet could not be drawn ({type(exc).__name__}: {exc})"
@@ -105,6 +154,8 @@ class ReportImages:
     def _make_wafer_map(self, wafer):
         from filmmap.wafermap.figures import safe_filename, wafer_map_figure
 
+        if self.no_map_reason:
+            return None, self.no_map_reason
         data = self._on_disk(Path("figures") / (safe_filename(wafer) + ".png"))
         if data is not None:
             return data, ""
@@ -120,9 +171,10 @@ class ReportImages:
         if not np.any(ok & np.isfinite(t)):
             return None, "no site with an accepted fit: nothing to map"
         try:
-            fig = wafer_map_figure(t, ok, np.where(present, x, 0.0), np.where(present, y, 0.0),
-                                   self.view.diameter_mm, self.view.edge_exclusion_mm,
-                                   wafer_id=wafer, slot=int(ds["slot"].values[i]), dpi=self.dpi)
+            fig = wafer_map_figure(t, ok, x, y, self.view.diameter_mm,
+                                   self.view.edge_exclusion_mm, wafer_id=wafer,
+                                   slot=int(ds["slot"].values[i]), dpi=self.dpi,
+                                   present=present, lot_id=self.view.lot_id)
             return figure_png(fig), ""
         except Exception as exc:  # noqa: BLE001 - the report says why, it does not abort
             return None, f"the map could not be drawn ({type(exc).__name__}: {exc})"

@@ -2,24 +2,33 @@
 
 Page order
 ----------
-Lot pages first, then exactly one page per wafer (slot order):
+Lot pages first; per-wafer pages only on request (``wafer_pages=True``):
 
-1. **Lot summary**: header, verdict, headline figures, the cautions, warnings
-   and notes.
-2. **Slot profile**: the plot (vector) and the reasons of the flagged slots.
-3. **Tables**: the wafer-to-wafer (WTW) figures and the within-wafer (WIW)
-   table of every wafer.
-4. **Contact sheet** (or the reason there is none).
-5. **Fit quality**: the histogram (vector) and the failed sites.
-6. **Advice**, only when an advice dict is given, with the cautions.
-7. **Provenance**: software, input files with SHA-256, stack, models and sources.
+1. **Decision and lot summary**: the decision block of `filmmap.report.decision`
+   (disposition with its rule, key numbers, the next-run action in one sentence), then
+   the verdict, the cautions (the only copy), warnings and notes.
+2. **Advice**, only when an advice dict is given: the predicted slot profile (vector),
+   the action, what each recommendation answers, the step and zone tables, warnings and
+   the per-slot numbers.
+3. **Slot profile**: the plot (vector) and the reasons of the flagged slots.
+4. **Tables**: the wafer-to-wafer (WTW) figures and the within-wafer (WIW) table of
+   every wafer.
+5. **Contact sheet** (or the reason there is none).
+6. **Fit quality**: the histogram (vector) and the failed sites.
+   **Evidence**, only when sites failed or are suspect: measured against model spectra
+   of the worst site of each cause (`filmmap.report.evidence`), or how to get them.
+7. **Index of wafers**: slot, role, failed and suspect sites and the map file of each
+   wafer (left out with ``wafer_pages=True``, which adds one page per wafer instead).
+8. **Provenance**: software, input files with SHA-256, stack, models and sources.
 
-So a lot has `BASE_LOT_PAGES` = 6 lot pages (7 with advice) as long as every
-section fits its page; a section that does not (many warnings, flagged
-slots, wafers, failed sites or input files) continues on extra pages headed
-"(continued)", with the table header repeated. `lot_page_count` gives the
-exact number for a lot before anything is drawn; `pdf_page_plan` lists the
-pages. For scale: one table page holds the WTW figures and about 50 wafers.
+So a lot has `BASE_LOT_PAGES` = 7 lot pages (one more with failed or suspect sites,
+one or more with advice) as long as every
+section fits its page; a section that does not (many warnings, flagged slots, wafers,
+failed sites or input files) continues on extra pages headed "(continued)", with the
+table header repeated. `lot_page_count` gives the exact number for a lot before
+anything is drawn; `pdf_page_plan` lists the pages. For scale: one table page holds the
+WTW figures and about 50 wafers. The PDF stays a few pages long however many wafers the
+lot has (the maps are in report.html and figures/).
 
 A wafer page shows the wafer's map (from ``OUTDIR/figures``, or rendered),
 its numbers and its failed sites (the first few; all of them are on the fit
@@ -44,7 +53,9 @@ from matplotlib.figure import Figure
 
 from filmmap import __version__
 from filmmap.io.atomic import atomic_path
+from filmmap.report.advicefig import draw_advice_profile, slot_rows, time_row, zone_rows
 from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS_TITLE
+from filmmap.report.decision import UNITS_NOTE, advice_causes, decision, has_standard_advice
 from filmmap.report.fitquality import draw_fit_quality
 from filmmap.report.formatting import (MISSING, compact_dict_text, flag_text, fmt, fmt_in_spec,
                                        is_long_scalar_dict, is_number, missing_reason,
@@ -54,8 +65,8 @@ from filmmap.report.provenance import provenance
 from filmmap.report.slotplot import draw_slot_profile
 
 #: Lot pages when every section fits its page (cover, slot profile, tables,
-#: contact sheet, fit quality, provenance); +1 with advice.
-BASE_LOT_PAGES = 6
+#: contact sheet, fit quality, index of wafers, provenance); more with advice.
+BASE_LOT_PAGES = 7
 
 PAGE_IN = (8.27, 11.69)                  # A4 portrait
 _MARGIN_IN = 0.6
@@ -85,6 +96,7 @@ _PROFILE_UNITS = 46
 _FITQ_UNITS = 28
 _WAFER_MAP_UNITS = 42
 _WAFER_FAILED_MAX = 12
+_ADVICE_PLOT_UNITS = 34
 
 
 @dataclass
@@ -173,9 +185,26 @@ def _short(text, width):
 
 # --------------------------------------------------------------------------- page plans
 
-def _cover_lines(view):
+def _decision_lines(view, advice=None):
+    """The decision block (`filmmap.report.decision`) as body lines: heads page 1."""
+    dec = decision(view, advice)
+    d = dec.disposition
+    lines = _wrap("h", f"Decision: {d.action.upper()}, lot {d.status}")
+    for r in d.reasons:
+        lines += _wrap("p", f"• {r}", indent="   ")
+    lines += _wrap("p", d.rule)
+    lines += [("gap", "")]
+    for k, v in dec.key_numbers:
+        lines += _wrap("m", f"{k:<44s}{v}", indent=" " * 44)
+    lines += [("gap", "")]
+    lines += _wrap("b", "Next run: " + (dec.action or dec.no_action_reason))
+    lines += _wrap("p", dec.caution)
+    return lines
+
+
+def _cover_lines(view, advice=None):
     w = view.wtw
-    lines = []
+    lines = _decision_lines(view, advice) + [("gap", "")]
     meta = [f"furnace: {view.furnace or 'not given'}", f"run date: {view.run_date or 'not given'}",
             f"{len(view.wafers)} wafers measured, {view.n_sites_measured} sites, "
             f"boat of {view.boat_size} slots",
@@ -184,23 +213,17 @@ def _cover_lines(view):
     for m in meta:
         lines += _wrap("p", m)
     lines += [("gap", "")] + _wrap("h", "Verdict") + _wrap("b", view.verdict) + [("gap", "")]
-    lines += _wrap("h", "Headline figures")
-    none = "no product wafer with a usable mean"
-    few = "fewer than 2 product wafers"
-    for k, v in (("grand mean of product wafers", fmt(w.grand_mean_nm, 2, "nm", none)),
-                 ("WTW NU (100 sigma / mean)", fmt(w.wtw_nu_pct, 3, "%", few)),
-                 ("WTW range", fmt(w.range_nm, 2, "nm", none)),
-                 ("in spec", f"{w.in_spec_count} of {w.n_product} product wafers"
-                  if view.target_nm is not None else f"{MISSING} (no target)"),
-                 ("edge slots", ", ".join(map(str, view.profile.edge_slots)) or "none"),
+    lines += _wrap("h", "More lot figures")
+    for k, v in (("WTW range", fmt(w.range_nm, 2, "nm", "no product wafer with a usable mean")),
                  ("flat zone", "slots {}-{}".format(*view.profile.flat_zone)
                   if view.profile.flat_zone else f"{MISSING} (none)"),
                  ("extra dummies suggested", f"load end {view.profile.extra_dummies['load']}, "
-                  f"source end {view.profile.extra_dummies['source']} (advisory)"),
-                 ("failed sites", f"{len(view.failed_sites)} of {view.n_sites_measured}")):
+                  f"source end {view.profile.extra_dummies['source']} (advisory)")):
         lines += _wrap("m", f"{k:<32s}{v}")
     lines += [("gap", "")] + _wrap("h", CAUTIONS_TITLE)
-    for para in CAUTION_PARAGRAPHS:
+    extra = advice.get("caution") if isinstance(advice, dict) else None
+    for para in CAUTION_PARAGRAPHS + ((f"About the advice: {extra}",)
+                                      if isinstance(extra, str) else ()):
         lines += _wrap("p", para) + [("gap", "")]
     lines += _wrap("h", "Warnings")
     if view.warnings:
@@ -285,7 +308,8 @@ def _fit_lines(view):
     return lines, head
 
 
-def _advice_lines(advice):
+def _advice_generic_lines(advice):
+    """An advice dict without the standard keys, walked as it is."""
     lines = []
 
     def walk(value, key, depth):
@@ -311,9 +335,45 @@ def _advice_lines(advice):
             lines.extend(_wrap("m", f"{pad}{key}: {scalar_text(value)}", indent=pad + "    "))
 
     walk(dict(advice), None, 0)
-    lines += [("gap", "")] + _wrap("h", CAUTIONS_TITLE)
-    for para in CAUTION_PARAGRAPHS:
-        lines += _wrap("p", para) + [("gap", "")]
+    return lines
+
+
+_ZONE_FMT = "{:<12s} {:>7s}  {:>17s}  {:>13s}  {:>8s}  {:>8s}"
+_SLOT_FMT = "{:>5s} {:>14s} {:>12s} {:>16s} {:>18s}"
+
+
+def _advice_lines(advice, view=None):
+    """The advice page: the action, causes, step and zone tables, warnings, per-slot table.
+
+    The cautions are on page 1 only (once); the advice page points to them.
+    """
+    if view is None or not has_standard_advice(advice):
+        return _advice_generic_lines(advice)
+    lines = _wrap("b", decision(view, advice).action)
+    lines += _wrap("p", UNITS_NOTE + " Advisory only: the cautions on page 1 apply.")
+    lines += [("gap", "")] + _wrap("h", "What each recommendation answers")
+    for rec, cause in advice_causes(advice, view):
+        lines += _wrap("p", f"• {rec}: {cause}", indent="   ")
+    lines += [("gap", "")] + _wrap("h", "Step time")
+    step, now, nxt, ch, bd = time_row(advice)
+    lines += _wrap("m", f"{step}: {now} min now -> {nxt} min next ({ch} %, bound {bd} %)")
+    zrows = zone_rows(advice, view)
+    if zrows:
+        lines += [("gap", "")] + _wrap("h", "Heater zones (K)")
+        lines += [("mh", _ZONE_FMT.format("zone", "slots", "error now (est.)", "advised trim",
+                                          "bound", "at bound"))]
+        lines += [("m", _ZONE_FMT.format(*(_short(c, 16) for c in r))) for r in zrows]
+    warns = advice.get("warnings") or []
+    lines += [("gap", "")] + _wrap("h", "Warnings about the advice")
+    for x in warns or ["None."]:
+        lines += _wrap("p", f"• {x}", indent="   ")
+    srows = slot_rows(advice, view)
+    if srows:
+        lines += [("gap", "")] + _wrap("h", "Per slot")
+        head = [("mh", _SLOT_FMT.format("slot", "measured nm", "model now nm",
+                                        "predicted next nm", "eff. offset now K"))]
+        lines += [("__table__", "")] + head + [("m", _SLOT_FMT.format(*r)) for r in srows]
+        lines += [("__end_table__", "")]
     return lines
 
 
@@ -343,7 +403,30 @@ def _provenance_lines(prov):
     return lines
 
 
-def pdf_page_plan(view, ds, advice=None, prov=None):
+def _index_lines(view):
+    """Index of the wafers: where each wafer's map and numbers are (no per-wafer pages)."""
+    from filmmap.wafermap.figures import safe_filename
+
+    n_fail, n_susp = {}, {}
+    for f in view.failed_sites:
+        n_fail[f.wafer] = n_fail.get(f.wafer, 0) + 1
+    for f in view.suspect_sites:
+        n_susp[f.wafer] = n_susp.get(f.wafer, 0) + 1
+    lines = _wrap("p", "Each wafer's thickness map is figures/<wafer>.png in the output folder "
+                       "and in report.html; its numbers are in the within-wafer table. "
+                       "Per-wafer pages in this PDF: reduce with --pdf-wafer-pages.")
+    head = [("mh", _INDEX_FMT.format("wafer", "slot", "role", "failed", "suspect", "map file"))]
+    rows = [("m", _INDEX_FMT.format(_short(w.wafer, 20), str(w.slot), w.role,
+                                    str(n_fail.get(w.wafer, 0)), str(n_susp.get(w.wafer, 0)),
+                                    "figures/" + _short(safe_filename(w.wafer), 60) + ".png"))
+            for w in view.wafers]
+    return lines + [("__table__", "")] + head + rows + [("__end_table__", "")], head
+
+
+_INDEX_FMT = "{:<20s} {:>4s} {:<7s} {:>6s} {:>7s}  {}"
+
+
+def pdf_page_plan(view, ds, advice=None, prov=None, wafer_pages=False):
     """The pages of report.pdf, in order (see the module docstring).
 
     Parameters
@@ -353,18 +436,27 @@ def pdf_page_plan(view, ds, advice=None, prov=None):
     advice : dict, optional
     prov : dict, optional
         `filmmap.report.provenance.provenance` output (computed when omitted).
+    wafer_pages : bool
+        One page per wafer at the end (default: an index of the wafers instead, so the
+        PDF's size and memory do not grow a page per wafer).
 
     Returns
     -------
     list of PageSpec
-        Lot pages (kinds ``cover``, ``profile``, ``tables``, ``contact``,
-        ``fitq``, ``advice``, ``provenance`` and ``text`` for continuations),
-        then one ``wafer`` page per wafer.
+        Lot pages (kinds ``cover``, ``advice``, ``profile``, ``tables``, ``contact``,
+        ``fitq``, ``index``, ``provenance`` and ``text`` for continuations), then with
+        ``wafer_pages`` one ``wafer`` page per wafer.
     """
     prov = prov or provenance(ds, advice)
     pages = []
-    pages += _paginate("cover", f"Lot {view.lot_id}: furnace-run report", _cover_lines(view),
-                       PAGE_UNITS)
+    pages += _paginate("cover", f"Lot {view.lot_id}: furnace-run report",
+                       _cover_lines(view, advice), PAGE_UNITS)
+    if advice:
+        plot = _ADVICE_PLOT_UNITS if images_advice_plot(advice) else 0
+        al = _advice_lines(advice, view)
+        head = [ln for ln in al if ln[0] == "mh"][-1:]
+        pages += _paginate("advice", "Advice for the next run (advisory only)", al,
+                           PAGE_UNITS - plot, head)
     pages += _paginate("profile", "Slot profile", _profile_lines(view),
                        PAGE_UNITS - _PROFILE_UNITS)
     tl, th = _table_lines(view)
@@ -372,17 +464,25 @@ def pdf_page_plan(view, ds, advice=None, prov=None):
     pages.append(PageSpec("contact", "Lot contact sheet"))
     fl, fh = _fit_lines(view)
     pages += _paginate("fitq", "Fit quality", fl, PAGE_UNITS - _FITQ_UNITS, fh)
-    if advice:
-        pages += _paginate("advice", "Advice for the next run (advisory only)",
-                           _advice_lines(advice), PAGE_UNITS)
+    if view.failed_sites or view.suspect_sites:
+        pages.append(PageSpec("evidence", "Evidence: measured against model spectra"))
+    if not wafer_pages:
+        il, ih = _index_lines(view)
+        pages += _paginate("index", "Index of wafers", il, PAGE_UNITS, ih)
     pages += _paginate("provenance", "Provenance", _provenance_lines(prov), PAGE_UNITS)
-    for w in view.wafers:
-        pages.append(PageSpec("wafer", f"Wafer {w.wafer}: slot {w.slot}, {w.role}", wafer=w))
+    if wafer_pages:
+        for w in view.wafers:
+            pages.append(PageSpec("wafer", f"Wafer {w.wafer}: slot {w.slot}, {w.role}", wafer=w))
     return pages
 
 
+def images_advice_plot(advice):
+    """True when the advice page carries the predicted slot-profile plot."""
+    return has_standard_advice(advice) and bool(advice.get("predicted_nm_by_slot_next"))
+
+
 def lot_page_count(view, ds, advice=None):
-    """Number of lot pages (before the wafer pages) of report.pdf for this lot."""
+    """Number of lot pages (before any wafer page) of report.pdf for this lot."""
     return sum(1 for p in pdf_page_plan(view, ds, advice) if p.kind != "wafer")
 
 
@@ -423,35 +523,26 @@ def _draw_lines(fig, lines, top_in):
     return y
 
 
-PAGE_IMAGE_DPI = 200
-"""Resolution, dots per inch, at most, of an image placed on a page (print quality)."""
-
-
-def _page_image(png, width_in, height_in):
-    """The PNG decoded as 8-bit RGBA, reduced to `PAGE_IMAGE_DPI` at its size on the page.
-
-    A big lot's contact sheet is thousands of pixels wide; decoded as floats (what
-    ``matplotlib.image.imread`` returns) it took hundreds of MB, for detail the page
-    cannot show.  Pillow (a matplotlib dependency) decodes to 8 bits and reduces it.
-    """
-    from PIL import Image
-
-    with Image.open(io.BytesIO(png)) as im:
-        im = im.convert("RGBA")
-        scale = min(width_in / im.width, height_in / im.height)
-        most = (max(1, int(im.width * scale * PAGE_IMAGE_DPI)),
-                max(1, int(im.height * scale * PAGE_IMAGE_DPI)))
-        size = im.size
-        if im.width > most[0] or im.height > most[1]:
-            im.thumbnail(most, Image.LANCZOS)
-        return np.asarray(im), size
+#: Resolution of raster images placed on a PDF page (dots per inch of the page): a larger
+#: PNG is scaled down to it before embedding, so a big lot's contact sheet does not make
+#: the PDF slow to write and heavy to hold.
+PDF_IMAGE_DPI = 200
 
 
 def _draw_png(fig, png, top_in, height_in, width_in=None):
+    from PIL import Image
+
     width_in = width_in or PAGE_IN[0] - 2 * _MARGIN_IN
-    img, (w_px, h_px) = _page_image(png, width_in, height_in)   # size as drawn, not as stored
+    pil = Image.open(io.BytesIO(png))
+    w_px, h_px = pil.size
     scale = min(width_in / w_px, height_in / h_px)
     w, h = w_px * scale, h_px * scale
+    if w_px > w * PDF_IMAGE_DPI * 1.05:
+        # scaled with a box filter, then back to a palette: few colours compress well
+        pil = pil.convert("RGB").resize((max(1, int(w * PDF_IMAGE_DPI)),
+                                         max(1, int(h * PDF_IMAGE_DPI))), Image.BOX).quantize(
+            192, method=Image.Quantize.FASTOCTREE)
+    img = np.asarray(pil.convert("RGB"))
     left = (PAGE_IN[0] - w) / 2
     ax = fig.add_axes((_fx(left), _fy(top_in + h), w / PAGE_IN[0], h / PAGE_IN[1]))
     ax.imshow(img, interpolation="none")
@@ -490,11 +581,19 @@ def _wafer_lines(view, w):
     return lines
 
 
-def _render_page(page, view, ds, images, number, total):
+def _render_page(page, view, ds, images, number, total, advice=None):
     fig = _new_page()
     _draw_frame(fig, page.title, view.lot_id, number, total)
     top = _BODY_TOP_IN
-    if page.kind == "profile":
+    if page.kind == "advice" and images_advice_plot(advice):
+        h = _ADVICE_PLOT_UNITS * _UNIT_IN
+        ax = fig.add_axes((_fx(_MARGIN_IN + 0.55), _fy(top + h * 0.86),
+                           (PAGE_IN[0] - 2 * _MARGIN_IN - 0.65) / PAGE_IN[0],
+                           h * 0.80 / PAGE_IN[1]))
+        draw_advice_profile(ax, view, advice, fontsize=7)
+        ax.set_title("Slot profile now and predicted after the advice", fontsize=8.5)
+        top += h
+    elif page.kind == "profile":
         h = _PROFILE_UNITS * _UNIT_IN
         ax = fig.add_axes((_fx(_MARGIN_IN + 0.55), _fy(top + h * 0.70),
                            (PAGE_IN[0] - 2 * _MARGIN_IN - 0.65) / PAGE_IN[0],
@@ -508,6 +607,21 @@ def _render_page(page, view, ds, images, number, total):
                            h * 0.74 / PAGE_IN[1]))
         draw_fit_quality(ax, ds, fontsize=7.5)
         top += h
+    elif page.kind == "evidence":
+        png, sites, hints, n_bad = images.evidence()
+        lines = _wrap("p", f"{n_bad} failed or suspect site(s). Shown: the worst of each cause "
+                           "in turn, then the worst-fitting accepted sites.")
+        if png is not None:
+            top = _draw_png(fig, png, top + 0.1, 6.4) + 0.15
+        else:
+            lines += _wrap("p", "The spectra were not kept, so no overlay is drawn: run reduce "
+                                "again with --keep-spectra (writes spectra.nc).")
+        for s, h in zip(sites, hints):
+            lines += _wrap("m", f"{_short(s.wafer, 20)} slot {s.slot} site {s.site}: "
+                                f"{s.verdict}, {s.kind}" + (f"; {h}" if h else ""),
+                           indent="    ")
+        _draw_lines(fig, lines, top)
+        return fig
     elif page.kind == "contact":
         png, why = images.contact_sheet()
         if png is not None:
@@ -529,7 +643,8 @@ def _render_page(page, view, ds, images, number, total):
     return fig
 
 
-def write_pdf_report(view, ds, outdir, *, images=None, advice=None, dpi=100):
+def write_pdf_report(view, ds, outdir, *, images=None, advice=None, dpi=100, wafer_pages=False,
+                     progress=None):
     """Write ``OUTDIR/report.pdf`` atomically (temporary file in OUTDIR, then os.replace).
 
     Parameters
@@ -544,23 +659,37 @@ def write_pdf_report(view, ds, outdir, *, images=None, advice=None, dpi=100):
         Next-run advice: adds the advice page(s).
     dpi : float
         Resolution of images rendered here.
+    wafer_pages : bool
+        Add one page per wafer (default: an index of the wafers).
+    progress : callable(n_pages) -> object with update(n) and close(), optional
+        Progress display factory.
 
     Returns
     -------
     pathlib.Path
-        The written PDF: `lot_page_count` lot pages, then one page per wafer.
+        The written PDF: `lot_page_count` lot pages (then one page per wafer with
+        ``wafer_pages``).
     """
     images = images or ReportImages(view, ds, outdir, dpi=dpi)
     prov = provenance(ds, advice)
-    plan = pdf_page_plan(view, ds, advice, prov)
+    plan = pdf_page_plan(view, ds, advice, prov, wafer_pages=wafer_pages)
     path = Path(outdir) / "report.pdf"
     meta = {"Title": f"filmmap report: lot {view.lot_id}", "Creator": f"filmmap {__version__}",
             "Subject": "oxide thickness and furnace-boat uniformity (advisory)"}
     with atomic_path(path) as tmp:
         with PdfPages(tmp, metadata=meta) as pdf:
-            for n, page in enumerate(plan, start=1):
-                pdf.savefig(_render_page(page, view, ds, images, n, len(plan)))
-                _write_page_images_now(pdf)
+            bar = progress(len(plan)) if progress is not None else None
+            try:
+                for n, page in enumerate(plan, start=1):
+                    fig = _render_page(page, view, ds, images, n, len(plan), advice)
+                    pdf.savefig(fig)
+                    _write_page_images_now(pdf)   # the page's images leave memory now
+                    fig.clear()     # free the page's artists now, not at the next collection
+                    if bar is not None:
+                        bar.update(1)
+            finally:
+                if bar is not None:
+                    bar.close()
     return path
 
 

@@ -14,6 +14,7 @@ drawn as a 90 deg V, enlarged to 3 % of the radius (real notches are about
 
 from __future__ import annotations
 
+import math
 import os
 import hashlib
 import re
@@ -35,11 +36,6 @@ from filmmap.wafermap.sites import check_wafer, inside_edge_exclusion, lot_array
 from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_polar_surface
 from filmmap.workers import end_with_parent
-
-RENDER_CHUNK = 8
-"""Wafer maps per task sent to a figure worker; with at most 4 chunks per worker in flight,
-the memory of the queue is bounded, not proportional to the lot (common practice, no
-source)."""
 
 #: Colour maps accepted by the figure functions (perceptually uniform).
 ALLOWED_CMAPS = ("viridis", "cividis", "viridis_r", "cividis_r")
@@ -86,6 +82,15 @@ def wafer_outline(diameter_mm, notch_depth_mm=None, n_points=361):
     return x, y
 
 
+def _present_sites(x_mm, y_mm, present):
+    """(x, y, present): coordinates with missing sites at 0 (never drawn) and the mask."""
+    x = np.asarray(x_mm, dtype=float)
+    y = np.asarray(y_mm, dtype=float)
+    finite = np.isfinite(x) & np.isfinite(y)
+    present = finite if present is None else np.asarray(present, bool) & finite
+    return np.where(finite, x, 0.0), np.where(finite, y, 0.0), present
+
+
 def _value_range(*arrays):
     vals = np.concatenate([np.asarray(a, dtype=float).ravel() for a in arrays])
     vals = vals[np.isfinite(vals)]
@@ -117,40 +122,89 @@ def _mesh(surface, i, n_wafers):
     return surface.x_mm, surface.y_mm, z
 
 
+#: Marker of a site whose fit failed (drawn over the map; listed in the reports).
+FAILED_MARKER = dict(ls="none", marker="X", ms=7.5, mfc="white", mec="black", mew=0.9)
+#: Marker of a site outside the edge exclusion (measured, not used).
+EXCLUDED_MARKER = dict(ls="none", marker="o", ms=3.0, mfc="none", mec="0.35", mew=0.6)
+
+
+#: Colour bands per colour-bar tick interval: fine enough that noise in the sites does not
+#: make blobs of one colour (the bands read as a continuous scale; common practice, no source).
+BANDS_PER_TICK = 4
+
+
+def _fine_levels(bounds):
+    """Contour levels: each tick interval of ``bounds`` split into `BANDS_PER_TICK` bands."""
+    bounds = np.asarray(bounds, dtype=float)
+    return np.linspace(bounds[0], bounds[-1], BANDS_PER_TICK * (bounds.size - 1) + 1)
+
+
+def _shade(ax, gx, gy, z, norm, cmap, levels):
+    """Filled contours on fine bands (`_fine_levels` of the tick boundaries ``levels``).
+
+    A fresh Normalize per panel: a shared one makes matplotlib re-run a callback of every
+    earlier panel for each new one (contact-sheet time growing with the square of the
+    wafers).
+    """
+    return ax.contourf(gx, gy, np.ma.masked_invalid(z), levels=_fine_levels(levels), cmap=cmap,
+                       norm=Normalize(norm.vmin, norm.vmax), extend="both")
+
+
 def _draw_wafer(ax, diameter_mm, edge_exclusion_mm, gx, gy, z, x, y, t, use, norm, cmap,
-                levels, labels, value_fmt, fontsize):
-    """Contours, outline, edge-exclusion ring and sites on one axes; return the mappable."""
+                levels, labels, value_fmt, fontsize, present=None, failed=None,
+                offset=(0.0, 0.0), set_limits=True):
+    """Map, outline, edge-exclusion ring and sites on one axes; return the mappable.
+
+    ``present`` marks the sites the wafer has (a missing site is not drawn at all);
+    ``failed`` the measured sites whose fit failed (a white X, clearly not data).
+    ``offset`` (mm) places the wafer on a shared axes (the contact sheet draws every wafer
+    on one axes: one axes per wafer costs more than the wafer itself).
+    """
     r = diameter_mm / 2
+    ox_, oy_ = float(offset[0]), float(offset[1])
+    if ox_ or oy_:
+        gx, gy = np.asarray(gx) + ox_, np.asarray(gy) + oy_
+        x, y = np.asarray(x) + ox_, np.asarray(y) + oy_
+    present = np.ones(x.shape, bool) if present is None else np.asarray(present, bool)
+    failed = (present & ~np.isfinite(t)) if failed is None else np.asarray(failed, bool) & present
     mappable = None
     if z is not None and np.isfinite(z).sum() >= 4:
-        mappable = ax.contourf(gx, gy, np.ma.masked_invalid(z), levels=levels, cmap=cmap,
-                               norm=norm, extend="both")
+        mappable = _shade(ax, gx, gy, z, norm, cmap, levels)
     ox, oy = wafer_outline(diameter_mm)
-    ax.plot(ox, oy, color="black", lw=1.0)
+    ax.plot(ox + ox_, oy + oy_, color="black", lw=1.0)
     if edge_exclusion_mm > 0:
-        ax.add_patch(Circle((0.0, 0.0), r - edge_exclusion_mm, fill=False, ls="--", lw=0.7,
+        ax.add_patch(Circle((ox_, oy_), r - edge_exclusion_mm, fill=False, ls="--", lw=0.7,
                             ec="0.35"))
     if mappable is None:   # no map (too few sites): colour the sites themselves
-        mappable = ax.scatter(x[use], y[use], c=t[use], cmap=cmap, norm=norm, s=30,
+        mappable = ax.scatter(x[use], y[use], c=t[use], cmap=cmap,
+                              norm=Normalize(norm.vmin, norm.vmax), s=30,
                               edgecolors="black", linewidths=0.4)
     ax.plot(x[use], y[use], ls="none", marker=".", ms=2.5, color="black")
-    ax.plot(x[~use], y[~use], ls="none", marker="x", ms=3.5, color="0.5")
+    outside = present & ~use & ~failed
+    if outside.any():
+        ax.plot(x[outside], y[outside], **EXCLUDED_MARKER)
+    if failed.any():
+        ax.plot(x[failed], y[failed], **FAILED_MARKER)
     if labels:
-        dy = 0.022 * r
-        for xi, yi, ti, ui in zip(x, y, t, use):
+        # labels above the site, below it near the top edge, so none crosses the outline
+        dy = 0.03 * r
+        for xi, yi, ti, ui in zip(x[present], y[present], t[present], use[present]):
             if np.isfinite(ti):
-                ax.text(xi, yi + dy, value_fmt.format(ti), ha="center", va="bottom",
-                        fontsize=fontsize, color="black" if ui else "0.45")
-    ax.set_xlim(-1.05 * r, 1.05 * r)
-    ax.set_ylim(-1.05 * r, 1.05 * r)
-    ax.set_aspect("equal")
+                up = yi < 0.82 * r
+                ax.text(xi, yi + (dy if up else -dy), value_fmt.format(ti), ha="center",
+                        va="bottom" if up else "top", fontsize=fontsize,
+                        color="black" if ui else "0.35")
+    if set_limits:
+        ax.set_xlim(-1.05 * r, 1.05 * r)
+        ax.set_ylim(-1.05 * r, 1.05 * r)
+        ax.set_aspect("equal")
     return mappable
 
 
 def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                      wafer_id="", slot=None, surface=None, vmin=None, vmax=None,
                      cmap="viridis", levels=12, figsize_in=(6.4, 5.6), dpi=100,
-                     value_fmt="{:.1f}"):
+                     value_fmt="{:.1f}", lot_id="", present=None):
     """Thickness map of one wafer as a matplotlib Figure (Agg canvas, no pyplot).
 
     Parameters
@@ -183,6 +237,12 @@ def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_m
         Resolution in dots per inch.
     value_fmt : str
         Format of the site values (nm).
+    lot_id : str
+        Lot id, shown in the title (every figure names its lot).
+    present : array_like of bool, shape (n_sites,), optional
+        Sites the wafer has; a missing site (False) is not drawn (its coordinates may be
+        anything). Default: every site with finite coordinates. A present site without
+        an accepted fit is drawn as a white X (failed).
 
     Returns
     -------
@@ -196,9 +256,22 @@ def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_m
        with consideration for color vision deficiency", PLoS ONE 13, e0199239
        (2018) (cividis).
     """
+    _colormap(cmap)
+    prepared = _prepare_map(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm,
+                            wafer_id=wafer_id, slot=slot, surface=surface, vmin=vmin, vmax=vmax,
+                            levels=levels, value_fmt=value_fmt, lot_id=lot_id, present=present)
     d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
-    cm = _colormap(cmap)
+    return MapCanvas(d, ee, cmap, figsize_in, dpi).draw(*prepared)
+
+
+def _prepare_map(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *, wafer_id="",
+                 slot=None, surface=None, vmin=None, vmax=None, levels=12, value_fmt="{:.1f}",
+                 lot_id="", present=None):
+    """The arguments of `MapCanvas.draw` for one wafer (see `wafer_map_figure`)."""
+    d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
+    x_mm, y_mm, present = _present_sites(x_mm, y_mm, present)
     t, good, x, y, single = lot_arrays(thickness_nm, ok, x_mm, y_mm)
+    good = good & present
     if not single and t.shape[0] != 1:
         raise FilmmapInputError("wafer_map_figure draws one wafer: thickness must be 1-D",
                                 field="thickness_nm")
@@ -209,41 +282,172 @@ def wafer_map_figure(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_m
     else:
         gx, gy, z = (np.asarray(a, dtype=float) for a in surface)
     lo, hi = _value_range(z, t[use])
-    bounds, norm = _levels(lo if vmin is None else float(vmin),
-                           hi if vmax is None else float(vmax), levels)
-
-    fig = Figure(figsize=figsize_in, dpi=dpi)
-    FigureCanvasAgg(fig)
-    ax = fig.add_axes((0.05, 0.05, 0.72, 0.81))
-    cax = fig.add_axes((0.80, 0.14, 0.03, 0.64))
-    mappable = _draw_wafer(ax, d, ee, gx, gy, z, x, y, t, use, norm, cm, bounds, True,
-                           value_fmt, 5.5)
-    fig.colorbar(mappable, cax=cax, ticks=bounds[::max(1, len(bounds) // 7)])
-    cax.set_ylabel(COLORBAR_LABEL, fontsize=9)
-    cax.tick_params(labelsize=7)
-    ax.set_axis_off()       # tick machinery is most of the render time; the notch orients
-    ax.text(-1.04 * d / 2, -1.04 * d / 2, f"Ø {d:g} mm, edge exclusion {ee:g} mm, notch at -y",
-            fontsize=7, color="0.3", ha="left", va="bottom")
+    bounds, _ = _levels(lo if vmin is None else float(vmin), hi if vmax is None else float(vmax),
+                        levels)
     st = within_wafer_stats(t, good, x, y, d, ee)
-    head = f"Wafer {wafer_id}" + ("" if slot is None else f"  slot {slot}")
-    fig.suptitle(f"{head}\nmean {st.mean_nm:.2f} ± {st.sigma_nm:.2f} nm (1σ), "
-                 f"NU {st.nu_pct:.2f} %, {int(st.sites_used)} sites", fontsize=10, parse_math=False)
-    return fig
+    head = (f"Lot {lot_id} · " if lot_id else "") + f"Wafer {wafer_id}" + (
+        "" if slot is None else f"  slot {slot}")
+    title = (f"{head}\nmean {st.mean_nm:.2f} ± {st.sigma_nm:.2f} nm (1σ), "
+             f"NU {st.nu_pct:.2f} %, {int(st.sites_used)} sites")
+    return gx, gy, z, x, y, t, use, present, present & ~good, bounds, value_fmt, title
+
+
+class MapCanvas:
+    """One wafer-map figure, reused for wafer after wafer (one per worker process).
+
+    The outline, the edge-exclusion ring, the axes and the colour bar are made once; each
+    `draw` replaces only the map, the site marks, the labels, the scale and the title.
+    Making a figure, its axes and a colour bar is about half the time of a map, so a
+    lot's maps cost about half as much drawn this way (measured in benchmarks/report.py).
+
+    Parameters
+    ----------
+    diameter_mm, edge_exclusion_mm : float
+    cmap : str
+        One of `ALLOWED_CMAPS`.
+    figsize_in : (float, float)
+    dpi : float
+    """
+
+    def __init__(self, diameter_mm, edge_exclusion_mm, cmap="viridis", figsize_in=(6.4, 5.6),
+                 dpi=100, stamp_labels=False):
+        from matplotlib.lines import Line2D
+
+        # stamp_labels: labels blended into the PNG by `png` (fast), not texts of the figure
+        self.stamps = _LabelStamps(6.0, dpi) if stamp_labels else None
+        self._stamp_items = []
+
+        self.key = (float(diameter_mm), float(edge_exclusion_mm), cmap, tuple(figsize_in),
+                    float(dpi))
+        d, ee = float(diameter_mm), float(edge_exclusion_mm)
+        self.d, self.ee, self.cmap = d, ee, _colormap(cmap)
+        r = d / 2
+        fig = Figure(figsize=figsize_in, dpi=dpi)
+        FigureCanvasAgg(fig)
+        ax = fig.add_axes((0.05, 0.05, 0.72, 0.81))
+        cax = fig.add_axes((0.80, 0.14, 0.03, 0.64))
+        ox, oy = wafer_outline(d)
+        ax.plot(ox, oy, color="black", lw=1.0, zorder=3)
+        if ee > 0:
+            ax.add_patch(Circle((0.0, 0.0), r - ee, fill=False, ls="--", lw=0.7, ec="0.35",
+                                zorder=3))
+        ax.set_xlim(-1.05 * r, 1.05 * r)
+        ax.set_ylim(-1.05 * r, 1.05 * r)
+        ax.set_aspect("equal")
+        ax.set_axis_off()       # tick machinery is most of the render time; the notch orients
+        ax.text(-1.04 * r, -1.04 * r, f"Ø {d:g} mm, edge exclusion {ee:g} mm, notch at -y",
+                fontsize=7, color="0.3", ha="left", va="bottom")
+        self.used = ax.plot([], [], ls="none", marker=".", ms=2.5, color="black", zorder=4)[0]
+        self.outside = ax.plot([], [], zorder=4, **EXCLUDED_MARKER)[0]
+        self.failed = ax.plot([], [], zorder=5, **FAILED_MARKER)[0]
+        self.legend_handle = Line2D([], [], **FAILED_MARKER)
+        # the colour bar: one gradient image whose extent and ticks follow each wafer's scale
+        self.bar = cax.imshow(np.linspace(0, 1, 256)[:, None], aspect="auto", cmap=self.cmap,
+                              origin="lower", extent=(0, 1, 0, 1), interpolation="nearest")
+        cax.xaxis.set_visible(False)
+        cax.yaxis.tick_right()
+        cax.yaxis.set_label_position("right")
+        cax.set_ylabel(COLORBAR_LABEL, fontsize=9)
+        cax.tick_params(labelsize=7)
+        self.title = fig.suptitle("", fontsize=10, parse_math=False)
+        self.fig, self.ax, self.cax = fig, ax, cax
+        self.labels = []
+        self._dynamic = []
+
+    def draw(self, gx, gy, z, x, y, t, use, present, failed, bounds, value_fmt, title):
+        """Draw one wafer (arguments as prepared by `wafer_map_figure`); return the figure."""
+        ax, r = self.ax, self.d / 2
+        for artist in self._dynamic:
+            artist.remove()
+        self._dynamic = []
+        lo, hi = float(bounds[0]), float(bounds[-1])
+        norm = Normalize(lo, hi)
+        if z is not None and np.isfinite(z).sum() >= 4:
+            cs = _shade(ax, gx, gy, z, norm, self.cmap, bounds)
+            self._dynamic.append(cs)
+        else:   # no map (too few sites): colour the sites themselves
+            self._dynamic.append(ax.scatter(x[use], y[use], c=t[use], cmap=self.cmap,
+                                            norm=norm, s=30, edgecolors="black",
+                                            linewidths=0.4, zorder=4))
+        self.used.set_data(x[use], y[use])
+        outside = present & ~use & ~failed
+        self.outside.set_data(x[outside], y[outside])
+        self.failed.set_data(x[failed], y[failed])
+        if failed.any():
+            n = int(failed.sum())
+            self.legend_handle.set_label(f"failed fit ({n} site{'s' if n != 1 else ''})")
+            self._dynamic.append(ax.legend(handles=[self.legend_handle], loc="upper right",
+                                           bbox_to_anchor=(1.02, 1.02), fontsize=7,
+                                           frameon=False))
+        # labels above the site, below it near the top edge, so none crosses the outline
+        show = present & np.isfinite(t)
+        if self.stamps is not None:
+            self._stamp_items = [(xi, yi, value_fmt.format(ti), 0.0 if ui else 0.35,
+                                  yi < 0.82 * r)
+                                 for xi, yi, ti, ui in zip(x[show], y[show], t[show], use[show])]
+            show = np.zeros_like(show)
+        while len(self.labels) < int(show.sum()):
+            self.labels.append(ax.text(0, 0, "", ha="center", fontsize=6.0, zorder=6))
+        dy = 0.03 * r
+        for label, xi, yi, ti, ui in zip(self.labels, x[show], y[show], t[show], use[show]):
+            up = yi < 0.82 * r
+            label.set_position((xi, yi + (dy if up else -dy)))
+            label.set_verticalalignment("bottom" if up else "top")
+            label.set_text(value_fmt.format(ti))
+            label.set_color("black" if ui else "0.35")
+            label.set_visible(True)
+        for label in self.labels[int(show.sum()):]:
+            label.set_visible(False)
+        self.bar.set_extent((0, 1, lo, hi))
+        self.cax.set_ylim(lo, hi)
+        self.cax.set_yticks(bounds[::max(1, len(bounds) // 7)])
+        self.title.set_text(title)
+        return self.fig
+
+    def png(self):
+        """The current wafer as palette PNG bytes (`png_bytes`), labels stamped in."""
+        if self.stamps is None:
+            return png_bytes(self.fig)
+        self.fig.canvas.draw()
+        rgb = np.asarray(self.fig.canvas.buffer_rgba())[..., :3]
+        H = rgb.shape[0]
+        dy = 0.03 * self.d / 2
+        pts = [(xi, yi + (dy if up else -dy)) for xi, yi, _, _, up in self._stamp_items]
+        disp = self.ax.transData.transform(pts) if pts else np.zeros((0, 2))
+        items = [(px, H - py, text, grey, up) for (px, py), (_, _, text, grey, up)
+                 in zip(disp, self._stamp_items)]
+        return encode_png(self.stamps.stamp(rgb, items))
+
+
+#: Largest contact sheet in pixels (see `lot_contact_sheet`): 12 Mpx is a 150-wafer lot at
+#: 100 dpi with room to spare; larger lots are drawn at a lower resolution.
+MAX_SHEET_PIXELS = 12e6
+
+
+def _layout_groups(x2, y2):
+    """Rows of wafers sharing one site layout (NaN = missing site), as a list of arrays."""
+    key = np.nan_to_num(np.stack([x2, y2], axis=1), nan=np.inf)
+    _, inverse = np.unique(key.reshape(key.shape[0], -1), axis=0, return_inverse=True)
+    inverse = inverse.ravel()
+    return [np.flatnonzero(inverse == g) for g in np.unique(inverse)]
 
 
 def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                       wafer_ids=None, slots=None, surface=None, ncols=None, cmap="viridis",
-                      levels=12, panel_in=2.0, dpi=100, title=None):
+                      levels=12, panel_in=2.0, dpi=100, title=None, out_of_spec=None,
+                      lot_id="", max_pixels=MAX_SHEET_PIXELS):
     """Every wafer of a lot in a grid, on one common colour scale with one colour bar.
 
     Parameters
     ----------
     thickness_nm : array_like, shape (W, n_sites)
-        Thickness in nm, NaN for a missing site.
+        Thickness in nm, NaN for a missing site or a failed fit.
     ok : array_like of bool or None
         Fit-quality flag broadcastable to ``thickness_nm``; None = all ok.
-    x_mm, y_mm : array_like, shape (n_sites,)
-        Site coordinates in mm.
+    x_mm, y_mm : array_like, shape (n_sites,) or (W, n_sites)
+        Site coordinates in mm: one layout for the lot, or one per wafer with NaN where
+        a wafer lacks a site (uneven layouts: each wafer is mapped from its own sites,
+        and a missing site is not drawn).
     diameter_mm, edge_exclusion_mm : float
         Wafer diameter and edge exclusion in mm.
     wafer_ids : sequence of str, length W, optional
@@ -251,19 +455,27 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     slots : sequence of int, length W, optional
         Slots shown with the ids.
     surface : PolarSurface or Surface, optional
-        Precomputed map of the lot; default `tps_polar_surface`.
+        Precomputed map of the lot (one layout only); default `tps_polar_surface`.
     ncols : int, optional
         Panels per row; default ceil(sqrt(W)).
     cmap : str
         One of `ALLOWED_CMAPS`.
     levels : int
-        Filled contour bands.
+        Colour-bar ticks (about ``levels`` / 2) and the bands of the contour fallback.
     panel_in : float
         Panel size in inches.
     dpi : float
         Resolution in dots per inch.
     title : str, optional
-        Sheet title.
+        Sheet title (default names the lot).
+    out_of_spec : sequence of bool, length W, optional
+        Wafers whose mean is out of spec: a thick frame and "OUT OF SPEC" in the label.
+    lot_id : str
+        Lot id for the default title.
+    max_pixels : float
+        Largest image in pixels: a bigger sheet gets a lower resolution (same layout), so
+        that the memory to draw and encode it stays bounded however many wafers the lot
+        has.
 
     Returns
     -------
@@ -276,34 +488,68 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     """
     d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
     cm = _colormap(cmap)
-    t, good, x, y, _ = lot_arrays(thickness_nm, ok, x_mm, y_mm)
-    W = t.shape[0]
+    t = np.atleast_2d(np.asarray(thickness_nm, dtype=float))
+    W, n_sites = t.shape
+    x2 = np.broadcast_to(np.asarray(x_mm, dtype=float), (W, n_sites))
+    y2 = np.broadcast_to(np.asarray(y_mm, dtype=float), (W, n_sites))
+    ok2 = np.ones((W, n_sites), bool) if ok is None else np.broadcast_to(
+        np.asarray(ok, bool), (W, n_sites))
     ids = [str(i + 1) for i in range(W)] if wafer_ids is None else [str(v) for v in wafer_ids]
     if len(ids) != W or (slots is not None and len(slots) != W):
         raise FilmmapInputError(f"wafer_ids and slots need one entry per wafer ({W})",
                                 field="wafer_ids")
-    use = good & inside_edge_exclusion(x, y, d, ee)
-    s = tps_polar_surface(t, good, x, y, d, ee) if surface is None else surface
-    meshes = [_mesh(s, i, W) for i in range(W)]
-    bounds, norm = _levels(*_value_range(*[m[2] for m in meshes], t[use]), levels)
-    st = within_wafer_stats(t, good, x, y, d, ee)
+    oos = np.zeros(W, bool) if out_of_spec is None else np.asarray(out_of_spec, bool)
+    # one surface computation per site layout (usually one for the whole lot)
+    groups = _layout_groups(x2, y2)
+    if surface is not None and len(groups) != 1:
+        raise FilmmapInputError("a precomputed surface needs one site layout for the lot",
+                                field="surface")
+    per = [None] * W
+    for rows in groups:
+        x, y, present = _present_sites(x2[rows[0]], y2[rows[0]], None)
+        tg, good, x, y, _ = lot_arrays(t[rows], ok2[rows], x, y)
+        good = good & present
+        use = good & inside_edge_exclusion(x, y, d, ee)
+        s = tps_polar_surface(tg, good, x, y, d, ee) if surface is None else surface
+        nu = within_wafer_stats(tg, good, x, y, d, ee).nu_pct
+        for k, i in enumerate(rows):
+            per[i] = (_mesh(s, k, len(rows)), x, y, tg[k], use[k], present, present & ~good[k],
+                      float(np.atleast_1d(nu)[k]))
+    lo, hi = _value_range(*[p[0][2] for p in per], *[p[3][p[4]] for p in per])
+    bounds, norm = _levels(lo, hi, levels)
     ncols = int(np.ceil(np.sqrt(W))) if ncols is None else max(1, int(ncols))
     nrows = max(1, int(np.ceil(W / ncols)))
+    title = title or (f"Lot {lot_id}: thickness (nm), common scale" if lot_id else None)
     bar_in, head_in, cap_in = 1.1, 0.5 if title else 0.15, 0.45
     width = ncols * panel_in + bar_in
     height = nrows * (panel_in + cap_in) + head_in
+    dpi = min(float(dpi), math.sqrt(float(max_pixels) / (width * height)))
     fig = Figure(figsize=(width, height), dpi=dpi)
     FigureCanvasAgg(fig)
+    # every wafer on ONE axes in mm, panels placed by offsets: the data scale k (mm per
+    # inch) makes a panel's map span 92 % of panel_in, as separate axes did
+    k = 1.05 * d / (0.92 * panel_in)
+    cell_h = panel_in + cap_in
+    grid_w, grid_h = ncols * panel_in, nrows * cell_h
+    ax = fig.add_axes((0.0, (height - head_in - grid_h) / height, grid_w / width,
+                       grid_h / height))
+    ax.set_xlim(0.0, grid_w * k)
+    ax.set_ylim(0.0, grid_h * k)
+    ax.set_axis_off()
     for i in range(W):
         row, col = divmod(i, ncols)
-        left = col * panel_in / width
-        bottom = 1 - (head_in + (row + 1) * (panel_in + cap_in) - 0.05) / height
-        ax = fig.add_axes((left + 0.04 * panel_in / width, bottom,
-                           0.92 * panel_in / width, 0.92 * panel_in / height))
-        _draw_wafer(ax, d, ee, *meshes[i], x, y, t[i], use[i], norm, cm, bounds, False, "", 0)
-        ax.set_axis_off()
+        cx = (col + 0.5) * panel_in * k
+        cy = ((nrows - row - 1) * cell_h + 0.5 * panel_in) * k
+        mesh, x, y, ti, ui, pi, fi, nu = per[i]
+        _draw_wafer(ax, d, ee, *mesh, x, y, ti, ui, norm, cm, bounds, False, "", 0,
+                    present=pi, failed=fi, offset=(cx, cy), set_limits=False)
         label = ids[i] + ("" if slots is None else f" (slot {slots[i]})")
-        ax.set_title(f"{label}\nNU {st.nu_pct[i]:.2f} %", fontsize=7, pad=2, parse_math=False)
+        nu_text = f"NU {nu:.2f} %" if np.isfinite(nu) else "NU —"
+        if oos[i]:
+            ax.add_patch(Circle((cx, cy), 0.518 * d, fill=False, lw=2.2, ec="black"))
+            nu_text = "OUT OF SPEC · " + nu_text
+        ax.text(cx, cy + 0.54 * d, f"{label}\n{nu_text}", ha="center", va="bottom",
+                fontsize=7, parse_math=False, weight="bold" if oos[i] else "normal")
     cax = fig.add_axes((1 - 0.75 * bar_in / width, 0.15, 0.18 * bar_in / width, 0.7))
     fig.colorbar(ScalarMappable(norm=norm, cmap=cm), cax=cax,
                  ticks=bounds[::max(1, len(bounds) // 7)])
@@ -312,6 +558,98 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     if title:
         fig.suptitle(title, fontsize=11, y=1 - 0.1 / height, va="top", parse_math=False)
     return fig
+
+
+#: Colours of the palette PNGs (maps, contact sheet, report images).
+PNG_COLOURS = 192
+
+
+def png_bytes(fig, dpi=None):
+    """A figure as a palette PNG (`PNG_COLOURS` colours): about 3 x smaller than RGBA.
+
+    The figure is drawn once on its Agg canvas; its pixels are reduced to a palette by
+    Pillow's fast octree quantiser (Pillow is a dependency of matplotlib). Maps use one
+    colour map and greys, so the palette holds them without visible steps.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    dpi : float, optional
+        Resolution; default the figure's own.
+
+    Returns
+    -------
+    bytes
+    """
+    import io
+
+    from PIL import Image
+
+    if dpi is not None and dpi != fig.dpi:
+        fig.set_dpi(dpi)
+    canvas = fig.canvas if isinstance(fig.canvas, FigureCanvasAgg) else FigureCanvasAgg(fig)
+    canvas.draw()
+    return encode_png(np.asarray(canvas.buffer_rgba())[..., :3].copy())
+
+
+def encode_png(rgb):
+    """An (H, W, 3) uint8 image as palette PNG bytes (see `png_bytes`)."""
+    import io
+
+    from PIL import Image
+
+    image = Image.fromarray(rgb, "RGB").quantize(PNG_COLOURS, method=Image.Quantize.FASTOCTREE)
+    buf = io.BytesIO()
+    image.save(buf, format="png", compress_level=6)
+    return buf.getvalue()
+
+
+class _LabelStamps:
+    """Site labels stamped into the rendered pixels, each distinct text rasterised once.
+
+    A wafer map's 49 value labels are most of its drawing time when drawn as matplotlib
+    texts (font layout and glyph rendering for every label of every map). The values of a
+    lot repeat ("591.2" appears on many wafers), so each distinct string is rasterised
+    once per process with matplotlib's own FreeType font object and then alpha-blended
+    into the image: the same glyphs, a fraction of the time.
+    """
+
+    def __init__(self, fontsize_pt, dpi):
+        from matplotlib.font_manager import FontProperties, findfont, get_font
+
+        self.font = get_font(findfont(FontProperties(family=["sans-serif"])))
+        self.size, self.dpi = float(fontsize_pt), float(dpi)
+        self.cache = {}
+
+    def bitmap(self, text):
+        img = self.cache.get(text)
+        if img is None:
+            self.font.set_size(self.size, self.dpi)
+            self.font.set_text(text, 0.0)
+            self.font.draw_glyphs_to_bitmap(antialiased=True)
+            img = self.cache[text] = np.asarray(self.font.get_image(), dtype=np.float32) / 255.0
+            if len(self.cache) > 20000:      # bounded memory on a pathological lot
+                self.cache.clear()
+        return img
+
+    def stamp(self, rgb, items):
+        """Blend ``items`` of (x px, y px from the top, text, grey 0-1, above) into ``rgb``."""
+        H, W = rgb.shape[:2]
+        out = rgb.astype(np.float32)
+        for px, py, text, grey, above in items:
+            a = self.bitmap(text)
+            h, w = a.shape
+            x0 = int(round(px - w / 2))
+            y0 = int(round(py - h)) if above else int(round(py))
+            xa, ya = max(x0, 0), max(y0, 0)
+            xb, yb = min(x0 + w, W), min(y0 + h, H)
+            if xa >= xb or ya >= yb:
+                continue
+            al = a[ya - y0:yb - y0, xa - x0:xb - x0, None]
+            region = out[ya:yb, xa:xb]
+            region *= 1.0 - al
+            region += al * (255.0 * grey)
+        return out.round().astype(np.uint8)
 
 
 def save_figure(fig, path, dpi=None):
@@ -339,9 +677,9 @@ def save_figure(fig, path, dpi=None):
     path = Path(path)
     tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}.tmp")
     try:
+        data = png_bytes(fig, dpi)
         with open(tmp, "xb") as fh:
-            fig.savefig(fh, format="png", dpi=dpi if dpi is not None else fig.dpi,
-                        pil_kwargs={"compress_level": 3})
+            fh.write(data)
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
@@ -375,9 +713,33 @@ def render_wafer_png(path, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclu
     return save_figure(fig, path)
 
 
+_CANVAS = {}
+
+
 def _render_task(task):
+    """Render one map PNG, reusing this process's `MapCanvas` of the same geometry."""
     path, args, kwargs = task
-    return str(render_wafer_png(path, *args, **kwargs))
+    t, ok, x, y, d, ee = args
+    kw = dict(kwargs)
+    cmap = kw.pop("cmap", "viridis")
+    figsize_in, dpi = tuple(kw.pop("figsize_in", (6.4, 5.6))), float(kw.pop("dpi", 100))
+    key = (float(d), float(ee), cmap, figsize_in, dpi)
+    canvas = _CANVAS.get(key)
+    if canvas is None:
+        _CANVAS.clear()                       # one geometry at a time: bounded memory
+        canvas = _CANVAS[key] = MapCanvas(d, ee, cmap, figsize_in, dpi, stamp_labels=True)
+    prepared = _prepare_map(t, ok, x, y, d, ee, **kw)
+    canvas.draw(*prepared)
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}.tmp")
+    try:
+        with open(tmp, "xb") as fh:
+            fh.write(canvas.png())
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return str(path)
 
 
 def safe_filename(text):
@@ -411,7 +773,7 @@ def safe_filename(text):
 
 def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                       wafer_ids, slots=None, workers=2, surface=None, common_scale=False,
-                      mp_context=None, **kwargs):
+                      mp_context=None, progress=None, **kwargs):
     """One map PNG per wafer, rendered in parallel worker processes, each written atomically.
 
     Parameters
@@ -441,6 +803,8 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
         Use one colour scale for the whole lot instead of one per wafer.
     mp_context : multiprocessing context, optional
         Start method for the workers (default: the platform's).
+    progress : callable(n), optional
+        Called with 1 as each map is written (a progress display's ``update``).
     **kwargs
         Passed to `wafer_map_figure` (cmap, levels, figsize_in, dpi, ...).
 
@@ -471,27 +835,28 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     s = tps_polar_surface(t, good, x, y, d, ee) if surface is None else surface
+    meshes = [_mesh(s, i, W) for i in range(W)]
     if common_scale:
         use = good & inside_edge_exclusion(x, y, d, ee)
-        lo, hi = _value_range(np.asarray(s.thickness_nm), t[use])   # every wafer's mesh values
+        lo, hi = _value_range(*[m[2] for m in meshes], t[use])
         kwargs.setdefault("vmin", lo)
         kwargs.setdefault("vmax", hi)
-
-    def task(i):
-        # made when submitted, not all at once: a lot's meshes and pickled tasks grew with
-        # the wafer count (hundreds of MB at 1,200 wafers)
+    tasks = []
+    for i in range(W):
         kw = dict(kwargs, wafer_id=ids[i], slot=None if slots is None else slots[i],
-                  surface=_mesh(s, i, W))
-        return (out / names[i], (t[i], good[i], x, y, d, ee), kw)
-
+                  surface=meshes[i])
+        tasks.append((out / names[i], (t[i], good[i], x, y, d, ee), kw))
+    tick = progress or (lambda n: None)
+    out = []
     if workers == 1 or W == 1:
-        return [Path(_render_task(task(i))) for i in range(W)]
-    chunk = max(1, min(W // (4 * workers), RENDER_CHUNK))
-    window = 4 * workers * chunk          # tasks in flight at most
-    paths = []
+        for task in tasks:
+            out.append(Path(_render_task(task)))
+            tick(1)
+        return out
+    chunk = max(1, W // (8 * workers))
     with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context,
                              initializer=end_with_parent) as pool:
-        for start in range(0, W, window):
-            batch = [task(i) for i in range(start, min(W, start + window))]
-            paths += [Path(p) for p in pool.map(_render_task, batch, chunksize=chunk)]
-    return paths
+        for p in pool.map(_render_task, tasks, chunksize=chunk):
+            out.append(Path(p))
+            tick(1)
+    return out
