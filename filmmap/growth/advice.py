@@ -478,7 +478,10 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
         if np.isfinite(fit.common_C) and abs(fit.common_C) > max_off:
             warnings.append(f"the whole lot reads as {fit.common_C:+.1f} K off on average: a "
                             "temperature, rate or time error of the whole run (the oxide cannot "
-                            "tell which); check the run record before acting on the advice")
+                            "tell which); check the run record before acting on the advice. If "
+                            "every lot of this furnace reads alike, its own growth rate differs "
+                            "from the constants: learn it with --furnace-history, or state it in "
+                            "the lot file's [growth] (docs/furnace.md)")
 
     # trims and time, alternated. The trims flatten the zone part only: the end effects
     # and the residual are not the zones' doing, and chasing them with a zone trim would
