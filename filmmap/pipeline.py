@@ -72,7 +72,7 @@ def _late_write_errors(outdir):
 def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=False,
                      figure_workers=None, progress=None, protect=(), follow_output_link=False,
                      preflight=None, pending_record=None, rate_factors=None, report=True,
-                     pdf_wafer_pages=False):
+                     pdf_wafer_pages=False, advice_options=None):
     """Reduce a lot and publish every output in ``outdir`` at once.
 
     Parameters
@@ -157,7 +157,8 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     # every output goes to a staging folder that replaces OUTDIR only once complete
     with _late_write_errors(outdir), staged_output(outdir) as stage:
         written = write_lot(reduction, stage, keep_spectra=keep_spectra)
-        advice = write_advice(reduction.config, written, stage, rate_factors)
+        advice = write_advice(reduction.config, written, stage, rate_factors,
+                              **(advice_options or {}))
         if advice is not None:
             written.files["advice.json"] = stage / "advice.json"
         # the boat-end verdicts follow the advice's one model of the boat when there is one
@@ -234,7 +235,7 @@ def _bar(progress, total, what):
         return progress(total) if what == "fitting" else None
 
 
-def write_advice(config, written, folder, rate_factors=None):
+def write_advice(config, written, folder, rate_factors=None, **options):
     """advice.json when the lot file has a recipe and a target; returns the advice or None.
 
     ``rate_factors`` ({ambient: factor}) is a furnace's growth rate learned from its
@@ -247,7 +248,7 @@ def write_advice(config, written, folder, rate_factors=None):
     mean = np.where(usable, ds["mean_nm"].values, np.nan)
     advice = advise_from_config(config, ds["slot"].values, mean, ds["role"].values,
                                 n_failed_sites=written.n_failed, n_sites=written.n_sites,
-                                rate_factors=rate_factors)
+                                rate_factors=rate_factors, **options)
     for w in ds.wafer.values[~usable]:
         advice["warnings"].append(f"wafer {w} has fewer than {MIN_SITES_FOR_LOT} usable sites "
                                   "and was left out of the calibration")

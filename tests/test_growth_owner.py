@@ -207,3 +207,30 @@ def test_plan_needs_no_spectra_and_hits_the_target(tmp_path):
         lo, hi = (mid, hi) if wet_oxide_nm(mid, 1000.0) < 600.0 else (lo, mid)
     assert planned == pytest.approx(0.5 * (lo + hi), abs=0.1)
     assert "never drives equipment" in r.stdout
+
+
+def test_coupling_width_learned_from_lots_with_different_trims(tmp_path):
+    # three lots of the independent furnace (zones blending over 5 slots), the trims
+    # changed between runs as a run-to-run loop would; the width is read from the history
+    from filmmap.growth.calibrate import calibrate_slots
+    from filmmap.history.rate import learn_coupling
+
+    from furnace_reference import zone_profile
+
+    db = tmp_path / "history.sqlite"
+    recipe = [{"name": "wet", "ambient": "H2O", "minutes": 116.0, "at_C": 1000.0}]
+    base = zone_profile(PRODUCT, ZONES, [-2.0, 0.0, 1.0], width_slots=5.0)
+    for i, trims in enumerate(({"load": 0.0, "center": 0.0, "source": 0.0},
+                               {"load": 2.0, "center": 0.0, "source": -1.0},
+                               {"load": 2.0, "center": -1.5, "source": -1.0})):
+        T = base + zone_profile(PRODUCT, ZONES, [trims[z[0]] for z in ZONES], width_slots=5.0)
+        means = measured_means(T)
+        offs = calibrate_slots(recipe, PRODUCT, means).offset_C
+        record_lot(db, {"lot_id": f"C{i}", "furnace": "tube-7", "run_date": f"2026-10-0{i + 1}",
+                        "recipe": recipe, "lot_mean_nm": float(np.mean(means)),
+                        "applied_trims_C": trims,
+                        "slots": [{"slot": int(s), "mean_nm": float(m), "offset_C": float(o)}
+                                  for s, m, o in zip(PRODUCT, means, offs)]})
+    learned = learn_coupling(lots(db, furnace="tube-7"), ZONES)
+    assert learned.n_pairs == 2
+    assert learned.width_slots == pytest.approx(5.0, abs=0.5)

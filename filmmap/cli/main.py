@@ -121,7 +121,8 @@ def _progress_bar(total, desc):
 
 def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_spectra=False,
                figure_workers=None, protect=(), follow_output_link=False, preflight=None,
-               pending_record=None, rate_factors=None, report=True, pdf_wafer_pages=False):
+               pending_record=None, rate_factors=None, report=True, pdf_wafer_pages=False,
+               advice_options=None):
     """`filmmap.pipeline.reduce_to_folder` with progress bars (fitting, maps, report.pdf)."""
     from filmmap.pipeline import reduce_to_folder
 
@@ -130,7 +131,7 @@ def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_sp
                             protect=protect, follow_output_link=follow_output_link,
                             preflight=preflight, pending_record=pending_record,
                             rate_factors=rate_factors, report=report,
-                            pdf_wafer_pages=pdf_wafer_pages)
+                            pdf_wafer_pages=pdf_wafer_pages, advice_options=advice_options)
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -221,16 +222,19 @@ def cmd_reduce(args):
             raise FilmmapInputError("--furnace-history takes one lot file (each furnace learns "
                                     "its own rate)", field="--furnace-history")
         return _reduce_many(args, trims, protect, preflight, pending)
-    rates = None
+    rates, coupling = None, {}
     if args.furnace_history:
         from filmmap.io.lotfile import read_lot_file
-        rates = _learned_rate_factors(read_lot_file(args.lotfile[0]), args)
+        cfg = read_lot_file(args.lotfile[0])
+        rates = _learned_rate_factors(cfg, args)
+        coupling = _learned_coupling(cfg, args)
     reduction, written, seconds = run_reduce(args.lotfile[0], args.output, args.workers,
                                              not args.no_figures, args.quiet, args.keep_spectra,
                                              protect=protect,
                                              follow_output_link=args.follow_output_link,
                                              preflight=preflight, pending_record=pending,
-                                             rate_factors=rates, report=not args.no_report,
+                                             rate_factors=rates, advice_options=coupling,
+                                             report=not args.no_report,
                                              pdf_wafer_pages=args.pdf_wafer_pages)
     if not args.quiet:
         print_summary(reduction, written, seconds)
@@ -477,7 +481,8 @@ def cmd_predict(args):
         slot_offsets = _read_advice_offsets(args.advice, config, MAX_TEMPERATURE_OFFSET_K)
     try:
         table = predict_by_zone(config, overrides or None, trims or None, slot_offsets_C=slot_offsets,
-                                growth=growth)
+                                growth=growth,
+                                width_slots=_learned_coupling(config, args).get("width_slots"))
     except FilmmapInputError as exc:
         if exc.file is not None:
             raise
@@ -509,6 +514,29 @@ def _growth_for(config, args):
     from filmmap.growth.settings import growth_settings
 
     return growth_settings(config, rate_factors=_learned_rate_factors(config, args))
+
+
+def _learned_coupling(config, args):
+    """``{"width_slots", "width_source"}`` learned from the furnace's history, or {}.
+
+    Only when asked for (--furnace-history), the lot file gives no width of its own and
+    the history holds lots run with different trims.
+    """
+    if not getattr(args, "furnace_history", False) or config.furnace is None:
+        return {}
+    if getattr(config.furnace, "coupling_width_slots", None) is not None:
+        return {}
+    from filmmap.growth.calibrate import zones_from_config
+    from filmmap.history.rate import learn_coupling
+    from filmmap.history.store import lots
+
+    learned = learn_coupling(lots(args.history, furnace=config.lot.furnace),
+                             zones_from_config(config))
+    if learned is None:
+        return {}
+    print(f"  furnace {config.lot.furnace!r}: {learned.describe()}")
+    return {"width_slots": learned.width_slots,
+            "width_source": f"the furnace's history: {learned.describe()}"}
 
 
 def _learned_rate_factors(config, args):
@@ -557,7 +585,8 @@ def cmd_plan(args):
     growth = _growth_for(config, args)
     try:
         out = plan_run(config, growth=growth, slot_offsets_C=slot_offsets,
-                       zone_offsets_C=trims or None)
+                       zone_offsets_C=trims or None,
+                       width_slots=_learned_coupling(config, args).get("width_slots"))
     except FilmmapInputError as exc:
         if exc.file is not None:
             raise

@@ -723,8 +723,11 @@ def advise_from_config(config, slot, mean_nm, role=None, n_failed_sites=0, rate_
     growth = growth_settings(config, rate_factors=rate_factors)
     kw.update(pressure_atm=growth.pressure_atm, thin_regime=growth.thin_regime,
               constants=growth.constants, growth_notes=growth.notes)
+    # the coupling width: the lot file's when it states one, else the caller's (e.g. learned
+    # from the furnace's history), else a sharp step
     width = getattr(config.furnace, "coupling_width_slots", None) if config.furnace else None
-    if width is not None and "width_slots" not in options:
+    if width is not None:
+        options = {k: v for k, v in options.items() if k not in ("width_slots", "width_source")}
         kw.update(width_slots=width, width_source="lot file ([furnace] coupling_width_slots)")
     kw.update(options)
     if role is None:

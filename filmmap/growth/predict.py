@@ -267,7 +267,7 @@ def predict_by_zone(config, overrides=None, zone_offsets_C=None, *, slot_offsets
 
 
 def plan_run(config, *, growth=None, slot_offsets_C=None, zone_offsets_C=None,
-             initial_nm=DEFAULT_INITIAL_NM, max_minutes=10000.0):
+             initial_nm=DEFAULT_INITIAL_NM, max_minutes=10000.0, width_slots=None):
     """Plan a run before it happens: the adjust-step time that puts the product mean on target.
 
     Parameters
@@ -283,6 +283,8 @@ def plan_run(config, *, growth=None, slot_offsets_C=None, zone_offsets_C=None,
         Oxide before the first step, nm.
     max_minutes : float
         Longest duration searched, minutes.
+    width_slots : float, optional
+        Zone coupling width, slots (default: the lot file's, else a sharp step).
 
     Returns
     -------
@@ -322,7 +324,7 @@ def plan_run(config, *, growth=None, slot_offsets_C=None, zone_offsets_C=None,
     def mean_at(minutes):
         table = predict_by_zone(config, {name: {"minutes": minutes}}, zone_offsets_C,
                                 slot_offsets_C=slot_offsets_C, initial_nm=initial_nm,
-                                growth=growth)
+                                growth=growth, width_slots=width_slots)
         return table["product_mean_nm"] - target, table
 
     lo, hi = 1e-3, float(max_minutes)

@@ -181,3 +181,92 @@ def learn_rate(records, orientation="100", growth=None):
                        f"against the furnace's earlier {logs.size - 1} lots (their scatter "
                        f"{spread:.1%}): the furnace has changed, or this run differed")
     return LearnedRate(ambient, factor, sigma, tuple(per_lot), changed)
+
+
+@dataclass(frozen=True)
+class LearnedCoupling:
+    """A furnace's zone coupling width, estimated from lots run with different trims.
+
+    Attributes
+    ----------
+    width_slots : float
+        Width of the transition between neighbouring zones (10-90 %), slots.
+    rms_C : float
+        Rms misfit of the trim changes' predicted profiles, K.
+    n_pairs : int
+        Consecutive lot pairs whose applied trims differ (the evidence).
+    """
+
+    width_slots: float
+    rms_C: float
+    n_pairs: int
+
+    def describe(self):
+        return (f"zone coupling width {self.width_slots:g} slots, from {self.n_pairs} pair(s) "
+                f"of recorded lots run with different trims (misfit {self.rms_C:.2f} K rms)")
+
+
+def learn_coupling(records, zones, *, shape="logistic", widths=None, min_trim_change_K=0.5):
+    """Zone coupling width from consecutive lots whose applied trims differ.
+
+    Between two lots of one furnace the per-slot effective offsets change by the zone
+    trims' difference spread through the gain matrix, plus a common part (a rate or time
+    difference between the runs) and noise. The width whose gain matrix explains the
+    changes best, over all such pairs, is the furnace's (a profiling run made of its
+    ordinary history: `filmmap.growth.boat.coupling_width_from_profiling` does the same for
+    one deliberate pair).
+
+    Parameters
+    ----------
+    records : sequence of LotRecord
+        One furnace's lots, oldest first, with per-slot offsets and applied trims.
+    zones : sequence
+        Heater zones, load end first.
+    shape : {"logistic", "linear"}
+        Transition shape.
+    widths : sequence of float, optional
+        Widths tried, slots (default 0 to 12 in steps of 0.25).
+    min_trim_change_K : float
+        A pair counts only when some zone's trim changed by at least this much, K.
+
+    Returns
+    -------
+    LearnedCoupling or None
+        None without a usable pair.
+    """
+    from filmmap.growth.calibrate import gain_matrix, normalise_zones
+
+    zs = normalise_zones(zones)
+    names = [z[0] for z in zs]
+
+    def profile(r):
+        return {int(s.slot): float(s.offset_C) for s in r.slots
+                if s.offset_C is not None and math.isfinite(s.offset_C)}
+
+    pairs = []
+    for a, b in zip(records[:-1], records[1:]):
+        ta = np.array([float((a.applied_trims_C or {}).get(n) or 0.0) for n in names])
+        tb = np.array([float((b.applied_trims_C or {}).get(n) or 0.0) for n in names])
+        dt = tb - ta
+        if np.max(np.abs(dt)) < min_trim_change_K:
+            continue
+        pa, pb = profile(a), profile(b)
+        common = sorted(set(pa) & set(pb))
+        if len(common) < 2 * len(names):
+            continue
+        s = np.array(common)
+        pairs.append((s, np.array([pb[k] - pa[k] for k in common]), dt))
+    if not pairs:
+        return None
+    best = None
+    for w in (np.arange(0.0, 12.01, 0.25) if widths is None else widths):
+        sse, n = 0.0, 0
+        for s, diff, dt in pairs:
+            r = diff - gain_matrix(zs, s, float(w), shape) @ dt
+            r -= r.mean()        # the common part of the change is not the trims' doing
+            sse += float(np.sum(r * r))
+            n += r.size
+        rms = math.sqrt(sse / n)
+        if best is None or rms < best[1] - 1e-12:
+            best = (float(w), rms)
+    return LearnedCoupling(best[0], best[1], len(pairs))
