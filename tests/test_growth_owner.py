@@ -234,3 +234,24 @@ def test_coupling_width_learned_from_lots_with_different_trims(tmp_path):
     learned = learn_coupling(lots(db, furnace="tube-7"), ZONES)
     assert learned.n_pairs == 2
     assert learned.width_slots == pytest.approx(5.0, abs=0.5)
+
+
+def test_predict_with_furnace_history_through_the_command_line(tmp_path):
+    # the check through the command: 5 recorded lots of a furnace 8 % faster than
+    # the constants, then `filmmap predict --furnace-history` (no spectra) within 1 %
+    db = tmp_path / "history.sqlite"
+    _record_lots(db, 1.08, 5)
+    path = write_lot(tmp_path)
+    r = subprocess.run([sys.executable, "-m", "filmmap.cli.main", "predict", str(path),
+                        "--furnace-history", "--history", str(db)],
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert "rate x 1.0" in r.stdout and "learned from 5 recorded lot(s)" in r.stdout
+    line = next(ln for ln in r.stdout.splitlines() if "product mean" in ln)
+    predicted = float(line.split("product mean")[1].split("nm")[0])
+    truth = wet_oxide_nm(116.0, 1000.0, rate_factor=1.08)
+    assert predicted == pytest.approx(truth, rel=0.01)
+    plain = subprocess.run([sys.executable, "-m", "filmmap.cli.main", "predict", str(path)],
+                           capture_output=True, text=True, timeout=300)
+    line = next(ln for ln in plain.stdout.splitlines() if "product mean" in ln)
+    assert float(line.split("product mean")[1].split("nm")[0]) < 0.97 * truth
