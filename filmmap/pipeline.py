@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
+from filmmap import __version__
 from filmmap.errors import FilmmapInputError, FilmmapOutputError
 from filmmap.growth.advice import advise_from_config
 from filmmap.io.atomic import write_text_atomic
@@ -29,6 +30,9 @@ from filmmap.report.lotview import lot_view, with_boat_model
 from filmmap.report.summary_json import write_summary_csv, write_summary_json
 
 # a wafer with fewer usable sites than MIN_SITES_FOR_LOT is left out of lot statistics and advice
+
+ADVICE_FORMAT = 1
+"""Version of the advice.json layout (key ``advice_format``; schema filmmap/schemas/advice.schema.json)."""
 
 PENDING_RECORD = ".filmmap-history-pending"
 """File in a published output folder whose lot is still to be recorded in the run history.
@@ -144,7 +148,8 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
             view = with_boat_model(lot_view(written.dataset, reduction.config,
                                             min_sites=MIN_SITES_FOR_LOT), advice)
             written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
-            written.files["summary.json"] = write_summary_json(view, stage)
+            written.files["summary.json"] = write_summary_json(
+                view, stage, created=written.dataset.attrs.get("created"))
             written.advice = advice
             written.view = view
             if figures:
@@ -159,7 +164,11 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
                 written.files["report.pdf"] = write_pdf_report(view, written.dataset, stage,
                                                                images=images, advice=advice)
             if pending_record is not None:
-                write_text_atomic(stage / PENDING_RECORD, json.dumps(pending_record) + "\n")
+                # lot.nc records its inputs relative to the lot folder; the marker keeps
+                # where the lot file is on this machine, to recover its recipe and target
+                plan = {**pending_record, "lot_file": str(reduction.config.path),
+                        "lot_file_sha256": reduction.config.sha256}
+                write_text_atomic(stage / PENDING_RECORD, json.dumps(plan) + "\n")
             _fault_point("after-staging")
     except OSError as exc:
         # a check before the work cannot foresee a disk filling up meanwhile
@@ -191,6 +200,12 @@ def write_advice(config, written, folder, rate_factors=None):
     for w in ds.wafer.values[~usable]:
         advice["warnings"].append(f"wafer {w} has fewer than {MIN_SITES_FOR_LOT} usable sites "
                                   "and was left out of the calibration")
+    # identification after the pinned keys (which keep their order): which layout, which
+    # software, which lot, when (the same time as lot.nc's ``created``)
+    advice["advice_format"] = ADVICE_FORMAT
+    advice["software"] = f"filmmap {__version__}"
+    advice["lot_id"] = str(config.lot.id)
+    advice["created"] = str(ds.attrs.get("created", ""))
     write_text_atomic(folder / "advice.json", json.dumps(advice, indent=1, allow_nan=False) + "\n")
     return advice
 
@@ -367,8 +382,15 @@ def complete_pending_record(outdir):
     except (OSError, ValueError, KeyError, TypeError) as exc:
         raise FilmmapInputError(f"unreadable record marker ({exc}); delete it to give up "
                                 "recording the earlier results", file=marker) from None
+    config = None
+    lot_file = plan.get("lot_file") if isinstance(plan, dict) else None
+    if lot_file and Path(lot_file).is_file():
+        with contextlib.suppress(FilmmapInputError):
+            candidate = read_lot_file(lot_file)
+            if candidate.sha256 == plan.get("lot_file_sha256"):
+                config = candidate  # unchanged since the reduce: its recipe and target hold
     try:
-        return record_history(outdir, None, db_path, trims)
+        return record_history(outdir, config, db_path, trims)
     except FilmmapInputError as exc:
         raise FilmmapInputError(f"the results in {outdir} were published by an earlier run that "
                                 f"stopped before recording them, and recording them now failed: "

@@ -96,6 +96,14 @@ def build_parser():
     plan.add_argument("--slots", action="store_true", help="also print the thickness per slot")
     plan.add_argument("--debug", action="store_true", help="show tracebacks")
 
+    exp = sub.add_parser("export", help="write sites.csv and summary.csv (and spectra.csv from "
+                                        "spectra.nc) of an existing lot.nc")
+    exp.add_argument("lotnc", metavar="LOTNC", help="lot.nc written by filmmap reduce")
+    exp.add_argument("-o", "--output", required=True, metavar="DIR",
+                     help="output folder (new, empty or an earlier filmmap output folder; "
+                          "replaced whole)")
+    exp.add_argument("--debug", action="store_true", help="show tracebacks")
+
     demo = sub.add_parser("demo", help="generate the invented demo lot and reduce it")
     demo.add_argument("-o", "--output", default="filmmap-demo", metavar="DIR",
                       help="folder for the demo lot (DIR/lot) and its results (DIR/results)")
@@ -350,6 +358,14 @@ def cmd_history(args):
     return 0
 
 
+def cmd_export(args):
+    from filmmap.io.export import export_lot
+
+    for name, path in export_lot(args.lotnc, args.output).items():
+        print(f"  {name}: {path}")
+    return 0
+
+
 def cmd_demo(args):
     from filmmap.demo import generate_demo_lot
 
@@ -565,7 +581,7 @@ def main(argv=None):
         parser.print_help()
         return 0
     handler = {"reduce": cmd_reduce, "demo": cmd_demo, "predict": cmd_predict,
-               "history": cmd_history, "plan": cmd_plan}[args.command]
+               "history": cmd_history, "plan": cmd_plan, "export": cmd_export}[args.command]
     try:
         return handler(args)
     except FilmmapInputError as exc:
