@@ -133,7 +133,8 @@ _KEYS = {
     "measurement": ("technique", "angle_deg", "files", "wafer_diameter_mm", "edge_exclusion_mm",
                     "reflectance_unit", "dark_file", "reference_file", "fit_offset",
                     "offset_sigma", "scale_sigma", "wavelength_shift_sigma_nm",
-                    "angle_offset_sigma_deg", "delta_convention"),
+                    "angle_offset_sigma_deg", "delta_convention", "layout", "site_map",
+                    "slot_map", "file_pattern"),
     "stack": ("substrate", "orientation", "layer"),
     "stack.layer": ("material", "nk_file", "cauchy", "thickness_nm", "search_nm", "fit",
                     "index_scale", "fit_index_scale"),
@@ -210,6 +211,15 @@ class MeasurementConfig:
         ``"handbook"`` (Delta = 180 deg for a bare transparent substrate below
         Brewster: Azzam & Bashara 1977, Tompkins 1993; the default) or
         ``"reversed"`` (the instrument writes 360 - Delta; filmmap converts).
+    layout : str
+        Input layout of the data files (`filmmap.io.layouts.LAYOUTS`), default ``"wide"``.
+    site_map : str, pathlib.Path or None
+        A built-in pattern name (``"polar-49"``, ``"cartesian-25"``) or a CSV file
+        ``site,x_mm,y_mm`` (absolute path) giving the site positions.
+    slot_map : pathlib.Path or None
+        CSV file ``wafer,slot``.
+    file_pattern : str or None
+        File-name pattern with ``{wafer}``, ``{site}``, ``{slot}`` fields.
     """
 
     technique: str
@@ -227,6 +237,10 @@ class MeasurementConfig:
     wavelength_shift_sigma_nm: float | None = None
     angle_offset_sigma_deg: float | None = None
     delta_convention: str = "handbook"
+    layout: str = "wide"
+    site_map: object = None
+    slot_map: Path | None = None
+    file_pattern: str | None = None
 
     @property
     def raw_intensity(self):
@@ -1025,11 +1039,44 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude, require_files=Tru
     if "delta_convention" in t and technique != "ellipsometry":
         rd.fail("delta_convention applies to technique 'ellipsometry' only; remove it",
                 f"{w}.delta_convention")
+    layout, site_map, slot_map, pattern = _read_layout(rd, t, w, folder, allow_outside,
+                                                        technique, reference)
     return MeasurementConfig(technique=technique, angle_deg=angle, files=files,
                              file_globs=tuple(patterns), wafer_diameter_mm=diameter,
                              edge_exclusion_mm=edge, reflectance_unit=unit, dark_file=dark,
                              reference_file=reference, fit_offset=fit_offset,
-                             delta_convention=convention, **priors)
+                             delta_convention=convention, layout=layout, site_map=site_map,
+                             slot_map=slot_map, file_pattern=pattern, **priors)
+
+
+def _read_layout(rd, t, w, folder, allow_outside, technique, reference):
+    """``layout``, ``site_map``, ``slot_map``, ``file_pattern`` (`filmmap.io.layouts`)."""
+    import re
+
+    from filmmap.io.layouts import LAYOUTS
+
+    layout = rd.string(t, "layout", w, default="wide", choices=tuple(LAYOUTS))
+    if layout != "wide" and reference is not None:
+        rd.fail("raw intensities (reference_file) are read from the wide layout only",
+                f"{w}.layout")
+    if layout == "jcamp" and technique != "reflectance":
+        rd.fail("layout 'jcamp' holds reflectance spectra only", f"{w}.layout")
+    site_map = rd.string(t, "site_map", w, default=None)
+    if site_map is not None and not re.fullmatch(r"(polar|cartesian)-\d+", site_map):
+        site_map = _relative_file(rd, site_map, f"{w}.site_map", folder, allow_outside,
+                                  "site_map")
+    slot_map = rd.string(t, "slot_map", w, default=None)
+    if slot_map is not None:
+        slot_map = _relative_file(rd, slot_map, f"{w}.slot_map", folder, allow_outside,
+                                  "slot_map")
+    pattern = rd.string(t, "file_pattern", w, default=None)
+    if pattern is not None:
+        fields = re.findall(r"\{([^}]*)\}", pattern)
+        bad = [f for f in fields if f not in ("wafer", "site", "slot")]
+        if bad or len(set(fields)) != len(fields) or "wafer" not in fields:
+            rd.fail(f"file_pattern {pattern!r}: expected {{wafer}} once and optionally "
+                    "{site} and {slot} (no other fields)", f"{w}.file_pattern")
+    return layout, site_map, slot_map, pattern
 
 
 def _read_target(rd, doc, stack):
