@@ -271,14 +271,18 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
         mean thickness, seconds. The numbers do not depend on how the lots ran: each lot
         is the same deterministic computation in a process of its own.
     """
-    lotfiles = [Path(p) for p in lotfiles]
+    # absolute on the client before anything is submitted: a Dask worker has its own
+    # working directory, where a relative path names another file or none (the cluster
+    # must share the file system at these absolute paths; docs/formats.md)
+    lotfiles = [Path(p).absolute() for p in lotfiles]
+    outroot = Path(outroot).absolute()
+    protect = [(role, Path(p).absolute()) for role, p in protect]
     folders = [output_target(f, follow_output_link) for f in lot_folders(lotfiles, outroot)]
     for f in folders:
         check_outdir(f)
     # one lot's folder must not swallow another lot's inputs either
     configs = [read_lot_file(lf) for lf in lotfiles]
     everyone = [item for config in configs for item in lot_inputs(config)]
-    protect = list(protect)
     check_outputs_spare_inputs(folders, everyone + protect)
     need = sum(estimate_from_inputs(config, figures, keep_spectra) for config in configs)
     check_output_location(folders[0], need)
