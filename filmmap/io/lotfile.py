@@ -134,7 +134,7 @@ _KEYS = {
                     "reflectance_unit", "dark_file", "reference_file", "fit_offset",
                     "offset_sigma", "scale_sigma", "wavelength_shift_sigma_nm",
                     "angle_offset_sigma_deg", "delta_convention", "layout", "site_map",
-                    "slot_map", "file_pattern"),
+                    "slot_map", "file_pattern", "data_dir"),
     "stack": ("substrate", "orientation", "layer"),
     "stack.layer": ("material", "nk_file", "cauchy", "thickness_nm", "search_nm", "fit",
                     "index_scale", "fit_index_scale"),
@@ -220,6 +220,11 @@ class MeasurementConfig:
         CSV file ``wafer,slot``.
     file_pattern : str or None
         File-name pattern with ``{wafer}``, ``{site}``, ``{slot}`` fields.
+    data_dir : pathlib.Path or None
+        Folder the ``files`` globs are relative to, when the lot file names one
+        (``data_dir``, absolute or relative to the lot folder; it may lie outside the
+        lot folder or be a symbolic link, because the user named it). None: the lot
+        folder, sandboxed.
     """
 
     technique: str
@@ -241,6 +246,7 @@ class MeasurementConfig:
     site_map: object = None
     slot_map: Path | None = None
     file_pattern: str | None = None
+    data_dir: Path | None = None
 
     @property
     def raw_intensity(self):
@@ -783,7 +789,8 @@ def _relative_file(rd, value, field, folder, allow_outside, what):
     return path
 
 
-def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=True):
+def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=True,
+                   where="lot folder"):
     field = "measurement.files"
     if not patterns:
         rd.fail("files is empty; expected at least one glob such as \"*.csv\"", field)
@@ -795,9 +802,9 @@ def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=T
         if not pattern.strip():
             rd.fail(f"files[{i}] is empty; expected a glob such as \"*.csv\"", field)
         if not allow_outside and _escapes(pattern):
-            rd.fail(f"glob {pattern!r} leaves the lot folder (absolute path or '..'); globs are "
-                    "relative to the lot folder (read_lot_file(..., allow_outside=True) permits "
-                    "this)", field)
+            rd.fail(f"glob {pattern!r} leaves the {where} (absolute path or '..'); globs are "
+                    f"relative to the {where} (name another folder with data_dir in "
+                    "[measurement], or read_lot_file(..., allow_outside=True))", field)
         if os.path.isabs(pattern):
             matches = [Path(m) for m in glob.glob(pattern, recursive=True)]
         else:
@@ -811,8 +818,9 @@ def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=T
                     "least one file", field)
         for m in kept:
             if not allow_outside and not _inside(m, folder):
-                rd.fail(f"glob {pattern!r} matches {m}, which resolves outside the lot folder "
-                        f"(symlink?) to {m.resolve()}", field)
+                rd.fail(f"glob {pattern!r} matches {m}, which resolves outside the {where} "
+                        f"(symlink?) to {m.resolve()}; to read a folder elsewhere, name it with "
+                        "data_dir in [measurement]", field)
             found.setdefault(str(m), m)
     return tuple(found[k] for k in sorted(found))
 
@@ -1013,8 +1021,11 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude, require_files=Tru
                 "[\"*.csv\"])", f"{w}.files")
     patterns = rd.value(t, "files", w, "array")
     extra = [p for p in (reference, dark) if p is not None]
-    files = _resolve_globs(rd, patterns, folder, allow_outside, list(exclude) + extra,
-                           require_files)
+    data_dir = _read_data_dir(rd, t, w, folder)
+    # a named data folder: the globs are sandboxed in it instead of the lot folder
+    files = _resolve_globs(rd, patterns, data_dir or folder, allow_outside,
+                           list(exclude) + extra, require_files,
+                           where="data_dir" if data_dir is not None else "lot folder")
     fit_offset = rd.value(t, "fit_offset", w, "boolean", default=None)
     if fit_offset is not None and technique != "reflectance":
         rd.fail("fit_offset applies to technique 'reflectance' only; remove it",
@@ -1046,7 +1057,25 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude, require_files=Tru
                              edge_exclusion_mm=edge, reflectance_unit=unit, dark_file=dark,
                              reference_file=reference, fit_offset=fit_offset,
                              delta_convention=convention, layout=layout, site_map=site_map,
-                             slot_map=slot_map, file_pattern=pattern, **priors)
+                             slot_map=slot_map, file_pattern=pattern, data_dir=data_dir,
+                             **priors)
+
+
+def _read_data_dir(rd, t, w, folder):
+    """The folder named by ``data_dir`` (absolute, or relative to the lot folder), or None.
+
+    Naming it is the user's explicit choice to read outside the lot folder, so '..', an
+    absolute path and a symbolic link are all accepted here; the files it holds are still
+    only read (and hashed), and the output folder may not lie in it (`filmmap.io.guard`).
+    """
+    value = rd.string(t, "data_dir", w, default=None)
+    if value is None:
+        return None
+    path = Path(value) if os.path.isabs(value) else folder / value
+    if not path.is_dir():
+        rd.fail(f"data_dir {value!r} is not an existing folder (looked for {path}); expected "
+                "the folder holding the spectra files", f"{w}.data_dir")
+    return Path(os.path.abspath(path))
 
 
 def _read_layout(rd, t, w, folder, allow_outside, technique, reference):
