@@ -1,4 +1,4 @@
-"""Write a reduced lot to its output folder: lot.nc, summary.csv and (optionally) spectra.nc.
+"""Write a reduced lot to its output folder: lot.nc, sites.csv and (optionally) spectra.nc.
 
 A thin layer between `filmmap.reduce` (the fits) and the files, usable from a
 notebook as well as from the command line.
@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.io.results import lot_dataset, spectra_dataset, write_netcdf_atomic
+from filmmap.io.sites_csv import write_sites_csv
 from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_loo
 from filmmap.wafermap.zernike import noll_to_nm, radial_profile, zernike_fit
@@ -97,7 +98,8 @@ def add_wafer_statistics(ds, diameter_mm, edge_exclusion_mm):
     shape = {n: np.full(W, np.nan) for n in SHAPE_FIGURES}
     loo = np.full(W, np.nan)
     zern, zern_u, rings = {}, {}, {}
-    t, ok = ds["thickness"].values, ds["fit_ok"].values
+    # bool in memory, int8 0/1 when read back from lot.nc (CF flags): a mask either way
+    t, ok = ds["thickness"].values, np.asarray(ds["fit_ok"].values).astype(bool)
     for rows, x, y, present in coordinate_groups(ds["x_mm"].values, ds["y_mm"].values):
         t_g, ok_g = t[rows], ok[rows] & present
         st = within_wafer_stats(t_g, ok_g, x, y, diameter_mm, edge_exclusion_mm)
@@ -131,9 +133,14 @@ def add_wafer_statistics(ds, diameter_mm, edge_exclusion_mm):
             Z[r, :v.size], Zu[r, :v.size] = v, zern_u[r]
         j = np.arange(1, J + 1)
         nm = [noll_to_nm(k) for k in j]
-        ds = ds.assign_coords(zernike=("zernike", j, {"long_name": "Noll index j (Noll 1976)"}),
-                              zernike_n=("zernike", np.array([a for a, _ in nm])),
-                              zernike_m=("zernike", np.array([b for _, b in nm])))
+        ds = ds.assign_coords(zernike=("zernike", j, {"long_name": "Noll index j (Noll 1976)",
+                                                      "units": "1"}),
+                              zernike_n=("zernike", np.array([a for a, _ in nm]),
+                                         {"long_name": "radial order n of Noll index j",
+                                          "units": "1"}),
+                              zernike_m=("zernike", np.array([b for _, b in nm]),
+                                         {"long_name": "azimuthal frequency m of Noll index j "
+                                          "(signed: < 0 the sine term)", "units": "1"}))
         ds["zernike_nm"] = (("wafer", "zernike"), Z, {"units": "nm", "long_name":
                             "Zernike coefficient a_j over the unit disk of the measured radius, "
                             "Noll (1976) indexing and normalisation"})
@@ -176,6 +183,7 @@ def write_lot(reduction, outdir, keep_spectra=False):
     ds = add_wafer_statistics(ds, m.wafer_diameter_mm, m.edge_exclusion_mm)
     written = WrittenLot(outdir=outdir)
     written.files["lot.nc"] = write_netcdf_atomic(ds, outdir / "lot.nc")
+    written.files["sites.csv"] = write_sites_csv(ds, outdir / "sites.csv")
     if keep_spectra and s.measured_spectra is not None:
         written.files["spectra.nc"] = write_netcdf_atomic(spectra_dataset(reduction, ds),
                                                           outdir / "spectra.nc")

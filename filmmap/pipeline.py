@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
+from filmmap import __version__
 from filmmap.errors import FilmmapInputError, FilmmapOutputError
 from filmmap.growth.advice import advise_from_config
 from filmmap.io.atomic import write_text_atomic
@@ -29,6 +30,9 @@ from filmmap.report.lotview import lot_view, with_boat_model
 from filmmap.report.summary_json import write_summary_csv, write_summary_json
 
 # a wafer with fewer usable sites than MIN_SITES_FOR_LOT is left out of lot statistics and advice
+
+ADVICE_FORMAT = 1
+"""Version of the advice.json layout (key ``advice_format``; schema filmmap/schemas/advice.schema.json)."""
 
 PENDING_RECORD = ".filmmap-history-pending"
 """File in a published output folder whose lot is still to be recorded in the run history.
@@ -165,7 +169,8 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         view = with_boat_model(lot_view(written.dataset, reduction.config,
                                         min_sites=MIN_SITES_FOR_LOT), advice)
         written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
-        written.files["summary.json"] = write_summary_json(view, stage)
+        written.files["summary.json"] = write_summary_json(
+            view, stage, created=written.dataset.attrs.get("created"))
         written.advice = advice
         written.view = view
         images = None
@@ -201,7 +206,11 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
             written.files.update(_write_evidence_pdf(view, written.dataset, images, stage))
             images.close()
         if pending_record is not None:
-            write_text_atomic(stage / PENDING_RECORD, json.dumps(pending_record) + "\n")
+            # lot.nc records its inputs relative to the lot folder; the marker keeps
+            # where the lot file is on this machine, to recover its recipe and target
+            plan = {**pending_record, "lot_file": str(reduction.config.path),
+                    "lot_file_sha256": reduction.config.sha256}
+            write_text_atomic(stage / PENDING_RECORD, json.dumps(plan) + "\n")
         _fault_point("after-staging")
     _fault_point("after-publish")
     written.outdir = Path(outdir)
@@ -252,6 +261,12 @@ def write_advice(config, written, folder, rate_factors=None, **options):
     for w in ds.wafer.values[~usable]:
         advice["warnings"].append(f"wafer {w} has fewer than {MIN_SITES_FOR_LOT} usable sites "
                                   "and was left out of the calibration")
+    # identification after the pinned keys (which keep their order): which layout, which
+    # software, which lot, when (the same time as lot.nc's ``created``)
+    advice["advice_format"] = ADVICE_FORMAT
+    advice["software"] = f"filmmap {__version__}"
+    advice["lot_id"] = str(config.lot.id)
+    advice["created"] = str(ds.attrs.get("created", ""))
     write_text_atomic(folder / "advice.json", json.dumps(advice, indent=1, allow_nan=False) + "\n")
     return advice
 
@@ -317,14 +332,18 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
         mean thickness, seconds. The numbers do not depend on how the lots ran: each lot
         is the same deterministic computation in a process of its own.
     """
-    lotfiles = [Path(p) for p in lotfiles]
+    # absolute on the client before anything is submitted: a Dask worker has its own
+    # working directory, where a relative path names another file or none (the cluster
+    # must share the file system at these absolute paths; docs/formats.md)
+    lotfiles = [Path(p).absolute() for p in lotfiles]
+    outroot = Path(outroot).absolute()
+    protect = [(role, Path(p).absolute()) for role, p in protect]
     folders = [output_target(f, follow_output_link) for f in lot_folders(lotfiles, outroot)]
     for f in folders:
         check_outdir(f)
     # one lot's folder must not swallow another lot's inputs either
     configs = [read_lot_file(lf) for lf in lotfiles]
     everyone = [item for config in configs for item in lot_inputs(config)]
-    protect = list(protect)
     check_outputs_spare_inputs(folders, everyone + protect)
     need = sum(estimate_from_inputs(config, figures, keep_spectra) for config in configs)
     check_output_location(folders[0], need)
@@ -428,8 +447,15 @@ def complete_pending_record(outdir):
     except (OSError, ValueError, KeyError, TypeError) as exc:
         raise FilmmapInputError(f"unreadable record marker ({exc}); delete it to give up "
                                 "recording the earlier results", file=marker) from None
+    config = None
+    lot_file = plan.get("lot_file") if isinstance(plan, dict) else None
+    if lot_file and Path(lot_file).is_file():
+        with contextlib.suppress(FilmmapInputError):
+            candidate = read_lot_file(lot_file)
+            if candidate.sha256 == plan.get("lot_file_sha256"):
+                config = candidate  # unchanged since the reduce: its recipe and target hold
     try:
-        return record_history(outdir, None, db_path, trims)
+        return record_history(outdir, config, db_path, trims)
     except FilmmapInputError as exc:
         raise FilmmapInputError(f"the results in {outdir} were published by an earlier run that "
                                 f"stopped before recording them, and recording them now failed: "

@@ -24,7 +24,9 @@ from filmmap.fitting.suspect import flag_suspects
 from filmmap.fitting.systematics import SPECTROSCOPIC_MIN_WAVELENGTHS, Systematics, lot_tension
 from filmmap.materials import ScaledIndex
 from filmmap.io.lotfile import read_lot_file
-from filmmap.io.spectra_csv import check_tables, read_spectra_csv, read_spectrum_file
+from filmmap.io.layouts import PARTIAL_WAFER_LAYOUTS, Maps, read_spectra
+from filmmap.io.layouts.maps import lot_maps
+from filmmap.io.spectra_csv import check_tables, read_spectrum_file
 from filmmap.optics import Layer, Stack
 from filmmap.workers import end_with_parent
 
@@ -171,6 +173,8 @@ class BatchTask:
     diameter_mm: float
     shift_explicit: bool = False
     delta_reversed: bool = False
+    layout: str = "wide"
+    maps: Maps = field(default_factory=Maps)
 
 
 def _free_for(free, technique, n_wavelengths, shift_explicit):
@@ -185,12 +189,14 @@ def _fit_batch(task):
     paths, technique, unit, angle, stack = (task.paths, task.technique, task.unit, task.angle,
                                             task.stack)
     dark, ref, keep_spectra = task.dark, task.ref, task.keep_spectra
-    tables = [read_spectra_csv(p, "intensity" if ref is not None else technique,
-                               unit if ref is None else "fraction") for p in paths]
+    tables = [read_spectra(p, "intensity" if ref is not None else technique,
+                           unit if ref is None else "fraction", task.layout, task.maps)
+              for p in paths]
     wl = tables[0].wavelength_nm
     if any(t.wavelength_nm.size != wl.size or not np.allclose(t.wavelength_nm, wl, rtol=1e-9, atol=0)
            for t in tables[1:]):
-        check_tables(tables, task.diameter_mm)  # names the file and the first differing column
+        check_tables(tables, task.diameter_mm,  # names the file and the first differing column
+                     wafer_per_file=task.layout not in PARTIAL_WAFER_LAYOUTS)
     for medium in [stack.ambient, *[layer.material for layer in stack.layers], stack.substrate]:
         try:
             medium.check_range(wl)
@@ -299,6 +305,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
     stack, free, _names = build_stack(config)
     m = config.measurement
     dark, ref, extra_inputs = _dark_and_reference(config)
+    maps, map_inputs = lot_maps(m)   # site and slot maps, read (and hashed) once
     angle = float(m.angle_deg)
     files = list(m.files)
     batches = _batches(files)
@@ -306,7 +313,8 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
     tasks = [BatchTask(tuple(b), m.technique, m.reflectance_unit, angle, stack, tuple(free), dark,
                        ref, keep_spectra, threads, m.wafer_diameter_mm,
                        shift_explicit=m.wavelength_shift_sigma_nm is not None,
-                       delta_reversed=getattr(m, "delta_convention", "handbook") == "reversed")
+                       delta_reversed=getattr(m, "delta_convention", "handbook") == "reversed",
+                       layout=getattr(m, "layout", "wide"), maps=maps)
              for b in batches]
     results, metas = [], []
     if workers > 1 and len(tasks) > 1:
@@ -324,7 +332,8 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
             if progress:
                 progress(len(meta))
     boat = config.boat.slots if config.boat is not None else None
-    check_tables(metas, m.wafer_diameter_mm, boat)
+    check_tables(metas, m.wafer_diameter_mm, boat,
+                 wafer_per_file=getattr(m, "layout", "wide") not in PARTIAL_WAFER_LAYOUTS)
 
     def cat(key):
         return np.concatenate([r[key] for r in results])
@@ -359,7 +368,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
         sigma_stat=cat("sigma_stat"), correlation=cat("correlation"),
         unchecked=cat("unchecked"), suspect=suspect)
     inputs = [(str(config.path), config.sha256)] + [(str(t.path), t.sha256) for t in metas] + [
-        (str(s.path), s.sha256) for s in extra_inputs]
+        (str(s.path), s.sha256) for s in extra_inputs] + map_inputs
     return LotReduction(config=config, stack=stack, sites=sites, inputs=inputs,
                         wavelength_nm=results[0]["wavelength_nm"], warnings=warnings,
                         free=lot_free)

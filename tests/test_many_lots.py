@@ -56,6 +56,32 @@ def test_many_lots_same_results_sequential_processes_and_dask(tmp_path, capsys):
         assert con.execute("pragma journal_mode").fetchone()[0] == "wal"
 
 
+def test_dask_with_relative_paths_gives_the_local_results(tmp_path, capsys, monkeypatch):
+    # The workers start in the test's working directory; the client then moves into the
+    # lots' folder and names every path relative to it. Without making the paths absolute
+    # on the client, the workers would look for the lot files in their own directory.
+    distributed = pytest.importorskip("distributed")
+    files = _make_lots(tmp_path / "in", n=2)
+    rel = [str(f.relative_to(tmp_path)) for f in files]
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, host="127.0.0.1",
+                                  dashboard_address=None, processes=True) as cluster:
+        monkeypatch.chdir(tmp_path)
+        assert main(["reduce", *rel, "-o", "dask", "--no-figures", "--quiet", "--no-history",
+                     "--scheduler", cluster.scheduler_address]) == 0, capsys.readouterr().err
+    assert main(["reduce", *rel, "-o", "local", "--no-figures", "--quiet", "--no-history",
+                 "--workers", "1"]) == 0, capsys.readouterr().err
+    for k in range(2):
+        a, b = tmp_path / "dask" / f"T-{k:04d}", tmp_path / "local" / f"T-{k:04d}"
+        for name in ("sites.csv", "summary.csv"):
+            assert (a / name).read_bytes() == (b / name).read_bytes(), name
+        da, db_ = xr.open_dataset(a / "lot.nc"), xr.open_dataset(b / "lot.nc")
+        for var in list(da.data_vars) + list(da.coords):
+            np.testing.assert_array_equal(da[var].values, db_[var].values)   # bitwise
+        skip = {"created"}
+        assert {k_: v for k_, v in da.attrs.items() if k_ not in skip} == \
+            {k_: v for k_, v in db_.attrs.items() if k_ not in skip}
+
+
 def test_history_command_charts_recorded_lots(tmp_path, capsys):
     files = _make_lots(tmp_path / "in", 4)
     db = tmp_path / "h.sqlite"

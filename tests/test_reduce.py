@@ -359,7 +359,7 @@ def test_lot_nc_carries_total_and_statistical_sigma_unchecked_values_and_suspect
                 "reflectance_offset", "reflectance_scale", "wavelength_shift",
                 "parameter_correlation", "suspect"):
         assert var in ds, var
-    ok = ds["fit_ok"].values
+    ok = ds["fit_ok"].values.astype(bool)   # int8 0/1 with CF flags on disk
     assert np.all(ds["thickness_sigma_stat"].values[ok] <= ds["thickness_sigma"].values[ok])
     np.testing.assert_allclose(ds["thickness_unchecked"].values[ok], ds["thickness"].values[ok])
     corr = ds["parameter_correlation"].values[ok]

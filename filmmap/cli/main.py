@@ -102,6 +102,26 @@ def build_parser():
     plan.add_argument("--slots", action="store_true", help="also print the thickness per slot")
     plan.add_argument("--debug", action="store_true", help="show tracebacks")
 
+    exp = sub.add_parser("export", help="write sites.csv and summary.csv (and spectra.csv from "
+                                        "spectra.nc) of an existing lot.nc")
+    exp.add_argument("lotnc", metavar="LOTNC", help="lot.nc written by filmmap reduce")
+    exp.add_argument("-o", "--output", required=True, metavar="DIR",
+                     help="output folder (new, empty or an earlier filmmap output folder; "
+                          "replaced whole)")
+    exp.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    init = sub.add_parser("init", help="write a commented lot-file template")
+    init.add_argument("path", nargs="?", default="lot.toml", metavar="LOTFILE",
+                      help="file to write (default lot.toml; never overwritten)")
+    init.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    chk = sub.add_parser("check", help="validate a lot file and its data without fitting")
+    chk.add_argument("lotfile", metavar="LOTFILE", help="lot file (TOML)")
+    chk.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    fmt = sub.add_parser("formats", help="print the file formats document (docs/formats.md)")
+    fmt.add_argument("--debug", action="store_true", help="show tracebacks")
+
     demo = sub.add_parser("demo", help="generate the invented demo lot and reduce it")
     demo.add_argument("-o", "--output", default="filmmap-demo", metavar="DIR",
                       help="folder for the demo lot (DIR/lot) and its results (DIR/results)")
@@ -377,6 +397,40 @@ def cmd_history(args):
     return 0
 
 
+def cmd_export(args):
+    from filmmap.io.export import export_lot
+
+    for name, path in export_lot(args.lotnc, args.output).items():
+        print(f"  {name}: {path}")
+    return 0
+
+
+def cmd_init(args):
+    from filmmap.io.template import write_template
+
+    path = write_template(args.path)
+    print(f"lot-file template written to {path}; edit it, then: filmmap check {path}")
+    return 0
+
+
+def cmd_check(args):
+    from filmmap.io.check import check_lot
+
+    r = check_lot(args.lotfile)
+    print(f"lot {r.lot_id}: OK ({r.layout} layout) - {r.n_files} file(s), {r.n_wafers} wafer(s) "
+          f"in slots {', '.join(map(str, r.slots))}, {r.n_sites} site(s), {r.n_wavelengths} "
+          f"wavelengths {r.wavelength_range_nm[0]:g}-{r.wavelength_range_nm[1]:g} nm; "
+          "nothing fitted, nothing written")
+    return 0
+
+
+def cmd_formats(args):
+    from filmmap.io.template import formats_text
+
+    sys.stdout.write(formats_text())
+    return 0
+
+
 def cmd_demo(args):
     from filmmap.demo import generate_demo_lot
 
@@ -617,7 +671,8 @@ def main(argv=None):
         parser.print_help()
         return 0
     handler = {"reduce": cmd_reduce, "demo": cmd_demo, "predict": cmd_predict,
-               "history": cmd_history, "plan": cmd_plan}[args.command]
+               "history": cmd_history, "plan": cmd_plan, "export": cmd_export, "init": cmd_init,
+               "check": cmd_check, "formats": cmd_formats}[args.command]
     try:
         return handler(args)
     except FilmmapInputError as exc:

@@ -48,6 +48,10 @@ def lot_inputs(config):
         found.append(("dark file", Path(m.dark_file)))
     found += [("n,k table", Path(layer.nk_file)) for layer in config.stack.layers
               if layer.nk_file is not None]
+    for role, key in (("site map", "site_map"), ("slot map", "slot_map")):
+        value = getattr(m, key, None)
+        if isinstance(value, Path):        # a built-in pattern name is not a file
+            found.append((role, value))
     return found
 
 

@@ -133,7 +133,8 @@ _KEYS = {
     "measurement": ("technique", "angle_deg", "files", "wafer_diameter_mm", "edge_exclusion_mm",
                     "reflectance_unit", "dark_file", "reference_file", "fit_offset",
                     "offset_sigma", "scale_sigma", "wavelength_shift_sigma_nm",
-                    "angle_offset_sigma_deg", "delta_convention"),
+                    "angle_offset_sigma_deg", "delta_convention", "layout", "site_map",
+                    "slot_map", "file_pattern", "data_dir"),
     "stack": ("substrate", "orientation", "layer"),
     "stack.layer": ("material", "nk_file", "cauchy", "thickness_nm", "search_nm", "fit",
                     "index_scale", "fit_index_scale"),
@@ -210,6 +211,20 @@ class MeasurementConfig:
         ``"handbook"`` (Delta = 180 deg for a bare transparent substrate below
         Brewster: Azzam & Bashara 1977, Tompkins 1993; the default) or
         ``"reversed"`` (the instrument writes 360 - Delta; filmmap converts).
+    layout : str
+        Input layout of the data files (`filmmap.io.layouts.LAYOUTS`), default ``"wide"``.
+    site_map : str, pathlib.Path or None
+        A built-in pattern name (``"polar-49"``, ``"cartesian-25"``) or a CSV file
+        ``site,x_mm,y_mm`` (absolute path) giving the site positions.
+    slot_map : pathlib.Path or None
+        CSV file ``wafer,slot``.
+    file_pattern : str or None
+        File-name pattern with ``{wafer}``, ``{site}``, ``{slot}`` fields.
+    data_dir : pathlib.Path or None
+        Folder the ``files`` globs are relative to, when the lot file names one
+        (``data_dir``, absolute or relative to the lot folder; it may lie outside the
+        lot folder or be a symbolic link, because the user named it). None: the lot
+        folder, sandboxed.
     """
 
     technique: str
@@ -227,6 +242,11 @@ class MeasurementConfig:
     wavelength_shift_sigma_nm: float | None = None
     angle_offset_sigma_deg: float | None = None
     delta_convention: str = "handbook"
+    layout: str = "wide"
+    site_map: object = None
+    slot_map: Path | None = None
+    file_pattern: str | None = None
+    data_dir: Path | None = None
 
     @property
     def raw_intensity(self):
@@ -769,7 +789,8 @@ def _relative_file(rd, value, field, folder, allow_outside, what):
     return path
 
 
-def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=True):
+def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=True,
+                   where="lot folder"):
     field = "measurement.files"
     if not patterns:
         rd.fail("files is empty; expected at least one glob such as \"*.csv\"", field)
@@ -781,9 +802,9 @@ def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=T
         if not pattern.strip():
             rd.fail(f"files[{i}] is empty; expected a glob such as \"*.csv\"", field)
         if not allow_outside and _escapes(pattern):
-            rd.fail(f"glob {pattern!r} leaves the lot folder (absolute path or '..'); globs are "
-                    "relative to the lot folder (read_lot_file(..., allow_outside=True) permits "
-                    "this)", field)
+            rd.fail(f"glob {pattern!r} leaves the {where} (absolute path or '..'); globs are "
+                    f"relative to the {where} (name another folder with data_dir in "
+                    "[measurement], or read_lot_file(..., allow_outside=True))", field)
         if os.path.isabs(pattern):
             matches = [Path(m) for m in glob.glob(pattern, recursive=True)]
         else:
@@ -797,8 +818,9 @@ def _resolve_globs(rd, patterns, folder, allow_outside, exclude, require_files=T
                     "least one file", field)
         for m in kept:
             if not allow_outside and not _inside(m, folder):
-                rd.fail(f"glob {pattern!r} matches {m}, which resolves outside the lot folder "
-                        f"(symlink?) to {m.resolve()}", field)
+                rd.fail(f"glob {pattern!r} matches {m}, which resolves outside the {where} "
+                        f"(symlink?) to {m.resolve()}; to read a folder elsewhere, name it with "
+                        "data_dir in [measurement]", field)
             found.setdefault(str(m), m)
     return tuple(found[k] for k in sorted(found))
 
@@ -999,8 +1021,11 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude, require_files=Tru
                 "[\"*.csv\"])", f"{w}.files")
     patterns = rd.value(t, "files", w, "array")
     extra = [p for p in (reference, dark) if p is not None]
-    files = _resolve_globs(rd, patterns, folder, allow_outside, list(exclude) + extra,
-                           require_files)
+    data_dir = _read_data_dir(rd, t, w, folder)
+    # a named data folder: the globs are sandboxed in it instead of the lot folder
+    files = _resolve_globs(rd, patterns, data_dir or folder, allow_outside,
+                           list(exclude) + extra, require_files,
+                           where="data_dir" if data_dir is not None else "lot folder")
     fit_offset = rd.value(t, "fit_offset", w, "boolean", default=None)
     if fit_offset is not None and technique != "reflectance":
         rd.fail("fit_offset applies to technique 'reflectance' only; remove it",
@@ -1025,11 +1050,62 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude, require_files=Tru
     if "delta_convention" in t and technique != "ellipsometry":
         rd.fail("delta_convention applies to technique 'ellipsometry' only; remove it",
                 f"{w}.delta_convention")
+    layout, site_map, slot_map, pattern = _read_layout(rd, t, w, folder, allow_outside,
+                                                        technique, reference)
     return MeasurementConfig(technique=technique, angle_deg=angle, files=files,
                              file_globs=tuple(patterns), wafer_diameter_mm=diameter,
                              edge_exclusion_mm=edge, reflectance_unit=unit, dark_file=dark,
                              reference_file=reference, fit_offset=fit_offset,
-                             delta_convention=convention, **priors)
+                             delta_convention=convention, layout=layout, site_map=site_map,
+                             slot_map=slot_map, file_pattern=pattern, data_dir=data_dir,
+                             **priors)
+
+
+def _read_data_dir(rd, t, w, folder):
+    """The folder named by ``data_dir`` (absolute, or relative to the lot folder), or None.
+
+    Naming it is the user's explicit choice to read outside the lot folder, so '..', an
+    absolute path and a symbolic link are all accepted here; the files it holds are still
+    only read (and hashed), and the output folder may not lie in it (`filmmap.io.guard`).
+    """
+    value = rd.string(t, "data_dir", w, default=None)
+    if value is None:
+        return None
+    path = Path(value) if os.path.isabs(value) else folder / value
+    if not path.is_dir():
+        rd.fail(f"data_dir {value!r} is not an existing folder (looked for {path}); expected "
+                "the folder holding the spectra files", f"{w}.data_dir")
+    return Path(os.path.abspath(path))
+
+
+def _read_layout(rd, t, w, folder, allow_outside, technique, reference):
+    """``layout``, ``site_map``, ``slot_map``, ``file_pattern`` (`filmmap.io.layouts`)."""
+    import re
+
+    from filmmap.io.layouts import LAYOUTS
+
+    layout = rd.string(t, "layout", w, default="wide", choices=tuple(LAYOUTS))
+    if layout != "wide" and reference is not None:
+        rd.fail("raw intensities (reference_file) are read from the wide layout only",
+                f"{w}.layout")
+    if layout == "jcamp" and technique != "reflectance":
+        rd.fail("layout 'jcamp' holds reflectance spectra only", f"{w}.layout")
+    site_map = rd.string(t, "site_map", w, default=None)
+    if site_map is not None and not re.fullmatch(r"(polar|cartesian)-\d+", site_map):
+        site_map = _relative_file(rd, site_map, f"{w}.site_map", folder, allow_outside,
+                                  "site_map")
+    slot_map = rd.string(t, "slot_map", w, default=None)
+    if slot_map is not None:
+        slot_map = _relative_file(rd, slot_map, f"{w}.slot_map", folder, allow_outside,
+                                  "slot_map")
+    pattern = rd.string(t, "file_pattern", w, default=None)
+    if pattern is not None:
+        fields = re.findall(r"\{([^}]*)\}", pattern)
+        bad = [f for f in fields if f not in ("wafer", "site", "slot")]
+        if bad or len(set(fields)) != len(fields) or "wafer" not in fields:
+            rd.fail(f"file_pattern {pattern!r}: expected {{wafer}} once and optionally "
+                    "{site} and {slot} (no other fields)", f"{w}.file_pattern")
+    return layout, site_map, slot_map, pattern
 
 
 def _read_target(rd, doc, stack):

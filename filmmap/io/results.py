@@ -6,12 +6,15 @@ import csv
 import datetime as _dt
 import io
 import json
+import os
+from pathlib import Path
 
 import numpy as np
 import xarray as xr
 
 from filmmap import __version__
 from filmmap.io.atomic import write_bytes_atomic, write_text_atomic
+from filmmap.io.cf import cf_encode
 
 FIT_QUALITY_DEFINITION = ("reduced chi-square: sum(w r^2) / (points - parameters), w = 1/sigma^2 "
                           "from the noise model; about 1 when the model explains the data to the noise")
@@ -114,7 +117,7 @@ def lot_dataset(reduction, roles=None):
                                 {"units": "1", "long_name": "reduced chi-square",
                                  "definition": FIT_QUALITY_DEFINITION})
     data_vars["rms_residual"] = (("wafer", "site"), grid(s.rms_residual, np.nan),
-                                 {"units": "fraction" if config.measurement.technique == "reflectance"
+                                 {"units": "1" if config.measurement.technique == "reflectance"
                                   else "degree", "long_name": "root-mean-square residual"})
     data_vars["iterations"] = (("wafer", "site"), grid(s.iterations, -1, int),
                                {"units": "1", "long_name": "Levenberg-Marquardt iterations"})
@@ -126,7 +129,7 @@ def lot_dataset(reduction, roles=None):
                              {"units": "1", "long_name": "why the fit is not ok ('' when ok)"})
     coords = {
         "wafer": ("wafer", wafer_ids.astype(str), {"long_name": "wafer id"}),
-        "site": ("site", site_ids.astype(int), {"long_name": "site number"}),
+        "site": ("site", site_ids.astype(int), {"long_name": "site number", "units": "1"}),
         "slot": ("wafer", wafer_slot.astype(int), {"long_name": "boat slot, 1 = load/door end",
                                                     "units": "1"}),
         "x_mm": (("wafer", "site"), grid(s.x_mm, np.nan), {"units": "mm",
@@ -155,16 +158,64 @@ def lot_dataset(reduction, roles=None):
         "stack": "\n".join(reduction.stack.describe()),
         "fitted_parameters": json.dumps(s.names),
         "software": f"filmmap {__version__}",
-        "input_files_sha256": json.dumps([{"file": f, "sha256": h} for f, h in reduction.inputs]),
+        # relative to the lot folder: the record means the same on another machine
+        "input_files_sha256": json.dumps([{"file": lot_relative(f, config.path), "sha256": h}
+                                          for f, h in reduction.inputs]),
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "wavelength_range_nm": json.dumps([float(reduction.wavelength_nm[0]),
                                            float(reduction.wavelength_nm[-1])]),
+        # what the lot view needs besides the data, so `filmmap export` can rebuild
+        # summary.csv from lot.nc alone (JSON text: netCDF attributes hold no nesting)
+        "lot_setup": json.dumps(lot_setup(config)),
     }
     return xr.Dataset(data_vars, coords=coords, attrs=attrs)
 
 
+def lot_setup(config):
+    """Target, boat and zones of a lot file as plain data (the ``lot_setup`` attribute).
+
+    Returns
+    -------
+    dict
+        ``target`` ({thickness_nm, tolerance_pct} or None), ``boat`` ({slots,
+        dummy_slots, monitor_slots} or None), ``zones`` ([[name, first_slot,
+        last_slot], ...]).
+    """
+    t, b = config.target, config.boat
+    zones = getattr(config.furnace, "zones", ()) if config.furnace is not None else ()
+    return {
+        "target": None if t is None else {"thickness_nm": float(t.thickness_nm),
+                                          "tolerance_pct": float(t.tolerance_pct)},
+        "boat": None if b is None else {"slots": int(b.slots),
+                                        "dummy_slots": [int(v) for v in b.dummy_slots],
+                                        "monitor_slots": [int(v) for v in
+                                                          (getattr(b, "monitor_slots", ()) or ())]},
+        "zones": [[str(z.name), int(z.first_slot), int(z.last_slot)] for z in zones or ()],
+    }
+
+
+def lot_relative(path, lot_file):
+    """``path`` relative to the folder of ``lot_file`` (POSIX separators, ``..`` where outside).
+
+    Parameters
+    ----------
+    path, lot_file : str or path-like
+
+    Returns
+    -------
+    str
+    """
+    folder = Path(lot_file).absolute().parent
+    return Path(os.path.relpath(Path(path).absolute(), folder)).as_posix()
+
+
 def spectra_dataset(reduction, lot_ds):
-    """Measured and model spectra with residuals, dims (wafer, site, point), for inspection."""
+    """Measured and model spectra with residuals, dims (wafer, site, point), for inspection.
+
+    Reflectance is a fraction (units "1"); psi and delta are in degrees (both
+    quantities of an ellipsometer share the unit, so one ``units`` fits the
+    ``point`` axis); ``quantity`` names what each point holds.
+    """
     s = reduction.sites
     wi = {w: i for i, w in enumerate(lot_ds.wafer.values)}
     sj = {v: j for j, v in enumerate(lot_ds.site.values)}
@@ -181,13 +232,23 @@ def spectra_dataset(reduction, lot_ds):
     resid = meas - model
     if M != wl.size:
         resid[..., wl.size:] = np.mod(resid[..., wl.size:] + 180.0, 360.0) - 180.0
+    unit = "1" if M == wl.size else "degree"
+    dims = ("wafer", "site", "point")
+    attrs = {k: lot_ds.attrs[k] for k in ("lot_id", "software", "created") if k in lot_ds.attrs}
     return xr.Dataset(
-        {"measured": (("wafer", "site", "point"), meas), "model": (("wafer", "site", "point"), model),
-         "residual": (("wafer", "site", "point"), resid)},
-        coords={"wafer": lot_ds.wafer.values, "site": lot_ds.site.values,
-                "wavelength_nm": ("point", point_wl, {"units": "nm"}),
-                "quantity": ("point", np.array(quantity))},
-        attrs={"note": "R as a fraction; psi and delta in degrees; model at the unchecked best fit"})
+        {"measured": (dims, meas, {"units": unit, "long_name": "measured spectrum (reflectance "
+                                   "fraction, or psi then delta)"}),
+         "model": (dims, model, {"units": unit, "long_name": "model spectrum at the unchecked "
+                                 "best fit"}),
+         "residual": (dims, resid, {"units": unit, "long_name": "measured minus model (delta "
+                                    "wrapped to [-180, 180) degree)"})},
+        coords={"wafer": ("wafer", lot_ds.wafer.values, dict(lot_ds.wafer.attrs)),
+                "site": ("site", lot_ds.site.values, dict(lot_ds.site.attrs)),
+                "wavelength_nm": ("point", point_wl, {"units": "nm", "long_name": "wavelength"}),
+                "quantity": ("point", np.array(quantity), {"long_name": "what the point holds: "
+                                                            "R, psi or delta"})},
+        attrs={"title": f"filmmap spectra for lot {attrs.get('lot_id', '')}", **attrs,
+               "note": "R as a fraction; psi and delta in degrees; model at the unchecked best fit"})
 
 
 def write_netcdf_atomic(ds, path):
@@ -198,8 +259,9 @@ def write_netcdf_atomic(ds, path):
     the whole process at exit, after filmmap had reported the error; Python's own write
     raises a plain OSError that names the file and leaves nothing behind.
     """
+    ds, encoding = cf_encode(ds)
     with _local_scheduler():
-        data = bytes(ds.to_netcdf(engine="h5netcdf"))
+        data = bytes(ds.to_netcdf(engine="h5netcdf", encoding=encoding))
     write_bytes_atomic(path, data)
     return path
 

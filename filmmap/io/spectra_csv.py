@@ -778,7 +778,7 @@ def read_spectrum_file(path, max_bytes=DEFAULT_MAX_BYTES):
                     counts=np.ascontiguousarray(block[0]), line=numbers[0])
 
 
-def check_tables(tables, wafer_diameter_mm, boat_slots=None):
+def check_tables(tables, wafer_diameter_mm, boat_slots=None, wafer_per_file=True):
     """Check a lot's spectra tables against each other, the wafer and the boat.
 
     Parameters
@@ -789,6 +789,8 @@ def check_tables(tables, wafer_diameter_mm, boat_slots=None):
         Wafer diameter in mm; every site must lie within the radius.
     boat_slots : int, optional
         Number of boat slots; every slot must lie in ``1..boat_slots``.
+    wafer_per_file : bool
+        Each wafer in one file (False for layouts with a file per site).
 
     Returns
     -------
@@ -850,7 +852,8 @@ def check_tables(tables, wafer_diameter_mm, boat_slots=None):
     for t in tables:
         for w in dict.fromkeys(str(x) for x in t.wafer.tolist()):
             r = int(np.argmax(t.wafer == w))
-            if w in first_file and str(first_file[w][0]) != str(t.path):
+            if w in first_file and str(first_file[w][0]) != str(t.path) and (
+                    wafer_per_file or first_file[w][2] != int(t.slot[r])):
                 other, oline, oslot = first_file[w]
                 slot = int(t.slot[r])
                 if oslot != slot:

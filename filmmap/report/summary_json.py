@@ -43,11 +43,13 @@ WAFER_KEYS = ("wafer", "slot", "role", "mean_nm", "sigma_nm", "nu_pct", "range_n
 WAFER_EXTRA_KEYS = ("sites_measured", "sites_fit_ok", "min_nm", "max_nm", "in_lot_stats",
                     "flag", "note")
 
-#: Columns of summary.csv: the pinned per-wafer keys, then the extras.
-SUMMARY_CSV_COLUMNS = WAFER_KEYS + WAFER_EXTRA_KEYS
+#: Columns of summary.csv: the pinned per-wafer keys, then the extras, then the lot id
+#: (last, so that no pinned or earlier column moves).
+SUMMARY_CSV_COLUMNS = WAFER_KEYS + WAFER_EXTRA_KEYS + ("lot_id",)
 
-#: Version of the summary.json layout (an extra key; bumped only when keys are added).
-SUMMARY_FORMAT = 1
+#: Version of the summary.json layout (an extra key; bumped only when keys are added;
+#: 2 added ``created``).
+SUMMARY_FORMAT = 2
 
 
 def _num(value):
@@ -86,12 +88,15 @@ def wafer_rows(view):
     return rows
 
 
-def summary_dict(view):
+def summary_dict(view, created=None):
     """The summary.json content as a dict (see the module docstring for the pinned keys).
 
     Parameters
     ----------
     view : LotView
+    created : str, optional
+        Creation time (ISO 8601, UTC) recorded as ``created``; default now (the
+        reduce passes lot.nc's, so both files carry one time).
 
     Returns
     -------
@@ -132,7 +137,13 @@ def summary_dict(view):
     }
     return {"lot": lot, "wafers": wafer_rows(view), "warnings": list(view.warnings),
             "notes": list(view.notes), "software": f"filmmap {__version__}",
-            "summary_format": SUMMARY_FORMAT}
+            "summary_format": SUMMARY_FORMAT, "created": created or _now()}
+
+
+def _now():
+    import datetime as _dt
+
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
 
 def _dumps(obj, level=0):
@@ -151,12 +162,12 @@ def _dumps(obj, level=0):
     return "[\n" + ",\n".join(items) + "\n" + pad + "]"
 
 
-def summary_json_text(view):
+def summary_json_text(view, created=None):
     """summary.json as text: UTF-8, strict JSON (no NaN), one wafer per line."""
-    return _dumps(summary_dict(view)) + "\n"
+    return _dumps(summary_dict(view, created)) + "\n"
 
 
-def write_summary_json(view, outdir):
+def write_summary_json(view, outdir, created=None):
     """Write ``OUTDIR/summary.json`` atomically; return its path.
 
     Parameters
@@ -165,7 +176,7 @@ def write_summary_json(view, outdir):
     outdir : str or path-like
         Output folder (must exist).
     """
-    return write_text_atomic(Path(outdir) / "summary.json", summary_json_text(view))
+    return write_text_atomic(Path(outdir) / "summary.json", summary_json_text(view, created))
 
 
 def _csv_value(value):
@@ -194,7 +205,8 @@ def summary_csv_rows(view):
         in_lot_stats as ``true`` / ``false`` ('' for in_spec when not judged).
     """
     header = list(SUMMARY_CSV_COLUMNS)
-    return header, [[_csv_value(r[c]) for c in header] for r in wafer_rows(view)]
+    return header, [[_csv_value({**r, "lot_id": view.lot_id}[c]) for c in header]
+                    for r in wafer_rows(view)]
 
 
 def write_summary_csv(view, path):

