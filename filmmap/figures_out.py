@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.outputs import coordinate_groups
-from filmmap.wafermap.figures import lot_contact_sheet, render_wafer_pngs, save_figure
+from filmmap.wafermap.figures import contact_sheet_png, render_wafer_pngs, write_bytes_atomic
 
 
 def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=None, notes=None,
@@ -78,12 +78,12 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
     maps.start()
     try:
         oos = set(map(str, out_of_spec))
-        fig = lot_contact_sheet(t, ok, ds["x_mm"].values, ds["y_mm"].values,
+        png = contact_sheet_png(t, ok, ds["x_mm"].values, ds["y_mm"].values,
                                 m.wafer_diameter_mm, m.edge_exclusion_mm,
                                 wafer_ids=[str(w) for w in wafers], slots=[int(s) for s in slots],
                                 out_of_spec=[str(w) in oos for w in wafers], lot_id=lot_id)
-        written["contact_sheet.png"] = save_figure(fig, outdir / "contact_sheet.png")
-        del fig
+        written["contact_sheet.png"] = write_bytes_atomic(png, outdir / "contact_sheet.png")
+        del png
         if while_maps is not None:
             while_maps()
     finally:

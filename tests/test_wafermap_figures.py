@@ -214,3 +214,28 @@ def test_contact_sheet_with_uneven_layouts_draws_every_wafer():
     lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6)) for c in sheet.collections
             if hasattr(c, "norm") and c.get_array() is not None}
     assert len(lims) == 1
+
+
+def test_contact_sheet_png_matches_the_figure_layout_and_bounds_its_pixels():
+    # The panel-by-panel sheet has the figure's size in pixels (same layout), keeps its
+    # pixels under max_pixels for a large lot, and carries the common colour scale's
+    # colours: the thickest wafer's yellow end of viridis appears (Tufte 1990, one scale)
+    import io
+
+    from PIL import Image
+
+    from filmmap.wafermap.figures import contact_sheet_png
+
+    t = _lot(5)
+    t[2] += 3.0
+    kw = dict(wafer_ids=[f"W{i}" for i in range(5)], slots=[1, 2, 3, 4, 5], lot_id="L", dpi=40)
+    fig = lot_contact_sheet(t, None, SITES.x_mm, SITES.y_mm, D, EE, **kw)
+    img = Image.open(io.BytesIO(contact_sheet_png(t, None, SITES.x_mm, SITES.y_mm, D, EE, **kw)))
+    w_in, h_in = fig.get_size_inches()
+    assert abs(img.size[0] - w_in * 40) <= 3 and abs(img.size[1] - h_in * 40) <= 3
+    rgb = np.asarray(img.convert("RGB")).reshape(-1, 3).astype(int)
+    yellow = np.array([253, 231, 37])                              # viridis(1.0)
+    assert np.min(np.abs(rgb - yellow).sum(axis=1)) < 40
+    small = Image.open(io.BytesIO(contact_sheet_png(np.tile(t, (8, 1)), None, SITES.x_mm,
+                                                    SITES.y_mm, D, EE, max_pixels=2e5)))
+    assert small.size[0] * small.size[1] <= 2e5 * 1.05

@@ -130,20 +130,20 @@ class ReportImages:
             return data, ""
         if not self.render_missing:
             return None, "contact_sheet.png was not written by the reduce step"
-        from filmmap.wafermap.figures import lot_contact_sheet
+        from filmmap.wafermap.figures import contact_sheet_png
 
         ds = self.ds
         oos = set(self.view.wtw.out_of_spec_ids) if self.view.target_nm is not None else set()
         try:
             # per-wafer coordinates: wafers with another layout (a missing site) keep their own
-            fig = lot_contact_sheet(ds["thickness"].values, ds["fit_ok"].values,
+            png = contact_sheet_png(ds["thickness"].values, ds["fit_ok"].values,
                                     ds["x_mm"].values, ds["y_mm"].values,
                                     self.view.diameter_mm, self.view.edge_exclusion_mm,
                                     wafer_ids=[str(w) for w in ds["wafer"].values],
                                     slots=[int(s) for s in ds["slot"].values],
                                     dpi=self.dpi, panel_in=1.6, lot_id=self.view.lot_id,
                                     out_of_spec=[str(w) in oos for w in ds["wafer"].values])
-            return figure_png(fig), ""
+            return png, ""
         except Exception as exc:  # noqa: BLE001 - the report says why, it does not abort
             return None, f"the contact sheet could not be drawn ({type(exc).__name__}: {exc})"
 

@@ -432,6 +432,44 @@ def _layout_groups(x2, y2):
     return [np.flatnonzero(inverse == g) for g in np.unique(inverse)]
 
 
+def _sheet_panels(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, wafer_ids,
+                  slots, surface, out_of_spec, levels):
+    """Per-wafer drawing data of a contact sheet and its common colour boundaries."""
+    d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
+    t = np.atleast_2d(np.asarray(thickness_nm, dtype=float))
+    W, n_sites = t.shape
+    x2 = np.broadcast_to(np.asarray(x_mm, dtype=float), (W, n_sites))
+    y2 = np.broadcast_to(np.asarray(y_mm, dtype=float), (W, n_sites))
+    ok2 = np.ones((W, n_sites), bool) if ok is None else np.broadcast_to(
+        np.asarray(ok, bool), (W, n_sites))
+    ids = [str(i + 1) for i in range(W)] if wafer_ids is None else [str(v) for v in wafer_ids]
+    if len(ids) != W or (slots is not None and len(slots) != W):
+        raise FilmmapInputError(f"wafer_ids and slots need one entry per wafer ({W})",
+                                field="wafer_ids")
+    oos = np.zeros(W, bool) if out_of_spec is None else np.asarray(out_of_spec, bool)
+    # one surface computation per site layout (usually one for the whole lot)
+    groups = _layout_groups(x2, y2)
+    if surface is not None and len(groups) != 1:
+        raise FilmmapInputError("a precomputed surface needs one site layout for the lot",
+                                field="surface")
+    per = [None] * W
+    for rows in groups:
+        x, y, present = _present_sites(x2[rows[0]], y2[rows[0]], None)
+        tg, good, x, y, _ = lot_arrays(t[rows], ok2[rows], x, y)
+        good = good & present
+        use = good & inside_edge_exclusion(x, y, d, ee)
+        s = tps_polar_surface(tg, good, x, y, d, ee) if surface is None else surface
+        nu = within_wafer_stats(tg, good, x, y, d, ee).nu_pct
+        for k, i in enumerate(rows):
+            # the mesh is made when the panel is drawn: held for every wafer at once it
+            # would be most of a large lot's memory
+            per[i] = ((s, k, len(rows)), x, y, tg[k], use[k], present, present & ~good[k],
+                      float(np.atleast_1d(nu)[k]))
+    lo, hi = _value_range(*[_mesh(*p[0])[2] for p in per], *[p[3][p[4]] for p in per])
+    bounds, norm = _levels(lo, hi, levels)
+    return d, ee, W, ids, oos, per, bounds, norm
+
+
 def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                       wafer_ids=None, slots=None, surface=None, ncols=None, cmap="viridis",
                       levels=12, panel_in=2.0, dpi=100, title=None, out_of_spec=None,
@@ -486,37 +524,10 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     .. [1] E. R. Tufte, Envisioning Information (Graphics Press, 1990),
        "small multiples": a shared scale makes panels comparable.
     """
-    d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
     cm = _colormap(cmap)
-    t = np.atleast_2d(np.asarray(thickness_nm, dtype=float))
-    W, n_sites = t.shape
-    x2 = np.broadcast_to(np.asarray(x_mm, dtype=float), (W, n_sites))
-    y2 = np.broadcast_to(np.asarray(y_mm, dtype=float), (W, n_sites))
-    ok2 = np.ones((W, n_sites), bool) if ok is None else np.broadcast_to(
-        np.asarray(ok, bool), (W, n_sites))
-    ids = [str(i + 1) for i in range(W)] if wafer_ids is None else [str(v) for v in wafer_ids]
-    if len(ids) != W or (slots is not None and len(slots) != W):
-        raise FilmmapInputError(f"wafer_ids and slots need one entry per wafer ({W})",
-                                field="wafer_ids")
-    oos = np.zeros(W, bool) if out_of_spec is None else np.asarray(out_of_spec, bool)
-    # one surface computation per site layout (usually one for the whole lot)
-    groups = _layout_groups(x2, y2)
-    if surface is not None and len(groups) != 1:
-        raise FilmmapInputError("a precomputed surface needs one site layout for the lot",
-                                field="surface")
-    per = [None] * W
-    for rows in groups:
-        x, y, present = _present_sites(x2[rows[0]], y2[rows[0]], None)
-        tg, good, x, y, _ = lot_arrays(t[rows], ok2[rows], x, y)
-        good = good & present
-        use = good & inside_edge_exclusion(x, y, d, ee)
-        s = tps_polar_surface(tg, good, x, y, d, ee) if surface is None else surface
-        nu = within_wafer_stats(tg, good, x, y, d, ee).nu_pct
-        for k, i in enumerate(rows):
-            per[i] = (_mesh(s, k, len(rows)), x, y, tg[k], use[k], present, present & ~good[k],
-                      float(np.atleast_1d(nu)[k]))
-    lo, hi = _value_range(*[p[0][2] for p in per], *[p[3][p[4]] for p in per])
-    bounds, norm = _levels(lo, hi, levels)
+    d, ee, W, ids, oos, per, bounds, norm = _sheet_panels(
+        thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, wafer_ids, slots, surface,
+        out_of_spec, levels)
     ncols = int(np.ceil(np.sqrt(W))) if ncols is None else max(1, int(ncols))
     nrows = max(1, int(np.ceil(W / ncols)))
     title = title or (f"Lot {lot_id}: thickness (nm), common scale" if lot_id else None)
@@ -540,7 +551,8 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
         row, col = divmod(i, ncols)
         cx = (col + 0.5) * panel_in * k
         cy = ((nrows - row - 1) * cell_h + 0.5 * panel_in) * k
-        mesh, x, y, ti, ui, pi, fi, nu = per[i]
+        mesh_of, x, y, ti, ui, pi, fi, nu = per[i]
+        mesh = _mesh(*mesh_of)
         _draw_wafer(ax, d, ee, *mesh, x, y, ti, ui, norm, cm, bounds, False, "", 0,
                     present=pi, failed=fi, offset=(cx, cy), set_limits=False)
         label = ids[i] + ("" if slots is None else f" (slot {slots[i]})")
@@ -558,6 +570,107 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     if title:
         fig.suptitle(title, fontsize=11, y=1 - 0.1 / height, va="top", parse_math=False)
     return fig
+
+
+def contact_sheet_png(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
+                      wafer_ids=None, slots=None, ncols=None, cmap="viridis", levels=12,
+                      panel_in=2.0, dpi=100, out_of_spec=None, lot_id="", title=None,
+                      max_pixels=MAX_SHEET_PIXELS):
+    """The lot contact sheet as palette PNG bytes, drawn one panel at a time.
+
+    The same sheet as `lot_contact_sheet` (arguments alike), but each wafer is drawn on one
+    small reused panel figure whose pixels are pasted into the sheet: the memory is one
+    panel and the sheet's pixels, not a figure holding every wafer's contours, so it stays
+    bounded and grows linearly in time however many wafers the lot has.
+
+    Returns
+    -------
+    bytes
+    """
+    cm = _colormap(cmap)
+    d, ee, W, ids, oos, per, bounds, norm = _sheet_panels(
+        thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, wafer_ids, slots, None,
+        out_of_spec, levels)
+    ncols = int(np.ceil(np.sqrt(W))) if ncols is None else max(1, int(ncols))
+    nrows = max(1, int(np.ceil(W / ncols)))
+    title = title or (f"Lot {lot_id}: thickness (nm), common scale" if lot_id else None)
+    bar_in, head_in, cap_in = 1.1, 0.5 if title else 0.15, 0.45
+    width, height = ncols * panel_in + bar_in, nrows * (panel_in + cap_in) + head_in
+    dpi = min(float(dpi), math.sqrt(float(max_pixels) / (width * height)))
+    cell_w, cell_h = int(round(panel_in * dpi)), int(round((panel_in + cap_in) * dpi))
+    head_px, bar_px = int(round(head_in * dpi)), int(round(bar_in * dpi))
+    sheet = np.full((head_px + nrows * cell_h, ncols * cell_w + bar_px, 3), 255, np.uint8)
+
+    def pixels(fig):
+        fig.canvas.draw()
+        return np.asarray(fig.canvas.buffer_rgba())[..., :3]
+
+    # one panel figure for every wafer: map below, caption above, as in lot_contact_sheet
+    pfig = Figure(figsize=(cell_w / dpi, cell_h / dpi), dpi=dpi)
+    FigureCanvasAgg(pfig)
+    pax = pfig.add_axes((0.04, 0.04 * panel_in / (panel_in + cap_in),
+                         0.92, 0.92 * panel_in / (panel_in + cap_in)))
+    r = d / 2
+    pax.set_xlim(-1.05 * r, 1.05 * r)
+    pax.set_ylim(-1.05 * r, 1.05 * r)
+    pax.set_axis_off()
+    static = set(pax.get_children())
+    caption = pax.set_title("", fontsize=7, pad=2, parse_math=False)
+    for i in range(W):
+        mesh_of, x, y, ti, ui, pi, fi, nu = per[i]
+        mesh = _mesh(*mesh_of)
+        _draw_wafer(pax, d, ee, *mesh, x, y, ti, ui, norm, cm, bounds, False, "", 0,
+                    present=pi, failed=fi, set_limits=False)
+        label = ids[i] + ("" if slots is None else f" (slot {slots[i]})")
+        nu_text = f"NU {nu:.2f} %" if np.isfinite(nu) else "NU —"
+        if oos[i]:
+            pax.add_patch(Circle((0.0, 0.0), 0.518 * d, fill=False, lw=2.2, ec="black",
+                                 clip_on=False))
+            nu_text = "OUT OF SPEC · " + nu_text
+        caption.set_text(f"{label}\n{nu_text}")
+        caption.set_fontweight("bold" if oos[i] else "normal")
+        row, col = divmod(i, ncols)
+        img = pixels(pfig)
+        y0, x0 = head_px + row * cell_h, col * cell_w
+        h, w = min(img.shape[0], cell_h), min(img.shape[1], cell_w)
+        sheet[y0:y0 + h, x0:x0 + w] = img[:h, :w]
+        for artist in set(pax.get_children()) - static:
+            if artist is not caption:
+                artist.remove()
+    del pfig
+    # colour bar and title, each drawn once
+    bfig = Figure(figsize=(bar_px / dpi, nrows * cell_h / dpi), dpi=dpi)
+    FigureCanvasAgg(bfig)
+    cax = bfig.add_axes((0.25, 0.15, 0.18, 0.7))
+    bfig.colorbar(ScalarMappable(norm=norm, cmap=cm), cax=cax,
+                  ticks=bounds[::max(1, len(bounds) // 7)])
+    cax.set_ylabel(COLORBAR_LABEL, fontsize=9)
+    cax.tick_params(labelsize=7)
+    img = pixels(bfig)
+    h, w = min(img.shape[0], sheet.shape[0] - head_px), min(img.shape[1], bar_px)
+    sheet[head_px:head_px + h, ncols * cell_w:ncols * cell_w + w] = img[:h, :w]
+    if title:
+        tfig = Figure(figsize=(sheet.shape[1] / dpi, head_px / dpi), dpi=dpi)
+        FigureCanvasAgg(tfig)
+        tfig.text(0.5, 0.8, title, fontsize=11, ha="center", va="top", parse_math=False)
+        img = pixels(tfig)
+        h, w = min(img.shape[0], head_px), min(img.shape[1], sheet.shape[1])
+        sheet[:h, :w] = img[:h, :w]
+    return encode_png(sheet)
+
+
+def write_bytes_atomic(data, path):
+    """Write ``data`` to ``path`` through a temporary file and os.replace; return the path."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}.tmp")
+    try:
+        with open(tmp, "xb") as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return path
 
 
 #: Colours of the palette PNGs (maps, contact sheet, report images).
@@ -835,24 +948,42 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     s = tps_polar_surface(t, good, x, y, d, ee) if surface is None else surface
-    meshes = [_mesh(s, i, W) for i in range(W)]
     if common_scale:
         use = good & inside_edge_exclusion(x, y, d, ee)
-        lo, hi = _value_range(*[m[2] for m in meshes], t[use])
+        lo, hi = _value_range(*[_mesh(s, i, W)[2] for i in range(W)], t[use])
         kwargs.setdefault("vmin", lo)
         kwargs.setdefault("vmax", hi)
-    tasks = []
-    for i in range(W):
-        kw = dict(kwargs, wafer_id=ids[i], slot=None if slots is None else slots[i],
-                  surface=meshes[i])
-        tasks.append((out / names[i], (t[i], good[i], x, y, d, ee), kw))
+
+    def tasks():
+        # made one at a time: a lot's meshes are never all in memory (or in the pool's queue)
+        for i in range(W):
+            kw = dict(kwargs, wafer_id=ids[i], slot=None if slots is None else slots[i],
+                      surface=_mesh(s, i, W))
+            yield out / names[i], (t[i], good[i], x, y, d, ee), kw
+
     tick = progress or (lambda n: None)
-    out = []
+    written = []
     if workers == 1 or W == 1:
-        for task in tasks:
-            out.append(Path(_render_task(task)))
+        for task in tasks():
+            written.append(Path(_render_task(task)))
             tick(1)
-        return out
+        return written
+    from concurrent.futures import FIRST_COMPLETED, wait
+
+    window = 4 * workers
+    with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context) as pool:
+        pending, done_paths = {}, {}
+        for k, task in enumerate(tasks()):
+            pending[pool.submit(_render_task, task)] = k
+            while len(pending) >= window:
+                finished, _ = wait(pending, return_when=FIRST_COMPLETED)
+                for f in finished:
+                    done_paths[pending.pop(f)] = Path(f.result())
+                    tick(1)
+        for f in list(pending):
+            done_paths[pending.pop(f)] = Path(f.result())
+            tick(1)
+    return [done_paths[k] for k in range(W)]
     chunk = max(1, W // (8 * workers))
     with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context,
                              initializer=end_with_parent) as pool:
