@@ -35,6 +35,10 @@ MAX_ID_CHARS = 64
 """Lot and wafer ids, characters: SEMI M12/T7 wafer ids have 12-18 (common practice beyond
 that, no source)."""
 
+MAX_WAFER_DIAMETER_MM = 450.0
+"""Wafer diameter, mm: the largest standardised silicon wafer is 450 mm (SEMI M1, from
+memory); 300 mm is today's largest in production."""
+
 MAX_TEMPERATURE_OFFSET_K = 100.0
 """Per-slot effective temperature offsets read from an advice.json, K: far beyond any
 furnace's zone control (common practice, no source)."""

@@ -372,7 +372,7 @@ def test_lot_id_must_be_plain(folder):
     ("angle_deg = 0.0", "angle_deg = 90.0", "measurement.angle_deg", "0 <= value <= 89"),
     ("angle_deg = 0.0", "angle_deg = -1", "measurement.angle_deg", "out of range"),
     ("wafer_diameter_mm = 150", "wafer_diameter_mm = 0", "measurement.wafer_diameter_mm",
-     "value > 0"),
+     "0 < value <= 450"),
     ("edge_exclusion_mm = 3", "edge_exclusion_mm = 75", "measurement.edge_exclusion_mm",
      "not smaller than the wafer radius 75 mm"),
     ("edge_exclusion_mm = 3", "edge_exclusion_mm = -1", "measurement.edge_exclusion_mm",
@@ -697,3 +697,9 @@ def test_fit_offset_alias(folder):
 ])
 def test_bad_systematics_keys_name_the_field(folder, old, new, field, fragment):
     check(folder, edit(old, new), fragment, field=field)
+
+
+def test_wafer_diameter_bounded(folder):
+    # the largest standardised silicon wafer is 450 mm (SEMI M1, from memory)
+    check(folder, edit("wafer_diameter_mm = 150\n", "wafer_diameter_mm = 4500\n"),
+          "wafer_diameter_mm", field="measurement.wafer_diameter_mm")

@@ -105,7 +105,7 @@ from pathlib import Path, PurePosixPath, PureWindowsPath
 import numpy as np
 
 from filmmap.bounds import (MAX_BOAT_SLOTS, MAX_ID_CHARS, MAX_STEP_MINUTES,
-                            MAX_TEMPERATURE_OFFSET_K)
+                            MAX_TEMPERATURE_OFFSET_K, MAX_WAFER_DIAMETER_MM)
 from filmmap.errors import FilmmapInputError
 from filmmap.materials import Cauchy, Material, Tabulated, available, get_material
 
@@ -992,7 +992,7 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude, require_files=Tru
     else:
         angle = rd.number(t, "angle_deg", w, default=0.0, lo=0.0, hi=89.0, unit=" deg")
     diameter = rd.number(t, "wafer_diameter_mm", w, default=150.0, lo=0.0, lo_open=True,
-                         unit=" mm")
+                         hi=MAX_WAFER_DIAMETER_MM, unit=" mm")
     edge = rd.number(t, "edge_exclusion_mm", w, default=3.0, lo=0.0, unit=" mm")
     if not edge < diameter / 2:
         rd.fail(f"edge_exclusion_mm = {edge:g} mm is not smaller than the wafer radius "

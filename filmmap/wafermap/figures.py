@@ -971,7 +971,9 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
     from concurrent.futures import FIRST_COMPLETED, wait
 
     window = 4 * workers
-    with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context) as pool:
+    # the workers end with this process (a watchdog on the parent), never left as orphans
+    with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context,
+                             initializer=end_with_parent) as pool:
         pending, done_paths = {}, {}
         for k, task in enumerate(tasks()):
             pending[pool.submit(_render_task, task)] = k
@@ -984,10 +986,3 @@ def render_wafer_pngs(out_dir, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_e
             done_paths[pending.pop(f)] = Path(f.result())
             tick(1)
     return [done_paths[k] for k in range(W)]
-    chunk = max(1, W // (8 * workers))
-    with ProcessPoolExecutor(max_workers=min(workers, W), mp_context=mp_context,
-                             initializer=end_with_parent) as pool:
-        for p in pool.map(_render_task, tasks, chunksize=chunk):
-            out.append(Path(p))
-            tick(1)
-    return out
