@@ -72,6 +72,14 @@ def write_layout(folder, layout, spectra):
                              + ",".join(f(v) for v in spectra[(w, int(PAT.site[k]))]))
         (folder / "all.csv").write_text("\n".join(lines) + "\n")
         return _lot(folder, layout, "all.csv", "")
+    if layout == "wide-mapped":
+        # only what an instrument writes: wafer, site and the spectra; slot and position
+        # from the maps
+        lines = ["wafer,site," + ",".join(f"R@{w:g}" for w in WL)]
+        for (w, site), R in spectra.items():
+            lines.append(f"{w},{site}," + ",".join(f(v) for v in R))
+        (folder / "all.csv").write_text("\n".join(lines) + "\n")
+        return _lot(folder, "wide", "all.csv", maps)
     if layout == "long":
         lines = ["wafer,site,wavelength_nm,R"]
         for (w, site), R in spectra.items():
@@ -126,7 +134,7 @@ def wide_result(tmp_path_factory, spectra):
     return res
 
 
-@pytest.mark.parametrize("layout", ["long", "transposed", "site-files", "jcamp"])
+@pytest.mark.parametrize("layout", ["wide-mapped", "long", "transposed", "site-files", "jcamp"])
 def test_every_layout_gives_identical_thickness(layout, tmp_path, spectra, wide_result):
     if layout == "jcamp":
         pytest.importorskip("jcamp", reason="optional jcamp package not installed")
