@@ -261,3 +261,23 @@ def test_builtin_site_maps():
         builtin_site_map("cartesian-10", 150.0, 3.0)
     with pytest.raises(FilmmapInputError, match="site pattern"):
         builtin_site_map("polar-7", 150.0, 3.0)
+
+
+def test_wide_header_variants_read_as_the_pinned_names(tmp_path):
+    from filmmap.io.spectra_csv import read_spectra_csv
+
+    base = "W1,1,1,0,0,0.3,0.31,0.32,0.33,0.34\n"
+    p = _write(tmp_path, "a.csv", "wafer,slot,site,x_mm,y_mm,R 400 nm,R(410nm),R [420 nm],"
+                                  "R@430nm,R 440\n" + base)
+    t = read_spectra_csv(p, "reflectance")
+    np.testing.assert_array_equal(t.wavelength_nm, [400, 410, 420, 430, 440])
+    np.testing.assert_array_equal(t.data["R"][0], [0.3, 0.31, 0.32, 0.33, 0.34])
+    p = _write(tmp_path, "b.csv", "wafer,slot,site,x_mm,y_mm,psi 400 nm,Delta 400 nm\n"
+                                  "W1,1,1,0,0,30,100\n")
+    t = read_spectra_csv(p, "ellipsometry")
+    assert t.data["psi"][0, 0] == 30 and t.data["delta"][0, 0] == 100
+    p = _write(tmp_path, "c.csv", "wafer,slot,site,x_mm,y_mm,R 0.4 um,R 0.5 um\n"
+                                  "W1,1,1,0,0,0.3,0.31\n")
+    with pytest.raises(FilmmapInputError, match="micrometres; expected nm, e.g. R@400") as e:
+        read_spectra_csv(p, "reflectance")
+    assert e.value.line == 1 and e.value.field == "R 0.4 um"
