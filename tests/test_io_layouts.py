@@ -281,3 +281,69 @@ def test_wide_header_variants_read_as_the_pinned_names(tmp_path):
     with pytest.raises(FilmmapInputError, match="micrometres; expected nm, e.g. R@400") as e:
         read_spectra_csv(p, "reflectance")
     assert e.value.line == 1 and e.value.field == "R 0.4 um"
+
+
+# ------------------------------------------------------------- ellipsometry layouts
+
+ANGLE = 70.0
+
+
+@pytest.fixture(scope="module")
+def ellips():
+    return {(w, int(PAT.site[k])): tmm_spectrum(oxide_on_si, [d], WL, ANGLE, "ellips")
+            for w, (_slot, ds) in WAFERS.items() for k, d in enumerate(ds)}
+
+
+def write_ellips(folder, layout, sp):
+    """psi/delta in ``layout``; the slot from the file name where the layout has names."""
+    folder.mkdir(parents=True)
+    maps = 'site_map = "polar-5"\n'
+    slots = "".join(f"{w},{s}\n" for w, (s, _) in WAFERS.items())
+    if layout == "wide":
+        head = ",".join(f"psi@{w:g}" for w in WL) + "," + ",".join(f"delta@{w:g}" for w in WL)
+        lines = ["wafer,slot,site,x_mm,y_mm," + head]
+        for w, (slot, ds) in WAFERS.items():
+            for k in range(len(ds)):
+                psi, delta = sp[(w, int(PAT.site[k]))]
+                lines.append(f"{w},{slot},{PAT.site[k]},{PAT.x_mm[k]:.3f},{PAT.y_mm[k]:.3f},"
+                             + ",".join(f(v) for v in np.concatenate([psi, delta])))
+        (folder / "all.csv").write_text("\n".join(lines) + "\n")
+        extra = ""
+        glob = "all.csv"
+    elif layout == "long":
+        (folder / "slots.csv").write_text("wafer,slot\n" + slots)
+        lines = ["wafer,site,wavelength_nm,psi,delta"]
+        for (w, site), (psi, delta) in sp.items():
+            lines += [f"{w},{site},{wl:g},{f(a)},{f(b)}" for wl, a, b in zip(WL, psi, delta)]
+        (folder / "all.csv").write_text("\n".join(lines) + "\n")
+        extra, glob = maps + 'slot_map = "slots.csv"\n', "all.csv"
+    elif layout == "transposed":
+        sites = [int(s) for s in PAT.site]
+        for w, (slot, _ds) in WAFERS.items():
+            lines = ["wavelength_nm," + ",".join(f"psi:{s},delta:{s}" for s in sites)]
+            for j, wl in enumerate(WL):
+                lines.append(f"{wl:g}," + ",".join(f"{f(sp[(w, s)][0][j])},{f(sp[(w, s)][1][j])}"
+                                                   for s in sites))
+            (folder / f"{w}_slot{slot}.csv").write_text("\n".join(lines) + "\n")
+        extra, glob = maps + 'file_pattern = "{wafer}_slot{slot}.csv"\n', "A-*.csv"
+    else:
+        for (w, site), (psi, delta) in sp.items():
+            slot = WAFERS[w][0]
+            (folder / f"{w}_{slot}_{site}.txt").write_text(
+                "".join(f"{wl:g} {f(a)} {f(b)}\n" for wl, a, b in zip(WL, psi, delta)))
+        extra, glob = maps + 'file_pattern = "{wafer}_{slot}_{site}.txt"\n', "*.txt"
+    text = lot_toml(layout, glob, extra).replace('technique = "reflectance"',
+                                                 f'technique = "ellipsometry"\nangle_deg = {ANGLE}')
+    (folder / "lot.toml").write_text(text)
+    return folder / "lot.toml"
+
+
+def test_ellipsometry_layouts_give_identical_thickness(tmp_path, ellips):
+    ref = thickness_by_site(write_ellips(tmp_path / "wide", "wide", ellips))
+    truth = {(w, int(PAT.site[k])): d for w, (_s, ds) in WAFERS.items() for k, d in enumerate(ds)}
+    assert all(abs(v[0] - truth[k]) < 0.01 for k, v in ref.items())
+    for layout in ("long", "transposed", "site-files"):
+        res = thickness_by_site(write_ellips(tmp_path / layout, layout, ellips))
+        assert set(res) == set(ref), layout
+        for key, (t, slot, x, y) in res.items():
+            assert t == ref[key][0] and slot == ref[key][1], (layout, key)
