@@ -237,8 +237,8 @@ def test_bad_slot_maps_exit_2_with_file_and_line(tmp_path):
     lot.mkdir()
     (lot / "W1.csv").write_text("wavelength_nm,1\n400,0.3\n410,0.31\n")
     (lot / "slots.csv").write_text("wafer,slot\nW1,2\nW2,2\n")
-    (lot / "lot.toml").write_text(lot_toml("transposed", "W*.csv", 'site_map = "polar-1"\n'
-                                           'slot_map = "slots.csv"\nfile_pattern = "{wafer}.csv"\n'))
+    maps = 'site_map = "polar-1"\nslot_map = "slots.csv"\nfile_pattern = "{wafer}.csv"\n'
+    (lot / "lot.toml").write_text(lot_toml("transposed", "W*.csv", maps))
     r = subprocess.run([sys.executable, "-m", "filmmap.cli.main", "reduce", lot / "lot.toml",
                         "-o", tmp_path / "out", "--no-figures", "--no-history"],
                        capture_output=True, text=True, timeout=300)

@@ -70,7 +70,8 @@ def test_sites_csv_matches_lot_nc(demo):
         w, site = row[col["wafer"]], int(row[col["site"]])
         sel = ds.sel(wafer=w, site=site)
         assert row[col["lot_id"]] == ds.attrs["lot_id"] == "DEMO-W2-0417"
-        assert int(row[col["slot"]]) == int(sel["slot"]) and row[col["role"]] == str(sel["role"].values)
+        assert int(row[col["slot"]]) == int(sel["slot"])
+        assert row[col["role"]] == str(sel["role"].values)
         assert float(row[col["thickness_nm"]]) == pytest.approx(float(sel["thickness"]), abs=5e-5)
         assert float(row[col["sigma_nm"]]) == pytest.approx(float(sel["thickness_sigma"]), abs=5e-5)
         assert float(row[col["x_mm"]]) == pytest.approx(float(sel["x_mm"]), abs=5e-4)

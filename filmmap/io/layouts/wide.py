@@ -1,4 +1,4 @@
-"""The wide CSV (filmmap's own, pinned): one row per site, ``wafer, slot, site, x_mm, y_mm, R@<nm>...``.
+"""The wide CSV (filmmap's own, pinned): one row per site, ``wafer, slot, site, x_mm, y_mm, R@..``.
 
 Format: `filmmap.io.spectra_csv`. A file with every one of those columns is read by
 that (strict, fast) reader; this module adds the micrometre check, which the wide
