@@ -347,3 +347,28 @@ def test_ellipsometry_layouts_give_identical_thickness(tmp_path, ellips):
         assert set(res) == set(ref), layout
         for key, (t, slot, x, y) in res.items():
             assert t == ref[key][0] and slot == ref[key][1], (layout, key)
+
+
+def test_maps_written_inline_in_the_lot_file(tmp_path, spectra, wide_result):
+    from filmmap.io.lotfile import read_lot_file
+
+    folder = tmp_path / "lot"
+    lot = write_layout(folder, "long", spectra)
+    xy = ", ".join(f"{int(s)} = [{x:.3f}, {y:.3f}]" for s, x, y in zip(PAT.site, PAT.x_mm,
+                                                                        PAT.y_mm))
+    slots = ", ".join(f'"{w}" = {s}' for w, (s, _) in WAFERS.items())
+    text = lot.read_text().replace('site_map = "polar-5"', f"site_map = {{ {xy} }}").replace(
+        'slot_map = "slots.csv"', f"slot_map = {{ {slots} }}")
+    lot.write_text(text)
+    (folder / "slots.csv").unlink()
+    res = thickness_by_site(lot)
+    assert {k: v[0] for k, v in res.items()} == {k: v[0] for k, v in wide_result.items()}
+    # two wafers in one slot, inline: the lot file's line
+    lot.write_text(text.replace(f'"A-02" = {WAFERS["A-02"][0]}', f'"A-02" = {WAFERS["A-01"][0]}'))
+    with pytest.raises(FilmmapInputError, match="one wafer per slot") as e:
+        read_lot_file(lot)
+    assert e.value.field == "measurement.slot_map" and e.value.line == text.splitlines().index(
+        next(line for line in text.splitlines() if line.startswith("slot_map"))) + 1
+    lot.write_text(text.replace("1 = [0.000, 0.000]", "1 = [0.0, 90.0]"))
+    with pytest.raises(FilmmapInputError, match="outside the wafer radius"):
+        read_lot_file(lot)
