@@ -72,6 +72,14 @@ def write_layout(folder, layout, spectra):
                              + ",".join(f(v) for v in spectra[(w, int(PAT.site[k]))]))
         (folder / "all.csv").write_text("\n".join(lines) + "\n")
         return _lot(folder, layout, "all.csv", "")
+    if layout == "wide-mapped":
+        # only what an instrument writes: wafer, site and the spectra; slot and position
+        # from the maps
+        lines = ["wafer,site," + ",".join(f"R@{w:g}" for w in WL)]
+        for (w, site), R in spectra.items():
+            lines.append(f"{w},{site}," + ",".join(f(v) for v in R))
+        (folder / "all.csv").write_text("\n".join(lines) + "\n")
+        return _lot(folder, "wide", "all.csv", maps)
     if layout == "long":
         lines = ["wafer,site,wavelength_nm,R"]
         for (w, site), R in spectra.items():
@@ -126,7 +134,7 @@ def wide_result(tmp_path_factory, spectra):
     return res
 
 
-@pytest.mark.parametrize("layout", ["long", "transposed", "site-files", "jcamp"])
+@pytest.mark.parametrize("layout", ["wide-mapped", "long", "transposed", "site-files", "jcamp"])
 def test_every_layout_gives_identical_thickness(layout, tmp_path, spectra, wide_result):
     if layout == "jcamp":
         pytest.importorskip("jcamp", reason="optional jcamp package not installed")
@@ -229,8 +237,8 @@ def test_bad_slot_maps_exit_2_with_file_and_line(tmp_path):
     lot.mkdir()
     (lot / "W1.csv").write_text("wavelength_nm,1\n400,0.3\n410,0.31\n")
     (lot / "slots.csv").write_text("wafer,slot\nW1,2\nW2,2\n")
-    (lot / "lot.toml").write_text(lot_toml("transposed", "W*.csv", 'site_map = "polar-1"\n'
-                                           'slot_map = "slots.csv"\nfile_pattern = "{wafer}.csv"\n'))
+    maps = 'site_map = "polar-1"\nslot_map = "slots.csv"\nfile_pattern = "{wafer}.csv"\n'
+    (lot / "lot.toml").write_text(lot_toml("transposed", "W*.csv", maps))
     r = subprocess.run([sys.executable, "-m", "filmmap.cli.main", "reduce", lot / "lot.toml",
                         "-o", tmp_path / "out", "--no-figures", "--no-history"],
                        capture_output=True, text=True, timeout=300)
@@ -253,3 +261,114 @@ def test_builtin_site_maps():
         builtin_site_map("cartesian-10", 150.0, 3.0)
     with pytest.raises(FilmmapInputError, match="site pattern"):
         builtin_site_map("polar-7", 150.0, 3.0)
+
+
+def test_wide_header_variants_read_as_the_pinned_names(tmp_path):
+    from filmmap.io.spectra_csv import read_spectra_csv
+
+    base = "W1,1,1,0,0,0.3,0.31,0.32,0.33,0.34\n"
+    p = _write(tmp_path, "a.csv", "wafer,slot,site,x_mm,y_mm,R 400 nm,R(410nm),R [420 nm],"
+                                  "R@430nm,R 440\n" + base)
+    t = read_spectra_csv(p, "reflectance")
+    np.testing.assert_array_equal(t.wavelength_nm, [400, 410, 420, 430, 440])
+    np.testing.assert_array_equal(t.data["R"][0], [0.3, 0.31, 0.32, 0.33, 0.34])
+    p = _write(tmp_path, "b.csv", "wafer,slot,site,x_mm,y_mm,psi 400 nm,Delta 400 nm\n"
+                                  "W1,1,1,0,0,30,100\n")
+    t = read_spectra_csv(p, "ellipsometry")
+    assert t.data["psi"][0, 0] == 30 and t.data["delta"][0, 0] == 100
+    p = _write(tmp_path, "c.csv", "wafer,slot,site,x_mm,y_mm,R 0.4 um,R 0.5 um\n"
+                                  "W1,1,1,0,0,0.3,0.31\n")
+    with pytest.raises(FilmmapInputError, match="micrometres; expected nm, e.g. R@400") as e:
+        read_spectra_csv(p, "reflectance")
+    assert e.value.line == 1 and e.value.field == "R 0.4 um"
+
+
+# ------------------------------------------------------------- ellipsometry layouts
+
+ANGLE = 70.0
+
+
+@pytest.fixture(scope="module")
+def ellips():
+    return {(w, int(PAT.site[k])): tmm_spectrum(oxide_on_si, [d], WL, ANGLE, "ellips")
+            for w, (_slot, ds) in WAFERS.items() for k, d in enumerate(ds)}
+
+
+def write_ellips(folder, layout, sp):
+    """psi/delta in ``layout``; the slot from the file name where the layout has names."""
+    folder.mkdir(parents=True)
+    maps = 'site_map = "polar-5"\n'
+    slots = "".join(f"{w},{s}\n" for w, (s, _) in WAFERS.items())
+    if layout == "wide":
+        head = ",".join(f"psi@{w:g}" for w in WL) + "," + ",".join(f"delta@{w:g}" for w in WL)
+        lines = ["wafer,slot,site,x_mm,y_mm," + head]
+        for w, (slot, ds) in WAFERS.items():
+            for k in range(len(ds)):
+                psi, delta = sp[(w, int(PAT.site[k]))]
+                lines.append(f"{w},{slot},{PAT.site[k]},{PAT.x_mm[k]:.3f},{PAT.y_mm[k]:.3f},"
+                             + ",".join(f(v) for v in np.concatenate([psi, delta])))
+        (folder / "all.csv").write_text("\n".join(lines) + "\n")
+        extra = ""
+        glob = "all.csv"
+    elif layout == "long":
+        (folder / "slots.csv").write_text("wafer,slot\n" + slots)
+        lines = ["wafer,site,wavelength_nm,psi,delta"]
+        for (w, site), (psi, delta) in sp.items():
+            lines += [f"{w},{site},{wl:g},{f(a)},{f(b)}" for wl, a, b in zip(WL, psi, delta)]
+        (folder / "all.csv").write_text("\n".join(lines) + "\n")
+        extra, glob = maps + 'slot_map = "slots.csv"\n', "all.csv"
+    elif layout == "transposed":
+        sites = [int(s) for s in PAT.site]
+        for w, (slot, _ds) in WAFERS.items():
+            lines = ["wavelength_nm," + ",".join(f"psi:{s},delta:{s}" for s in sites)]
+            for j, wl in enumerate(WL):
+                lines.append(f"{wl:g}," + ",".join(f"{f(sp[(w, s)][0][j])},{f(sp[(w, s)][1][j])}"
+                                                   for s in sites))
+            (folder / f"{w}_slot{slot}.csv").write_text("\n".join(lines) + "\n")
+        extra, glob = maps + 'file_pattern = "{wafer}_slot{slot}.csv"\n', "A-*.csv"
+    else:
+        for (w, site), (psi, delta) in sp.items():
+            slot = WAFERS[w][0]
+            (folder / f"{w}_{slot}_{site}.txt").write_text(
+                "".join(f"{wl:g} {f(a)} {f(b)}\n" for wl, a, b in zip(WL, psi, delta)))
+        extra, glob = maps + 'file_pattern = "{wafer}_{slot}_{site}.txt"\n', "*.txt"
+    text = lot_toml(layout, glob, extra).replace('technique = "reflectance"',
+                                                 f'technique = "ellipsometry"\nangle_deg = {ANGLE}')
+    (folder / "lot.toml").write_text(text)
+    return folder / "lot.toml"
+
+
+def test_ellipsometry_layouts_give_identical_thickness(tmp_path, ellips):
+    ref = thickness_by_site(write_ellips(tmp_path / "wide", "wide", ellips))
+    truth = {(w, int(PAT.site[k])): d for w, (_s, ds) in WAFERS.items() for k, d in enumerate(ds)}
+    assert all(abs(v[0] - truth[k]) < 0.01 for k, v in ref.items())
+    for layout in ("long", "transposed", "site-files"):
+        res = thickness_by_site(write_ellips(tmp_path / layout, layout, ellips))
+        assert set(res) == set(ref), layout
+        for key, (t, slot, x, y) in res.items():
+            assert t == ref[key][0] and slot == ref[key][1], (layout, key)
+
+
+def test_maps_written_inline_in_the_lot_file(tmp_path, spectra, wide_result):
+    from filmmap.io.lotfile import read_lot_file
+
+    folder = tmp_path / "lot"
+    lot = write_layout(folder, "long", spectra)
+    xy = ", ".join(f"{int(s)} = [{x:.3f}, {y:.3f}]" for s, x, y in zip(PAT.site, PAT.x_mm,
+                                                                        PAT.y_mm))
+    slots = ", ".join(f'"{w}" = {s}' for w, (s, _) in WAFERS.items())
+    text = lot.read_text().replace('site_map = "polar-5"', f"site_map = {{ {xy} }}").replace(
+        'slot_map = "slots.csv"', f"slot_map = {{ {slots} }}")
+    lot.write_text(text)
+    (folder / "slots.csv").unlink()
+    res = thickness_by_site(lot)
+    assert {k: v[0] for k, v in res.items()} == {k: v[0] for k, v in wide_result.items()}
+    # two wafers in one slot, inline: the lot file's line
+    lot.write_text(text.replace(f'"A-02" = {WAFERS["A-02"][0]}', f'"A-02" = {WAFERS["A-01"][0]}'))
+    with pytest.raises(FilmmapInputError, match="one wafer per slot") as e:
+        read_lot_file(lot)
+    assert e.value.field == "measurement.slot_map" and e.value.line == text.splitlines().index(
+        next(line for line in text.splitlines() if line.startswith("slot_map"))) + 1
+    lot.write_text(text.replace("1 = [0.000, 0.000]", "1 = [0.0, 90.0]"))
+    with pytest.raises(FilmmapInputError, match="outside the wafer radius"):
+        read_lot_file(lot)

@@ -1,6 +1,7 @@
 """Many lots at once: local processes or a Dask cluster on loopback give the same results;
 lots are recorded in the run history and `filmmap history` charts them."""
 
+import json
 import sqlite3
 
 import numpy as np
@@ -74,6 +75,9 @@ def test_dask_with_relative_paths_gives_the_local_results(tmp_path, capsys, monk
         a, b = tmp_path / "dask" / f"T-{k:04d}", tmp_path / "local" / f"T-{k:04d}"
         for name in ("sites.csv", "summary.csv"):
             assert (a / name).read_bytes() == (b / name).read_bytes(), name
+        ja, jb = (json.loads((d / "summary.json").read_text()) for d in (a, b))
+        assert ja.pop("created") and jb.pop("created")      # the one field that differs
+        assert ja == jb
         da, db_ = xr.open_dataset(a / "lot.nc"), xr.open_dataset(b / "lot.nc")
         for var in list(da.data_vars) + list(da.coords):
             np.testing.assert_array_equal(da[var].values, db_[var].values)   # bitwise

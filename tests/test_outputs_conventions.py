@@ -70,7 +70,8 @@ def test_sites_csv_matches_lot_nc(demo):
         w, site = row[col["wafer"]], int(row[col["site"]])
         sel = ds.sel(wafer=w, site=site)
         assert row[col["lot_id"]] == ds.attrs["lot_id"] == "DEMO-W2-0417"
-        assert int(row[col["slot"]]) == int(sel["slot"]) and row[col["role"]] == str(sel["role"].values)
+        assert int(row[col["slot"]]) == int(sel["slot"])
+        assert row[col["role"]] == str(sel["role"].values)
         assert float(row[col["thickness_nm"]]) == pytest.approx(float(sel["thickness"]), abs=5e-5)
         assert float(row[col["sigma_nm"]]) == pytest.approx(float(sel["thickness_sigma"]), abs=5e-5)
         assert float(row[col["x_mm"]]) == pytest.approx(float(sel["x_mm"]), abs=5e-4)
@@ -309,3 +310,28 @@ def test_schemas_ship_in_the_package_and_docs():
         shipped = resources.files("filmmap.schemas").joinpath(f"{name}.schema.json").read_text()
         assert json.loads(shipped) == load_schema(name)
         assert json.loads((docs / f"{name}.schema.json").read_text()) == load_schema(name)
+
+
+def test_catch_up_record_still_finds_the_recipe(demo, tmp_path):
+    # lot.nc records its inputs relative to the lot folder; a record made later from the
+    # published folder (after a crash between publishing and recording) takes the lot
+    # file from the folder's pending-record marker instead, so the recipe is not lost
+    import os
+
+    from filmmap.history import lots
+
+    _, lot, _ = demo
+    out, db = tmp_path / "out", tmp_path / "h.sqlite"
+    env = {**os.environ, "FILMMAP_FAULT_AT": "after-publish"}
+    r = subprocess.run([sys.executable, "-m", "filmmap.cli.main", "reduce", lot, "-o", out,
+                        "--no-figures", "--quiet", "--history", db], capture_output=True,
+                       text=True, timeout=600, env=env)
+    assert r.returncode == 86, r.stderr
+    marker = json.loads((out / ".filmmap-history-pending").read_text())
+    assert marker["lot_file"] == str(lot)
+    from filmmap.pipeline import complete_pending_record
+
+    complete_pending_record(out)
+    (rec,) = lots(db)
+    assert rec.lot_id == "DEMO-W2-0417"
+    assert [s["name"] for s in rec.recipe][:2] == ["push-and-ramp", "dry-cap"]

@@ -1051,7 +1051,7 @@ def _read_measurement(rd, doc, folder, allow_outside, exclude, require_files=Tru
         rd.fail("delta_convention applies to technique 'ellipsometry' only; remove it",
                 f"{w}.delta_convention")
     layout, site_map, slot_map, pattern = _read_layout(rd, t, w, folder, allow_outside,
-                                                        technique, reference)
+                                                        technique, reference, diameter)
     return MeasurementConfig(technique=technique, angle_deg=angle, files=files,
                              file_globs=tuple(patterns), wafer_diameter_mm=diameter,
                              edge_exclusion_mm=edge, reflectance_unit=unit, dark_file=dark,
@@ -1078,7 +1078,7 @@ def _read_data_dir(rd, t, w, folder):
     return Path(os.path.abspath(path))
 
 
-def _read_layout(rd, t, w, folder, allow_outside, technique, reference):
+def _read_layout(rd, t, w, folder, allow_outside, technique, reference, diameter_mm):
     """``layout``, ``site_map``, ``slot_map``, ``file_pattern`` (`filmmap.io.layouts`)."""
     import re
 
@@ -1090,12 +1090,17 @@ def _read_layout(rd, t, w, folder, allow_outside, technique, reference):
                 f"{w}.layout")
     if layout == "jcamp" and technique != "reflectance":
         rd.fail("layout 'jcamp' holds reflectance spectra only", f"{w}.layout")
-    site_map = rd.string(t, "site_map", w, default=None)
-    if site_map is not None and not re.fullmatch(r"(polar|cartesian)-\d+", site_map):
+    # a map is a pattern name / CSV file (a string) or written inline (a table)
+    site_map = (_inline_site_map(rd, t["site_map"], f"{w}.site_map", diameter_mm)
+                if isinstance(t.get("site_map"), dict)
+                else rd.string(t, "site_map", w, default=None))
+    if isinstance(site_map, str) and not re.fullmatch(r"(polar|cartesian)-\d+", site_map):
         site_map = _relative_file(rd, site_map, f"{w}.site_map", folder, allow_outside,
                                   "site_map")
-    slot_map = rd.string(t, "slot_map", w, default=None)
-    if slot_map is not None:
+    slot_map = (_inline_slot_map(rd, t["slot_map"], f"{w}.slot_map")
+                if isinstance(t.get("slot_map"), dict)
+                else rd.string(t, "slot_map", w, default=None))
+    if isinstance(slot_map, str):
         slot_map = _relative_file(rd, slot_map, f"{w}.slot_map", folder, allow_outside,
                                   "slot_map")
     pattern = rd.string(t, "file_pattern", w, default=None)
@@ -1106,6 +1111,41 @@ def _read_layout(rd, t, w, folder, allow_outside, technique, reference):
             rd.fail(f"file_pattern {pattern!r}: expected {{wafer}} once and optionally "
                     "{site} and {slot} (no other fields)", f"{w}.file_pattern")
     return layout, site_map, slot_map, pattern
+
+
+def _inline_site_map(rd, table, field, diameter_mm):
+    """``site_map = { 1 = [0.0, 0.0], 2 = [36.0, 0.0] }`` -> {site: (x_mm, y_mm)}."""
+    out = {}
+    for key, xy in table.items():
+        if not (isinstance(key, str) and key.lstrip("-").isdigit()):
+            rd.fail(f"site_map key {key!r}: expected a site number", field)
+        if not (isinstance(xy, list) and len(xy) == 2
+                and all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                        and math.isfinite(v) for v in xy)):
+            rd.fail(f"site_map site {key}: expected [x_mm, y_mm], found {_found(xy)}", field)
+        if math.hypot(*xy) > diameter_mm / 2 + 1e-6:
+            rd.fail(f"site_map site {key} at ({xy[0]:g}, {xy[1]:g}) mm lies outside the wafer "
+                    f"radius {diameter_mm / 2:g} mm", field)
+        out[int(key)] = (float(xy[0]), float(xy[1]))
+    if not out:
+        rd.fail("site_map is empty; expected site = [x_mm, y_mm] entries", field)
+    return out
+
+
+def _inline_slot_map(rd, table, field):
+    """``slot_map = { "W2-04" = 4, "W2-05" = 5 }`` -> {wafer: slot}, one wafer per slot."""
+    out, wafer_in = {}, {}
+    for wafer, slot in table.items():
+        if not (isinstance(slot, int) and not isinstance(slot, bool) and slot >= 1):
+            rd.fail(f"slot_map wafer {wafer!r}: expected a boat slot >= 1, found {_found(slot)}",
+                    field)
+        if slot in wafer_in:
+            rd.fail(f"slot_map puts wafers {wafer_in[slot]!r} and {wafer!r} in slot {slot}; "
+                    "expected one wafer per slot", field)
+        out[str(wafer)], wafer_in[slot] = slot, wafer
+    if not out:
+        rd.fail("slot_map is empty; expected wafer = slot entries", field)
+    return out
 
 
 def _read_target(rd, doc, stack):

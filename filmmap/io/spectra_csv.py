@@ -101,6 +101,15 @@ _NUMBER = re.compile(
 _WAVELENGTH = re.compile(r"(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)
 _DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+", re.ASCII)
 
+#: Spelling variants of a spectral column that instruments export, taken as ``R@400``:
+#: ``R 400 nm``, ``R 400``, ``R(400 nm)``, ``R [400nm]``, ``R@400nm``, ``R_400nm`` - a
+#: blank, a bracket or the unit marks them (common practice, no source). ``R400`` alone
+#: stays a misspelling (pinned). A micrometre unit is named as a mistake.
+_SPECTRAL_VARIANT = re.compile(
+    r"(R|psi|delta|I)\s*[@_]?\s*[(\[]?\s*((?:\d+\.?\d*|\.\d+))\s*(nm|um|µm)?\s*[)\]]?",
+    re.IGNORECASE)
+_PREFIX_CASE = {p.lower(): p for p in ("R", "psi", "delta", "I")}
+
 
 @dataclass(frozen=True, eq=False)
 class SpectraTable:
@@ -376,6 +385,17 @@ def _classify_header(cells, path, lineno, technique, required):
             fixed[name] = j
             continue
         prefix, sep, rest = name.partition("@")
+        variant = _SPECTRAL_VARIANT.fullmatch(name)
+        if variant and not (variant.group(3) or re.search(r"[\s(\[]", name)):
+            variant = None
+        if variant and not (sep and prefix in _TECHNIQUE_OF_PREFIX
+                            and _WAVELENGTH.fullmatch(rest.strip())):
+            if (variant.group(3) or "").lower() in ("um", "µm"):
+                raise FilmmapInputError(
+                    f"column {name!r} gives the wavelength in micrometres; expected nm, e.g. "
+                    f"{_PREFIX_CASE[variant.group(1).lower()]}@"
+                    f"{float(variant.group(2)) * 1000:g}", file=path, line=lineno, field=name)
+            prefix, sep, rest = _PREFIX_CASE[variant.group(1).lower()], "@", variant.group(2)
         if sep and prefix in _TECHNIQUE_OF_PREFIX:
             if prefix not in allowed:
                 raise FilmmapInputError(

@@ -147,7 +147,9 @@ def lot_maps(measurement):
     site_file = slot_file = None
     inputs = []
     site_map = getattr(m, "site_map", None)
-    if site_map is not None:
+    if isinstance(site_map, dict):                 # written inline in the lot file
+        site_xy, site_file = dict(site_map), "the lot file's site_map"  # checked there
+    elif site_map is not None:
         builtin = builtin_site_map(str(site_map), m.wafer_diameter_mm, m.edge_exclusion_mm)
         if builtin is not None:
             site_xy, site_file = builtin, str(site_map)
@@ -156,7 +158,9 @@ def lot_maps(measurement):
             site_file = str(site_map)
             inputs.append((site_file, sha))
     slot_map = getattr(m, "slot_map", None)
-    if slot_map is not None:
+    if isinstance(slot_map, dict):
+        slot_of, slot_file = dict(slot_map), "the lot file's slot_map"
+    elif slot_map is not None:
         slot_of, sha = read_slot_map(slot_map)
         slot_file = str(slot_map)
         inputs.append((slot_file, sha))
