@@ -8,10 +8,10 @@ import numpy as np
 
 from filmmap.outputs import coordinate_groups
 from filmmap.wafermap.figures import contact_sheet_png, render_wafer_pngs, write_bytes_atomic
+from filmmap.wafermap.surface import tps_polar_surface
 
 
-def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=None, notes=None,
-                  while_maps=None):
+def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=None, notes=None):
     """Render wafer maps (figures/<wafer>.png) and the contact sheet (contact_sheet.png).
 
     Wafers with different site layouts (a missing site, another pattern) are each mapped
@@ -33,10 +33,6 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
         Progress display factory for the wafer maps.
     notes : list, optional
         Receives plain-text notes on what was left out of the figures (for the console).
-    while_maps : callable(), optional
-        Run in this process after the contact sheet is written, while the worker
-        processes still render wafer maps (e.g. writing report.pdf, which needs the
-        contact sheet but no wafer map): the two overlap instead of waiting in turn.
 
     Returns
     -------
@@ -54,44 +50,34 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
     if len(groups) > 1:
         notes.append(f"the wafers have {len(groups)} different site layouts (missing sites): "
                      "each wafer is mapped from its own sites")
-    import threading
-
+    # the thickness surface of each site layout is computed once, for the maps and the sheet
+    surfaces = []
+    for rows, x, y, present in groups:
+        surfaces.append((rows, tps_polar_surface(np.where(present, t[rows], np.nan),
+                                                 ok[rows] & present, x, y, m.wafer_diameter_mm,
+                                                 m.edge_exclusion_mm)))
     bar = progress(len(wafers)) if progress is not None else None
-    failure = []
-
-    def render_maps():
-        # in a thread: the worker processes draw, this thread only waits for them
-        try:
-            for rows, x, y, present in groups:
-                paths = render_wafer_pngs(
-                    fig_dir, np.where(present, t[rows], np.nan), ok[rows] & present, x, y,
-                    m.wafer_diameter_mm, m.edge_exclusion_mm,
-                    wafer_ids=[str(w) for w in wafers[rows]],
-                    slots=[int(s) for s in slots[rows]], workers=workers, present=present,
-                    lot_id=lot_id, progress=bar.update if bar is not None else None)
-                for path in paths:
-                    written[f"figures/{Path(path).name}"] = path
-        except BaseException as exc:  # noqa: BLE001 - re-raised in the caller's thread
-            failure.append(exc)
-
-    maps = threading.Thread(target=render_maps, name="filmmap-maps")
-    maps.start()
     try:
-        oos = set(map(str, out_of_spec))
-        png = contact_sheet_png(t, ok, ds["x_mm"].values, ds["y_mm"].values,
-                                m.wafer_diameter_mm, m.edge_exclusion_mm,
-                                wafer_ids=[str(w) for w in wafers], slots=[int(s) for s in slots],
-                                out_of_spec=[str(w) in oos for w in wafers], lot_id=lot_id)
-        written["contact_sheet.png"] = write_bytes_atomic(png, outdir / "contact_sheet.png")
-        del png
-        if while_maps is not None:
-            while_maps()
+        for (rows, x, y, present), (_, surface) in zip(groups, surfaces):
+            paths = render_wafer_pngs(
+                fig_dir, np.where(present, t[rows], np.nan), ok[rows] & present, x, y,
+                m.wafer_diameter_mm, m.edge_exclusion_mm,
+                wafer_ids=[str(w) for w in wafers[rows]], slots=[int(s) for s in slots[rows]],
+                workers=workers, present=present, lot_id=lot_id, surface=surface,
+                progress=bar.update if bar is not None else None)
+            for path in paths:
+                written[f"figures/{Path(path).name}"] = path
     finally:
-        maps.join()
         if bar is not None:
             bar.close()
-    if failure:
-        raise failure[0]
+    oos = set(map(str, out_of_spec))
+    png = contact_sheet_png(t, ok, ds["x_mm"].values, ds["y_mm"].values,
+                            m.wafer_diameter_mm, m.edge_exclusion_mm,
+                            wafer_ids=[str(w) for w in wafers], slots=[int(s) for s in slots],
+                            out_of_spec=[str(w) in oos for w in wafers], lot_id=lot_id,
+                            surfaces=surfaces)
+    written["contact_sheet.png"] = write_bytes_atomic(png, outdir / "contact_sheet.png")
+    del png
     no_fit = [str(w) for w, okw in zip(wafers, ok) if not np.any(okw)]
     if no_fit:
         notes.append(f"{len(no_fit)} wafer map(s) show no thickness (no accepted fit): "

@@ -433,8 +433,12 @@ def _layout_groups(x2, y2):
 
 
 def _sheet_panels(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, wafer_ids,
-                  slots, surface, out_of_spec, levels):
-    """Per-wafer drawing data of a contact sheet and its common colour boundaries."""
+                  slots, surface, out_of_spec, levels, surfaces=None):
+    """Per-wafer drawing data of a contact sheet and its common colour boundaries.
+
+    ``surfaces``: optional list of (rows, PolarSurface) already computed per site layout.
+    """
+    given = {tuple(int(i) for i in rows): srf for rows, srf in (surfaces or ())}
     d, ee = check_wafer(diameter_mm, edge_exclusion_mm)
     t = np.atleast_2d(np.asarray(thickness_nm, dtype=float))
     W, n_sites = t.shape
@@ -458,7 +462,9 @@ def _sheet_panels(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, 
         tg, good, x, y, _ = lot_arrays(t[rows], ok2[rows], x, y)
         good = good & present
         use = good & inside_edge_exclusion(x, y, d, ee)
-        s = tps_polar_surface(tg, good, x, y, d, ee) if surface is None else surface
+        s = surface if surface is not None else given.get(tuple(int(i) for i in rows))
+        if s is None:
+            s = tps_polar_surface(tg, good, x, y, d, ee)
         nu = within_wafer_stats(tg, good, x, y, d, ee).nu_pct
         for k, i in enumerate(rows):
             # the mesh is made when the panel is drawn: held for every wafer at once it
@@ -575,13 +581,14 @@ def lot_contact_sheet(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
 def contact_sheet_png(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
                       wafer_ids=None, slots=None, ncols=None, cmap="viridis", levels=12,
                       panel_in=2.0, dpi=100, out_of_spec=None, lot_id="", title=None,
-                      max_pixels=MAX_SHEET_PIXELS):
+                      max_pixels=MAX_SHEET_PIXELS, surfaces=None):
     """The lot contact sheet as palette PNG bytes, drawn one panel at a time.
 
     The same sheet as `lot_contact_sheet` (arguments alike), but each wafer is drawn on one
     small reused panel figure whose pixels are pasted into the sheet: the memory is one
     panel and the sheet's pixels, not a figure holding every wafer's contours, so it stays
-    bounded and grows linearly in time however many wafers the lot has.
+    bounded and grows linearly in time however many wafers the lot has. ``surfaces``: list
+    of (wafer rows, PolarSurface) already computed for each site layout (not recomputed).
 
     Returns
     -------
@@ -590,7 +597,7 @@ def contact_sheet_png(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     cm = _colormap(cmap)
     d, ee, W, ids, oos, per, bounds, norm = _sheet_panels(
         thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, wafer_ids, slots, None,
-        out_of_spec, levels)
+        out_of_spec, levels, surfaces)
     ncols = int(np.ceil(np.sqrt(W))) if ncols is None else max(1, int(ncols))
     nrows = max(1, int(np.ceil(W / ncols)))
     title = title or (f"Lot {lot_id}: thickness (nm), common scale" if lot_id else None)
