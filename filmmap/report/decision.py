@@ -179,9 +179,17 @@ def advice_sentence(advice):
 
 
 def advice_causes(advice, view=None):
-    """Which finding each recommendation answers: list of (recommendation, cause) texts."""
+    """Which finding each recommendation answers: list of (recommendation, cause) texts.
+
+    An advice made with the boat model (`filmmap.growth.boat`) states this itself
+    (``recommendations``: time, each zone trim, extra dummies, unexplained slots, each with
+    the cause it answers); older advice files are explained from their numbers.
+    """
     if not has_standard_advice(advice):
         return []
+    recs = advice.get("recommendations")
+    if isinstance(recs, list) and recs and all(isinstance(r, dict) for r in recs):
+        return [(str(r.get("action", "")), str(r.get("answers", ""))) for r in recs]
     out = []
     target = advice.get("target_nm")
     mean_now = advice.get("predicted_mean_nm_now")
