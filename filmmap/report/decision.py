@@ -167,6 +167,10 @@ def advice_sentence(advice):
         parts.append(f"trim the heater zones {text}"
                      + (f" (bound ± {float(obound):.1f} K each" if is_number(obound) else " (")
                      + (f"; at the bound: {', '.join(at)}" if at else "") + ")")
+    # extra dummies answer the end effect the trims cannot remove (the boat model's verdict)
+    for end, n in (advice.get("extra_dummies") or {}).items():
+        if is_number(n) and int(n) > 0:
+            parts.append(f"add {int(n)} dumm{'y' if int(n) == 1 else 'ies'} at the {end} end")
     pred = []
     if is_number(advice.get("predicted_mean_nm_now")) and is_number(
             advice.get("predicted_mean_nm_next")):
@@ -175,7 +179,8 @@ def advice_sentence(advice):
     if is_number(advice["predicted_wtw_pct_now"]) and is_number(advice["predicted_wtw_pct_next"]):
         pred.append(f"WTW NU {advice['predicted_wtw_pct_now']:.2f} -> "
                     f"{advice['predicted_wtw_pct_next']:.2f} %")
-    return " and ".join(parts) + (": predicted " + ", ".join(pred) if pred else "") + "."
+    head = (", ".join(parts[:-1]) + " and " + parts[-1]) if len(parts) > 1 else parts[0]
+    return head + (": predicted " + ", ".join(pred) if pred else "") + "."
 
 
 def advice_causes(advice, view=None):
