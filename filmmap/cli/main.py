@@ -18,6 +18,18 @@ CAUTION = ("filmmap advises; it never drives equipment. Any recipe or zone chang
            "process owner to approve, within the furnace's qualified limits and local safety rules.")
 
 
+def _furnace_model_options(parser, trim_help):
+    """The furnace-model options predict and plan share: trims, a calibrated profile, history."""
+    parser.add_argument("--trim", action="append", default=[], metavar="ZONE=KELVIN",
+                        help=trim_help)
+    parser.add_argument("--advice", metavar="ADVICE_JSON",
+                        help="use the calibrated furnace profile of an advice.json")
+    parser.add_argument("--furnace-history", action="store_true",
+                        help="use the furnace's growth rate (and zone coupling width) learned "
+                             "from its recorded lots")
+    parser.add_argument("--history", metavar="PATH", help="run-history database")
+
+
 def build_parser():
     parser = argparse.ArgumentParser(
         prog="filmmap",
@@ -80,25 +92,13 @@ def build_parser():
     pred.add_argument("--set", action="append", default=[], metavar="STEP.FIELD=VALUE",
                       help="what-if change of a step, e.g. --set wet.minutes=170 or "
                            "--set wet.at_C=1005 (repeatable)")
-    pred.add_argument("--trim", action="append", default=[], metavar="ZONE=KELVIN",
-                      help="what-if zone trim, e.g. --trim load=+2 (repeatable)")
-    pred.add_argument("--advice", metavar="ADVICE_JSON",
-                      help="use the calibrated furnace profile of an advice.json")
-    pred.add_argument("--furnace-history", action="store_true",
-                      help="use the furnace's growth rate learned from its recorded lots")
-    pred.add_argument("--history", metavar="PATH", help="run-history database")
+    _furnace_model_options(pred, "what-if zone trim, e.g. --trim load=+2 (repeatable)")
     pred.add_argument("--debug", action="store_true", help="show tracebacks")
 
     plan = sub.add_parser("plan", help="plan a run before it happens: the step time that hits "
                                        "the target, thickness by zone and slot (no spectra needed)")
     plan.add_argument("lotfile", help="lot file (TOML) with [[recipe.step]] and [target]")
-    plan.add_argument("--trim", action="append", default=[], metavar="ZONE=KELVIN",
-                      help="zone trim to plan with, e.g. --trim load=+2 (repeatable)")
-    plan.add_argument("--advice", metavar="ADVICE_JSON",
-                      help="use the calibrated furnace profile of an advice.json")
-    plan.add_argument("--furnace-history", action="store_true",
-                      help="use the furnace's growth rate learned from its recorded lots")
-    plan.add_argument("--history", metavar="PATH", help="run-history database")
+    _furnace_model_options(plan, "zone trim to plan with, e.g. --trim load=+2 (repeatable)")
     plan.add_argument("--slots", action="store_true", help="also print the thickness per slot")
     plan.add_argument("--debug", action="store_true", help="show tracebacks")
 
