@@ -183,10 +183,13 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
     for w in getattr(reduction, "warnings", ()):
         p(f"  warning: {w}\n")
     view = written.view
+    said_action = False
     if view is not None:
         from filmmap.report.decision import decision
 
-        for line in decision(view, written.advice).lines():   # same block as report page 1
+        block = decision(view, written.advice)
+        said_action = bool(block.action)
+        for line in block.lines():   # same block as report page 1
             p(f"  {line}\n")
         p(f"  verdict: {view.verdict}\n")
         for w in view.warnings[:5]:
@@ -205,7 +208,13 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
     if n_maps:
         p(f"    figures/  ({n_maps} wafer maps, PNG)\n")
     if written.advice:
-        print_advice(written.advice, stream)
+        if said_action:
+            # the decision block already said the next run in one sentence: only the
+            # advice's own warnings remain to be shown
+            for w in written.advice["warnings"]:
+                p(f"  advice warning: {w}\n")
+        else:
+            print_advice(written.advice, stream)
     p(f"  done in {seconds:.1f} s\n")
 
 
