@@ -220,6 +220,14 @@ def _writer(db, prefix, n, start):
     return replaced
 
 
+def _writer_context():
+    """Processes started from a clean server (forkserver), not forked from the test process:
+    a fork copies the locks other threads of the test session hold at that moment (a rare
+    deadlock seen once on a loaded machine); spawn where forkserver is unavailable."""
+    methods = mp.get_all_start_methods()
+    return mp.get_context("forkserver" if "forkserver" in methods else "spawn")
+
+
 def _writer_main(args):
     db, prefix, n, start, queue = args
     queue.put((prefix, _writer(db, prefix, n, start)))
@@ -227,7 +235,7 @@ def _writer_main(args):
 
 def test_two_processes_recording_at_once_lose_nothing(tmp_path):
     db = tmp_path / "h.sqlite"       # fresh: both processes also race to create the schema
-    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+    ctx = _writer_context()
     start = ctx.Event()
     queue = ctx.Queue()
     n = 15
@@ -253,7 +261,7 @@ def test_writers_wait_for_a_held_write_lock(tmp_path):
 
     db = tmp_path / "h.sqlite"
     record_lot(db, _record("SEED"))
-    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context()
+    ctx = _writer_context()
     start, queue = ctx.Event(), ctx.Queue()
     procs = [ctx.Process(target=_writer_main, args=((db, p, 3, start, queue),)) for p in "AB"]
     for p in procs:
