@@ -585,7 +585,7 @@ def _no_signal(ctx, y, use):
     searched thickness (beyond the noise and the systematics' priors), or flat.
     Ellipsometry: Psi and Delta both zero (nothing measured).
     """
-    model, m = ctx["model"], ctx["m"]
+    model = ctx["model"]
     n = y.shape[0]
     out = np.full(n, "", dtype=object)
     if not n:

@@ -377,20 +377,19 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
     bad_cal = [int(s) for s, status in zip(slots, cal.status) if status not in ("ok", "missing")]
 
     # one model of the boat (zones + end effects + residual) and the offsets for prediction
-    fit = boat = None
+    boat = None
     G = np.zeros((slots.size, 0))
     if zs:
         boat = fit_boat(slots, cal.offset_C, zs, weight, boat_size=boat_size,
                         dummy_slots=(slots[roles == "dummy"] if dummy_slots is None
                                      else dummy_slots), width_slots=width_slots,
                         shape=shape, decay_slots=decay_slots)
-        fit = _zone_view(boat)
         G = gain_matrix(zs, slots, width_slots, shape)
     base = cal.offset_C.copy()
     fill = np.isnan(base)
     if fill.any():
-        if fit is not None and fit.observed.any():
-            base[fill] = G[fill][:, fit.observed] @ fit.absolute_C[fit.observed]
+        if boat is not None and boat.observed.any():
+            base[fill] = G[fill][:, boat.observed] @ boat.zone_absolute_C[boat.observed]
         else:
             finite = base[np.isfinite(base)]
             base[fill] = float(np.mean(finite)) if finite.size else 0.0
@@ -424,11 +423,11 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
             "predicted_mean_nm_next": _f(np.mean(xp_next)) if xp_next.size else None,
             "predicted_nm_by_slot_now": {str(int(s)): _f(v) for s, v in zip(slots, x_now)},
             "predicted_nm_by_slot_next": {str(int(s)): _f(v) for s, v in zip(slots, x_next)},
-            "zone_errors_C": fit.as_dict() if fit is not None else {},
-            "common_offset_C": _f(fit.common_C) if fit is not None else _f(
+            "zone_errors_C": boat.as_dict()["zone_errors_C"] if boat is not None else {},
+            "common_offset_C": _f(boat.common_C) if boat is not None else _f(
                 np.mean(cal.offset_C[product]) if n_p else None),
-            "zone_fit_residual_C": _f(fit.residual_rms_C) if fit is not None else None,
-            "zone_fit_explained": _f(fit.explained) if fit is not None else None,
+            "zone_fit_residual_C": _f(boat.residual_rms_C) if boat is not None else None,
+            "zone_fit_explained": _f(boat.explained_zone) if boat is not None else None,
             "n_usable_product": n_p,
             "uncalibrated_slots": bad_cal,
             "model": settings,
@@ -458,25 +457,25 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
 
     # zones
     free = np.zeros(len(zs), bool)
-    if fit is not None:
-        free = fit.observed.copy()
+    if boat is not None:
+        free = boat.observed.copy()
         if reference_zone is not None:
             free[names.index(reference_zone)] = False
-        unseen = [n for n, o in zip(names, fit.observed) if not o]
+        unseen = [n for n, o in zip(names, boat.observed) if not o]
         if unseen:
             warnings.append(f"zone(s) {', '.join(map(repr, unseen))} hold too few usable wafers "
                             "to be calibrated; their trim is held at 0 K")
-        if np.isfinite(fit.residual_rms_C) and fit.residual_rms_C > max_residual_C:
+        if np.isfinite(boat.residual_rms_C) and boat.residual_rms_C > max_residual_C:
             expl = ("" if not np.isfinite(boat.explained_zone)
                     else f"; the zones explain {100.0 * max(boat.explained_zone, 0.0):.0f} % and "
                          f"the boat ends {100.0 * max(boat.explained_end, 0.0):.0f} % of the "
                          "slot-to-slot variance")
             warnings.append(f"weak fit: zones and boat ends do not explain the slot profile: "
-                            f"the boat model leaves {fit.residual_rms_C:.2f} K rms (more than "
+                            f"the boat model leaves {boat.residual_rms_C:.2f} K rms (more than "
                             f"{max_residual_C:g} K){expl}; trims and dummies answer only their "
                             "parts, the rest needs another cause to be found")
-        if np.isfinite(fit.common_C) and abs(fit.common_C) > max_off:
-            warnings.append(f"the whole lot reads as {fit.common_C:+.1f} K off on average: a "
+        if np.isfinite(boat.common_C) and abs(boat.common_C) > max_off:
+            warnings.append(f"the whole lot reads as {boat.common_C:+.1f} K off on average: a "
                             "temperature, rate or time error of the whole run (the oxide cannot "
                             "tell which); check the run record before acting on the advice. If "
                             "every lot of this furnace reads alike, its own growth rate differs "
@@ -497,7 +496,7 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
                                     float(trim_regularisation), int(n_iterations))
         minutes, clip = _solve_time(model, bp + Gp @ trims, target, m_lo, m_hi)
 
-    for n, v, e in zip(names, trims, (fit.error_C if fit is not None else [])):
+    for n, v, e in zip(names, trims, (boat.zone_error_C if boat is not None else [])):
         if abs(v) >= max_off * (1.0 - _AT_BOUND):
             err = f" (zone error {e:+.2f} K relative to the boat mean)" if np.isfinite(e) else ""
             warnings.append(f"zone {n!r} trim clipped at {v:+.2f} K, the limit of "
@@ -611,17 +610,6 @@ def _boat_verdicts(boat, model, slots, roles, product, offset_next, minutes, x_n
     out["boat_model"] = boat.as_dict()
     return out
 
-
-def _zone_view(boat):
-    """The zone part of a boat fit in the shape the zone-only code reads (errors, rms)."""
-    from types import SimpleNamespace
-
-    return SimpleNamespace(
-        observed=boat.observed, absolute_C=boat.zone_absolute_C, error_C=boat.zone_error_C,
-        common_C=boat.common_C, residual_rms_C=boat.residual_rms_C,
-        explained=boat.explained_zone,
-        as_dict=lambda: {n: (float(e) if np.isfinite(e) else None)
-                         for n, e in zip(boat.names, boat.zone_error_C)})
 
 
 def roles_from_boat(slot, boat):
