@@ -86,7 +86,8 @@ def cpu():
 
 def time_parts(ds, n, folder):
     """CPU seconds of maps (1 process), contact sheet, report.html, report.pdf for n wafers."""
-    from filmmap.report import ReportImages, lot_view, write_html_report, write_pdf_report
+    from filmmap.lotstats import lot_view
+    from filmmap.report import ReportImages, write_html_report, write_pdf_report
     from filmmap.wafermap.figures import lot_contact_sheet, save_figure
 
     big = repeated(ds, n)

@@ -12,6 +12,8 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.io.results import lot_dataset, spectra_dataset, write_netcdf_atomic
+from filmmap.lotstats.causes import count_causes
+from filmmap.lotstats.roles import roles_from_boat
 from filmmap.io.sites_csv import write_sites_csv
 from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_loo
@@ -42,17 +44,14 @@ class WrittenLot:
     mean_nm: float = float("nan")
     failures: dict = field(default_factory=dict)
     dataset: object = None   # the xarray.Dataset written to lot.nc
-    view: object = None      # the lot view (filmmap.report.lotview.LotView)
+    view: object = None      # the lot view (filmmap.lotstats.view.LotView)
     advice: dict | None = None
 
 
 def wafer_roles(config, wafer_ids, wafer_slots):
     """'dummy', 'monitor' or 'product' for each wafer, from the lot file's [boat]."""
-    boat = config.boat
-    dummies = set(boat.dummy_slots) if boat is not None else set()
-    monitors = set(getattr(boat, "monitor_slots", ()) or ()) if boat is not None else set()
-    return {w: ("dummy" if s in dummies else "monitor" if s in monitors else "product")
-            for w, s in zip(wafer_ids, wafer_slots)}
+    roles = roles_from_boat(wafer_slots, config.boat)
+    return dict(zip(wafer_ids, roles.tolist()))
 
 
 def coordinate_groups(x_mm, y_mm):
@@ -191,7 +190,6 @@ def write_lot(reduction, outdir, keep_spectra=False):
     written.n_sites = int(s.ok.size)
     written.n_failed = int((~s.ok).sum())
     written.mean_nm = float(np.nanmean(s.values[:, 0])) if s.ok.any() else float("nan")
-    reasons, counts = np.unique([r.split(":")[0] for r in s.note[~s.ok]], return_counts=True)
-    written.failures = dict(zip(reasons.tolist(), counts.tolist()))
+    written.failures = count_causes(s.note[~s.ok])
     written.dataset = ds
     return written

@@ -25,8 +25,9 @@ from filmmap.io.lotfile import read_lot_file
 from filmmap.io.publish import check_outdir, staged_output
 from filmmap.outputs import write_lot
 from filmmap.reduce import reduce_lot
-from filmmap.report.lotview import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT
-from filmmap.report.lotview import lot_view, with_boat_model
+from filmmap.lotstats.exclusion import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT
+from filmmap.lotstats.exclusion import lot_means, usable_wafers
+from filmmap.lotstats.view import lot_view, with_boat_model
 from filmmap.report.summary_json import write_summary_csv, write_summary_json
 
 # a wafer with fewer usable sites than MIN_SITES_FOR_LOT is left out of lot statistics and advice
@@ -243,8 +244,8 @@ def write_advice(config, written, folder, rate_factors=None, **options):
     if not config.recipe or config.target is None:
         return None
     ds = written.dataset
-    usable = ds["sites_used"].values >= MIN_SITES_FOR_LOT
-    mean = np.where(usable, ds["mean_nm"].values, np.nan)
+    usable = usable_wafers(ds["sites_used"].values, MIN_SITES_FOR_LOT)
+    mean = lot_means(ds["mean_nm"].values, ds["sites_used"].values, MIN_SITES_FOR_LOT)
     advice = advise_from_config(config, ds["slot"].values, mean, ds["role"].values,
                                 n_failed_sites=written.n_failed, n_sites=written.n_sites,
                                 rate_factors=rate_factors, **options)

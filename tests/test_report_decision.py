@@ -11,7 +11,7 @@ import pytest
 from filmmap.report.decision import (IN_SPEC, OUT_OF_SPEC, REVIEW, REVIEW_SITE_FRACTION,
                                      advice_causes, advice_sentence, decision,
                                      lot_disposition)
-from filmmap.report.lotview import lot_view
+from filmmap.lotstats.view import lot_view
 from test_report_lotview import TARGET, TOL, make_config, make_lot
 
 

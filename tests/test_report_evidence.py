@@ -9,7 +9,8 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from filmmap.report import ReportImages, lot_view, render_html
+from filmmap.lotstats import lot_view
+from filmmap.report import ReportImages, render_html
 from filmmap.report.evidence import (MAX_ON_PAGE, WORST_ACCEPTED, evidence_figure,
                                      evidence_sites, shape_hint, write_evidence_pdf)
 from test_report_lotview import make_config, make_lot

@@ -16,8 +16,8 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from filmmap.report import (DEFAULT_MIN_SITES, SUMMARY_CSV_COLUMNS, ReportImages, lot_view,
-                            summary_csv_rows, summary_dict, write_summary_csv, write_summary_json)
+from filmmap.lotstats import DEFAULT_MIN_SITES, lot_view
+from filmmap.report import (SUMMARY_CSV_COLUMNS, ReportImages, summary_csv_rows, summary_dict, write_summary_csv, write_summary_json)
 from filmmap.report.summary_json import LOT_KEYS, WAFER_KEYS
 from filmmap.wafermap.sites import polar_sites
 

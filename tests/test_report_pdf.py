@@ -8,8 +8,9 @@ import re
 import pytest
 
 import filmmap.report.pdf as pdfmod
-from filmmap.report import (BASE_LOT_PAGES, ReportImages, lot_page_count, lot_view,
-                            pdf_page_plan, write_pdf_report)
+from filmmap.lotstats import lot_view
+from filmmap.report import (BASE_LOT_PAGES, ReportImages, lot_page_count, pdf_page_plan,
+                            write_pdf_report)
 from test_report_lotview import make_config, make_lot, shared_lot
 
 PAGE_OBJ = re.compile(rb"/Type\s*/Page(?!s)")

@@ -8,7 +8,8 @@ import numpy as np
 from matplotlib.colors import to_rgba
 from matplotlib.patches import Polygon, Rectangle
 
-from filmmap.report import fit_quality_figure, lot_view, slot_profile_figure
+from filmmap.lotstats import lot_view
+from filmmap.report import fit_quality_figure, slot_profile_figure
 from filmmap.report.slotplot import X_LABEL, Y_LABEL
 from test_report_lotview import TARGET, TOL, make_config, make_lot
 

@@ -71,7 +71,8 @@ from filmmap.growth.recipe import (
     thickness_sensitivity_to_temperature,
     validate_steps,
 )
-from filmmap.lotstats.wtw import ROLES
+from filmmap.lotstats.roles import ROLES, roles_from_boat
+from filmmap.lotstats.uniformity import nonuniformity_pct
 
 __all__ = ["ADVICE_KEYS", "CAUTION", "advise", "advise_from_config", "roles_from_boat"]
 
@@ -99,10 +100,9 @@ def _f(v):
 
 
 def _wtw_pct(x):
-    x = np.asarray(x, dtype=float)
-    if x.size < 2:
-        return None
-    return 100.0 * float(np.std(x, ddof=1)) / float(np.mean(x))
+    """WTW NU % of predicted product-slot thicknesses (`nonuniformity_pct`), None if < 2."""
+    nu = nonuniformity_pct(x)
+    return None if not math.isfinite(nu) else nu
 
 
 def _check_wafers(slot, mean_nm, role):
@@ -609,35 +609,6 @@ def _boat_verdicts(boat, model, slots, roles, product, offset_next, minutes, x_n
                                 f"(boat model residual {boat.residual_rms_C:.2f} K rms)"})
     out["boat_model"] = boat.as_dict()
     return out
-
-
-
-def roles_from_boat(slot, boat):
-    """Wafer roles from the boat layout of a lot file.
-
-    Parameters
-    ----------
-    slot : array_like of int
-        Boat slot of each wafer (1 = load end), dimensionless.
-    boat : filmmap.io.lotfile.BoatConfig or None
-        Dummy and monitor slots; None makes every wafer a product wafer.
-
-    Returns
-    -------
-    numpy.ndarray of str
-        ``"dummy"``, ``"monitor"`` or ``"product"`` per wafer.
-
-    References
-    ----------
-    .. [1] Dummy wafers at the boat ends, monitors among the product: common practice,
-       no source.
-    """
-    s = np.asarray(slot).ravel().astype(int)
-    if boat is None:
-        return np.array(["product"] * s.size, dtype=object)
-    dummy, monitor = set(boat.dummy_slots), set(boat.monitor_slots)
-    return np.array(["dummy" if v in dummy else "monitor" if v in monitor else "product"
-                     for v in s], dtype=object)
 
 
 def _choose_adjust_step(steps):

@@ -20,7 +20,8 @@ from dataclasses import replace
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.growth.advice import roles_from_boat
+from filmmap.lotstats.roles import roles_from_boat
+from filmmap.lotstats.uniformity import nonuniformity_pct
 from filmmap.growth.calibrate import (
     DEFAULT_INITIAL_NM,
     gain_matrix,
@@ -258,8 +259,7 @@ def predict_by_zone(config, overrides=None, zone_offsets_C=None, *, slot_offsets
         "zones": zone_rows,
         "slots": slot_rows,
         "product_mean_nm": float(np.mean(prod)) if prod.size else None,
-        "product_wtw_pct": (100.0 * float(np.std(prod, ddof=1)) / float(np.mean(prod))
-                            if prod.size >= 2 else None),
+        "product_wtw_pct": (float(nonuniformity_pct(prod)) if prod.size >= 2 else None),
         "target_nm": target,
         "tolerance_pct": config.target.tolerance_pct if config.target is not None else None,
         "notes": notes,

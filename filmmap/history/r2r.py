@@ -65,6 +65,8 @@ import numpy as np
 from scipy.optimize import brentq
 
 from filmmap.errors import FilmmapInputError
+from filmmap.lotstats.roles import roles_from_boat
+from filmmap.lotstats.uniformity import nonuniformity_pct
 from filmmap.growth import (
     CAUTION,
     DEFAULT_INITIAL_NM,
@@ -548,7 +550,7 @@ def next_run(steps, adjust_step, target_nm, estimate, *, zones=(), product_slots
     x = integrate_recipe(with_minutes(st, k, minutes), orientation, initial_nm,
                          base if zs else base[0], **kw)
     x = np.atleast_1d(np.asarray(x, dtype=float))
-    wtw = 100.0 * float(np.std(x, ddof=1)) / float(np.mean(x)) if x.size >= 2 else None
+    wtw = float(nonuniformity_pct(x)) if x.size >= 2 else None
     return NextRun(adjust_step=st[k].name or str(k), minutes_now=m_now,
                    minutes_next=float(minutes),
                    zone_trims_C={n: float(v) for n, v in zip(names, t)},
@@ -601,8 +603,8 @@ def next_run_from_history(rows, config, weight=0.3, *, last=None):
     est = estimate_from_records(use, weight, zones=zones)
     latest = use[-1]
     if config.boat is not None:
-        skip = set(config.boat.dummy_slots) | set(config.boat.monitor_slots)
-        product = [s for s in range(1, config.boat.slots + 1) if s not in skip]
+        every = np.arange(1, config.boat.slots + 1)
+        product = every[roles_from_boat(every, config.boat) == "product"].tolist()
     else:
         product = _product_slots_of(latest)
     adjust = config.target.adjust_step or latest.advice.get("adjust_step")
@@ -811,7 +813,7 @@ def simulate(furnace, steps, adjust_step, target_nm, *, weight=None, n_runs=30,
         rng = np.random.default_rng([int(seed), run])
         x = furnace.grow(run, current, trims, rng)
         means.append(float(np.mean(x)))
-        wtws.append(100.0 * float(np.std(x, ddof=1)) / float(np.mean(x)))
+        wtws.append(float(nonuniformity_pct(x)))
         minutes.append(float(current[k].minutes))
         trims_log.append(dict(trims))
         if weight is None:

@@ -998,7 +998,7 @@ def record_from_outputs(outdir, config=None, *, applied_trims_C=None, min_sites=
         Zone name -> trim in force during this run, K (for run-to-run control).
     min_sites : int, optional
         Wafers with fewer usable sites are left out of the lot figures (default
-        `filmmap.report.lotview.DEFAULT_MIN_SITES`, the threshold the reduce pipeline
+        `filmmap.lotstats.exclusion.DEFAULT_MIN_SITES`, the threshold the reduce pipeline
         uses for lot statistics and advice).
 
     Returns
@@ -1023,10 +1023,11 @@ def record_from_outputs(outdir, config=None, *, applied_trims_C=None, min_sites=
     import numpy as np
     import xarray as xr
 
+    from filmmap.lotstats.exclusion import lot_means, usable_wafers
     from filmmap.lotstats.wtw import wafer_to_wafer
 
     if min_sites is None:
-        from filmmap.report.lotview import DEFAULT_MIN_SITES as min_sites
+        from filmmap.lotstats.exclusion import DEFAULT_MIN_SITES as min_sites
     outdir = Path(outdir).absolute()
     nc = outdir / "lot.nc"
     if not nc.is_file():
@@ -1067,8 +1068,8 @@ def record_from_outputs(outdir, config=None, *, applied_trims_C=None, min_sites=
     if target is None and advice is not None:
         target = advice.get("target_nm")
 
-    usable = np.asarray(used_sites, dtype=float) >= min_sites
-    m_use = np.where(usable, mean, np.nan)
+    usable = usable_wafers(used_sites, min_sites)
+    m_use = lot_means(mean, used_sites, min_sites)
     wtw = wafer_to_wafer(wafer, slot, role, m_use, sigma)
     prod = np.array([r == "product" for r in role]) & usable & np.isfinite(mean)
     nu_p = nu[prod & np.isfinite(nu)]

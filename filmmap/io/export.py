@@ -138,7 +138,7 @@ def export_lot(lot_nc, outdir):
         A missing or foreign lot.nc, an unreadable advice.json, or an output folder that
         holds the inputs.
     """
-    from filmmap.report.lotview import DEFAULT_MIN_SITES, lot_view, with_boat_model
+    from filmmap.lotstats.view import DEFAULT_MIN_SITES, lot_view, with_boat_model
     from filmmap.report.summary_json import write_summary_csv
 
     lot_nc = Path(lot_nc).absolute()

@@ -27,8 +27,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
+from filmmap.lotstats.roles import ROLES
+from filmmap.lotstats.uniformity import percent_of_mean
 
-ROLES = ("product", "monitor", "dummy")
 
 # Relative slack on spec limits so that a mean exactly on the limit (up to float
 # rounding) counts as in spec.
@@ -362,7 +363,7 @@ def wafer_to_wafer(wafer_id, slot, role, mean_nm, sigma_nm, *, target_nm=None, t
         grand = min_nm = max_nm = math.nan
         min_wafer = max_wafer = None
     sd = float(np.std(m, ddof=1)) if n >= 2 else math.nan
-    nu = 100.0 * sd / grand if n >= 2 and grand > 0 else math.nan
+    nu = float(percent_of_mean(sd, grand)) if n >= 2 else math.nan
 
     if flag is not None:
         in_count = int(np.count_nonzero(flag & used))

@@ -1,4 +1,4 @@
-"""Lot view and report: summary.json, summary.csv rows, report.html and report.pdf.
+"""The report: summary.json, summary.csv rows, report.html and report.pdf.
 
 Typical use after a reduce (``ds`` = the lot dataset, ``config`` = the lot
 configuration, ``outdir`` = the output folder holding the PNG figures)::
@@ -8,7 +8,7 @@ configuration, ``outdir`` = the output folder holding the PNG figures)::
 
 or step by step::
 
-    view = lot_view(ds, config)                           # LotView
+    view = lot_view(ds, config)    # filmmap.lotstats.lot_view -> LotView
     write_summary_json(view, outdir)
     images = ReportImages(view, ds, outdir)               # shared PNG cache
     write_html_report(view, ds, outdir, images=images)
@@ -25,8 +25,6 @@ _EXPORTS = {
     "draw_fit_quality": "fitquality", "fit_quality_figure": "fitquality",
     "render_html": "html", "write_html_report": "html",
     "ReportImages": "images",
-    "DEFAULT_MIN_SITES": "lotview", "FailedSite": "lotview", "LotView": "lotview",
-    "WaferLine": "lotview", "lot_view": "lotview",
     "BASE_LOT_PAGES": "pdf", "lot_page_count": "pdf", "pdf_page_plan": "pdf",
     "write_pdf_report": "pdf",
     "draw_slot_profile": "slotplot", "slot_profile_figure": "slotplot",
@@ -73,7 +71,7 @@ def write_reports(ds, config, outdir, *, advice=None, min_sites=5, dpi=100,
     """
     from filmmap.report.html import write_html_report
     from filmmap.report.images import ReportImages
-    from filmmap.report.lotview import lot_view
+    from filmmap.lotstats.view import lot_view
     from filmmap.report.pdf import write_pdf_report
     from filmmap.report.summary_json import write_summary_json
 
@@ -90,7 +88,6 @@ def write_reports(ds, config, outdir, *, advice=None, min_sites=5, dpi=100,
 
 
 __all__ = [
-    "lot_view", "LotView", "WaferLine", "FailedSite", "DEFAULT_MIN_SITES",
     "summary_dict", "wafer_rows", "summary_csv_rows", "write_summary_json", "write_summary_csv",
     "SUMMARY_CSV_COLUMNS", "slot_profile_figure", "draw_slot_profile", "fit_quality_figure",
     "draw_fit_quality", "render_html", "write_html_report", "write_pdf_report", "pdf_page_plan",

@@ -23,6 +23,7 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
+from filmmap.lotstats.causes import failure_cause
 from filmmap.report.slotplot import COLOURS
 
 #: Most evidence panels on the report page (the rest go to evidence.pdf).
@@ -66,8 +67,7 @@ class EvidenceSite:
     thickness_nm: float
 
 
-def _cause(note):
-    return (note.split(":")[0].strip() or "no reason recorded") if note else "no reason recorded"
+_cause = failure_cause
 
 
 def candidate_sites(view, ds, n_worst_accepted=4):

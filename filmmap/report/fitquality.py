@@ -18,7 +18,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter
 
-from filmmap.report.lotview import NOT_MEASURED
+from filmmap.bridge import NOT_MEASURED
 
 X_LABEL = "Fit quality: reduced χ² (log scale)"
 Y_LABEL = "Sites"

@@ -6,7 +6,7 @@ import datetime as _dt
 import json
 
 from filmmap import __version__
-from filmmap.report.lotview import read_input_hashes
+from filmmap.lotstats.view import read_input_hashes
 
 #: Models behind every reduced lot, with their published sources.
 MODEL_SOURCES = (

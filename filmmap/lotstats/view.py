@@ -1,37 +1,29 @@
 """The lot view: every figure the reports show, computed once from the lot dataset.
 
 `lot_view` takes the lot dataset (``lot.nc``, see `filmmap.io.results.lot_dataset`
-with the per-wafer statistics of `filmmap.outputs.add_wafer_statistics`) and
-the lot configuration, and returns a `LotView`: per-wafer lines, the
-wafer-to-wafer (WTW) figures, the slot profile along the boat, the failed
-sites, and plain-text warnings. summary.json, summary.csv, report.html and
-report.pdf are all written from one `LotView`, so they cannot disagree.
-
-Wafers with too few usable sites
---------------------------------
-A wafer mean from a handful of sites says little about the wafer. A wafer
-with ``sites_used < min_sites`` (default 5) is *excluded*: its mean is
-treated as NaN in the lot statistics (grand mean, WTW NU %, slot profile),
-its own numbers are still listed as measured, its ``in_spec`` is None (not
-judged), and a warning names it. The default of 5 sites (centre plus one
-cross) is the smallest site pattern that samples the wafer beyond its centre
-(common practice, no source).
+with the per-wafer statistics of the reduce pipeline) and the lot configuration, and
+returns a `LotView`: per-wafer lines, the wafer-to-wafer (WTW) figures, the slot profile
+along the boat, the failed sites, and plain-text warnings. summary.json, summary.csv,
+report.html, report.pdf and the run history are all made from one `LotView`, so they
+cannot disagree. The arrays come through the one dataset bridge (`filmmap.bridge`); the
+minimum-sites rule is `filmmap.lotstats.exclusion`.
 """
 
 from __future__ import annotations
 
 import json
 import math
-from collections import Counter
 from dataclasses import dataclass
 
 import numpy as np
 
+from filmmap.bridge import NOT_MEASURED, config_value, site_grid, wafer_values
 from filmmap.errors import FilmmapInputError
-from filmmap.lotstats import ROLES, slot_profile, wafer_to_wafer
-
-#: Fewest usable sites for a wafer to enter the lot statistics.
-DEFAULT_MIN_SITES = 5
+from filmmap.lotstats.causes import count_causes
+from filmmap.lotstats.exclusion import DEFAULT_MIN_SITES, check_min_sites, exclusion_note
+from filmmap.lotstats.roles import ROLES, roles_from_boat
+from filmmap.lotstats.slots import slot_profile
+from filmmap.lotstats.wtw import wafer_to_wafer
 
 #: Per-wafer variables the lot view needs in the dataset.
 REQUIRED_WAFER_VARS = ("mean_nm", "sigma_nm", "nu_pct", "range_nm", "halfrange_pct",
@@ -40,8 +32,8 @@ REQUIRED_WAFER_VARS = ("mean_nm", "sigma_nm", "nu_pct", "range_nm", "halfrange_p
 #: Per-site variables the lot view needs in the dataset.
 REQUIRED_SITE_VARS = ("fit_ok", "fit_note")
 
-#: Site note of a site a wafer lacks (not a failed fit).
-NOT_MEASURED = "not measured"
+__all__ = ["LotView", "WaferLine", "FailedSite", "lot_view", "with_boat_model",
+           "read_input_hashes", "DEFAULT_MIN_SITES", "NOT_MEASURED"]
 
 
 @dataclass(frozen=True)
@@ -207,7 +199,7 @@ class LotView:
     @property
     def failure_counts(self):
         """``{reason: count}`` of the failed sites (reason = text before the first ':')."""
-        return dict(Counter(f.note.split(":")[0].strip() or "unknown" for f in self.failed_sites))
+        return count_causes(f.note for f in self.failed_sites)
 
     @property
     def verdict(self):
@@ -244,20 +236,6 @@ class LotView:
             if p.flat_zone:
                 parts.append(f"flat zone: slots {p.flat_zone[0]}-{p.flat_zone[1]}")
         return "; ".join(parts)
-
-
-def _get(obj, *names, default=None):
-    for name in names:
-        if obj is None:
-            return default
-        obj = getattr(obj, name, None)
-    return default if obj is None else obj
-
-
-def _wafer_array(ds, name, dtype=float):
-    if name in ds.coords or name in ds.data_vars:
-        return np.asarray(ds[name].values, dtype=dtype)
-    return None
 
 
 def read_input_hashes(ds):
@@ -313,27 +291,20 @@ def lot_view(ds, config, *, min_sites=DEFAULT_MIN_SITES, k=None, false_alarm=0.0
         Missing variables, a bad ``min_sites``, or lot arrays that
         `filmmap.lotstats.check_lot` refuses (e.g. a slot beyond the boat).
     """
-    if isinstance(min_sites, bool) or int(min_sites) != min_sites or min_sites < 1:
-        raise FilmmapInputError(f"min_sites must be an integer >= 1, got {min_sites!r}",
-                                field="min_sites")
-    min_sites = int(min_sites)
+    min_sites = check_min_sites(min_sites)
     missing = [v for v in REQUIRED_WAFER_VARS + REQUIRED_SITE_VARS + ("slot",)
                if v not in ds.variables]
     if missing:
         raise FilmmapInputError(f"the lot dataset lacks {', '.join(missing)}", field="dataset")
     warnings: list[str] = []
 
-    ids = np.array([str(v) for v in ds["wafer"].values], dtype=object)
-    slots = np.asarray(ds["slot"].values).astype(int)
+    grid = site_grid(ds)
+    ids, slots = grid.wafer, grid.slot
     n = ids.size
-    if "role" in ds.variables:
-        roles = np.array([str(r).strip().lower() for r in ds["role"].values], dtype=object)
+    if grid.role is not None:
+        roles = grid.role
     else:
-        boat = _get(config, "boat")
-        dummies = set(_get(boat, "dummy_slots", default=()))
-        monitors = set(_get(boat, "monitor_slots", default=()))
-        roles = np.array(["dummy" if s in dummies else "monitor" if s in monitors else "product"
-                          for s in slots], dtype=object)
+        roles = roles_from_boat(slots, config_value(config, "boat"))
         warnings.append("the dataset has no wafer roles: taken from the lot file's [boat] "
                         "(product where not listed)")
     unknown = sorted(set(roles) - set(ROLES))
@@ -341,26 +312,24 @@ def lot_view(ds, config, *, min_sites=DEFAULT_MIN_SITES, k=None, false_alarm=0.0
         raise FilmmapInputError(f"unknown role(s) {unknown}; expected one of {list(ROLES)}",
                                 field="role")
 
-    stats = {name: _wafer_array(ds, name) for name in
+    stats = {name: wafer_values(ds, name) for name in
              ("mean_nm", "sigma_nm", "nu_pct", "min_nm", "max_nm", "range_nm", "halfrange_pct")}
     for name in ("min_nm", "max_nm"):
         if stats[name] is None:
             stats[name] = np.full(n, math.nan)
-    used = np.nan_to_num(_wafer_array(ds, "sites_used"), nan=0.0).astype(int)
-    fit_ok = np.asarray(ds["fit_ok"].values, dtype=bool)
-    notes_site = np.asarray(ds["fit_note"].values).astype(str)
-    measured_site = notes_site != NOT_MEASURED
+    used = np.nan_to_num(wafer_values(ds, "sites_used"), nan=0.0).astype(int)
+    fit_ok, notes_site, measured_site = grid.fit_ok, grid.fit_note, grid.measured
     sites_measured = measured_site.sum(axis=1).astype(int)
     sites_fit_ok = (fit_ok & measured_site).sum(axis=1).astype(int)
 
     # --- lot configuration
-    lot_id = str(_get(config, "lot", "id", default=ds.attrs.get("lot_id", "")))
-    furnace = str(_get(config, "lot", "furnace", default=ds.attrs.get("furnace", "")) or "")
-    run_date = str(_get(config, "lot", "run_date", default=ds.attrs.get("run_date", "")) or "")
-    target = _get(config, "target")
+    lot_id = str(config_value(config, "lot", "id", default=ds.attrs.get("lot_id", "")))
+    furnace = str(config_value(config, "lot", "furnace", default=ds.attrs.get("furnace", "")) or "")
+    run_date = str(config_value(config, "lot", "run_date", default=ds.attrs.get("run_date", "")) or "")
+    target = config_value(config, "target")
     target_nm = None if target is None else float(target.thickness_nm)
     tol_pct = None if target is None else float(target.tolerance_pct)
-    boat = _get(config, "boat")
+    boat = config_value(config, "boat")
     if boat is not None:
         boat_size, from_config = int(boat.slots), True
     else:
@@ -368,10 +337,10 @@ def lot_view(ds, config, *, min_sites=DEFAULT_MIN_SITES, k=None, false_alarm=0.0
         warnings.append(f"the lot file has no [boat]: boat size taken as the highest measured "
                         f"slot ({boat_size}); dummy slots that were not measured are unknown")
     zones = tuple((str(z.name), int(z.first_slot), int(z.last_slot))
-                  for z in (_get(config, "furnace", "zones", default=()) or ()))
-    diameter = float(_get(config, "measurement", "wafer_diameter_mm",
+                  for z in (config_value(config, "furnace", "zones", default=()) or ()))
+    diameter = float(config_value(config, "measurement", "wafer_diameter_mm",
                           default=ds.attrs.get("wafer_diameter_mm", math.nan)))
-    edge_excl = float(_get(config, "measurement", "edge_exclusion_mm",
+    edge_excl = float(config_value(config, "measurement", "edge_exclusion_mm",
                            default=ds.attrs.get("edge_exclusion_mm", math.nan)))
 
     # --- wafers with too few usable sites: out of the lot statistics
@@ -380,8 +349,7 @@ def lot_view(ds, config, *, min_sites=DEFAULT_MIN_SITES, k=None, false_alarm=0.0
     order = np.argsort(slots, kind="stable")
     excluded_notes = {}
     for i in order[excluded_mask[order]]:
-        why = (f"only {used[i]} usable site{'s' if used[i] != 1 else ''}, fewer than "
-               f"{min_sites}: left out of the lot statistics")
+        why = exclusion_note(used[i], min_sites)
         excluded_notes[i] = why
         warnings.append(f"wafer {ids[i]} (slot {slots[i]}, {roles[i]}): {why}")
 
@@ -414,48 +382,35 @@ def lot_view(ds, config, *, min_sites=DEFAULT_MIN_SITES, k=None, false_alarm=0.0
     # --- slot layout over the whole boat
     layout = list(prof.role)
     if boat is not None:
-        for s in _get(boat, "dummy_slots", default=()) or ():
+        for s in config_value(boat, "dummy_slots", default=()) or ():
             if 1 <= s <= boat_size and layout[s - 1] == "empty":
                 layout[s - 1] = "dummy"
-        for s in _get(boat, "monitor_slots", default=()) or ():
+        for s in config_value(boat, "monitor_slots", default=()) or ():
             if 1 <= s <= boat_size and layout[s - 1] == "empty":
                 layout[s - 1] = "monitor"
     measured_slots = tuple(bool(r != "empty") for r in prof.role)
 
     # --- failed sites
-    quality = _wafer_array(ds, "fit_quality")
-    x = _wafer_array(ds, "x_mm")
-    y = _wafer_array(ds, "y_mm")
-    site_ids = (np.asarray(ds["site"].values).astype(int) if "site" in ds.variables
-                else np.arange(1, fit_ok.shape[1] + 1))
-    failed = []
-    for i in order:
-        for j in np.flatnonzero(measured_site[i] & ~fit_ok[i]):
-            failed.append(FailedSite(
-                wafer=str(ids[i]), slot=int(slots[i]), site=int(site_ids[j]),
-                note=str(notes_site[i, j]) or "fit not accepted (no reason recorded)",
-                fit_quality=float(quality[i, j]) if quality is not None else math.nan,
-                x_mm=float(x[i, j]) if x is not None else math.nan,
-                y_mm=float(y[i, j]) if y is not None else math.nan))
-    suspect = []
-    if "suspect" in ds.variables:
-        flags = _wafer_array(ds, "suspect")
-        for i in order:
-            for j in np.flatnonzero(measured_site[i] & fit_ok[i] & (flags[i] != 0)):
-                suspect.append(FailedSite(
-                    wafer=str(ids[i]), slot=int(slots[i]), site=int(site_ids[j]),
-                    note=str(notes_site[i, j]),
-                    fit_quality=float(quality[i, j]) if quality is not None else math.nan,
-                    x_mm=float(x[i, j]) if x is not None else math.nan,
-                    y_mm=float(y[i, j]) if y is not None else math.nan))
+    quality, x, y, site_ids = grid.fit_quality, grid.x_mm, grid.y_mm, grid.site
+
+    def site_line(i, j, note):
+        return FailedSite(wafer=str(ids[i]), slot=int(slots[i]), site=int(site_ids[j]),
+                          note=note, fit_quality=float(quality[i, j]), x_mm=float(x[i, j]),
+                          y_mm=float(y[i, j]))
+
+    failed = [site_line(i, j, str(notes_site[i, j]) or "fit not accepted (no reason recorded)")
+              for i in order for j in np.flatnonzero(measured_site[i] & ~fit_ok[i])]
+    suspect = [site_line(i, j, str(notes_site[i, j]))
+               for i in order for j in np.flatnonzero(measured_site[i] & fit_ok[i]
+                                                      & grid.suspect[i])]
     n_meas = int(sites_measured.sum())
     if suspect:
         warnings.append(f"{len(suspect)} accepted sites are suspect: their fit is far worse "
                         "than the lot's typical one (still reported; see fit_note)")
     if failed:
-        counts = Counter(f.note.split(":")[0].strip() or "unknown" for f in failed)
+        counts = count_causes(f.note for f in failed)
         warnings.append(f"{len(failed)} of {n_meas} measured sites failed the fit ("
-                        + ", ".join(f"{r}: {c}" for r, c in counts.most_common()) + ")")
+                        + ", ".join(f"{r}: {c}" for r, c in counts.items()) + ")")
     if wtw.n_product and wtw.n_used == 0:
         warnings.append("no product wafer has a usable mean: no lot figures")
     for note in prof.notes:
