@@ -12,7 +12,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from filmmap.demo import generate_demo_lot
+from filmmap.pipeline.demo import generate_demo_lot
 from filmmap.pipeline import reduce_many
 
 N_LOTS = 16

@@ -1,6 +1,6 @@
 """Run-to-run control on an invented drifting furnace: open loop against EWMA weights.
 
-The furnace is INVENTED (the demo tube's temperature profile, `filmmap.demo`): a 50-slot
+The furnace is INVENTED (the demo tube's temperature profile, `filmmap.pipeline.demo`): a 50-slot
 boat with dummies at both ends and three heater zones.  Over the runs its wet-oxidation
 rate factor (steam partial pressure, scaling B and B/A) drifts down 0.3 % per run with
 run-to-run noise, and the source zone's real temperature drifts down 0.2 K per run (a
@@ -30,7 +30,7 @@ import time
 
 import numpy as np
 
-from filmmap.demo import DUMMY_SLOTS, RECIPE, TARGET_NM, ZONES, demo_temperature_offset_C
+from filmmap.pipeline.demo import DUMMY_SLOTS, RECIPE, TARGET_NM, ZONES, demo_temperature_offset_C
 from filmmap.history.r2r import SyntheticFurnace, simulate
 
 WEIGHTS = (0.1, 0.3, 0.5, 0.7, 1.0)

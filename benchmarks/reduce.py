@@ -24,8 +24,8 @@ import numpy as np
 
 from filmmap.io.spectra_csv import check_tables, read_spectra_csv
 from filmmap.optics import Layer, Stack
-from filmmap.outputs import write_lot
-from filmmap.reduce import reduce_lot
+from filmmap.pipeline.publishing import write_lot
+from filmmap.pipeline.reducing import reduce_lot
 from filmmap.wafermap.sites import polar_sites
 
 WL = np.arange(400.0, 1000.5, 1.0)

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
-from filmmap.demo import lot_toml
+from filmmap.pipeline.demo import lot_toml
 from filmmap.errors import FilmmapInputError
 from filmmap.growth import (
     ADVICE_KEYS,

@@ -4,7 +4,7 @@ import json
 
 import pytest
 
-from filmmap.demo import demo_temperature_offset_C, generate_demo_lot
+from filmmap.pipeline.demo import demo_temperature_offset_C, generate_demo_lot
 
 from test_reduce import run_cli
 

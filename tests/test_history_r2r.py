@@ -12,7 +12,7 @@ test is fast).
 import numpy as np
 import pytest
 
-from filmmap.demo import lot_toml
+from filmmap.pipeline.demo import lot_toml
 from filmmap.errors import FilmmapInputError
 from filmmap.growth import advise, gain_matrix, integrate_recipe, with_minutes, validate_steps
 from filmmap.history.r2r import (

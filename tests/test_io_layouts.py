@@ -13,7 +13,7 @@ import pytest
 
 from filmmap.errors import FilmmapInputError
 from filmmap.io.layouts import LAYOUTS, Maps, read_spectra
-from filmmap.reduce import reduce_lot
+from filmmap.pipeline.reducing import reduce_lot
 from filmmap.wafermap.sites import polar_sites
 
 from fit_reference import si_tmm, sio2_tmm, tmm_spectrum

@@ -669,7 +669,7 @@ def test_systematics_priors_and_index_scale_keys(folder):
     assert m.angle_offset_sigma_deg is None          # the technique's default applies
     assert cfg.stack.layers[0].index_scale == 1.003 and cfg.stack.layers[0].fit_index_scale
     # what reduce makes of them: the fitted parameters with their priors
-    from filmmap.reduce import build_stack, lot_systematics
+    from filmmap.pipeline.reducing import build_stack, lot_systematics
     sys_ = lot_systematics(cfg)
     assert (sys_.offset_sigma, sys_.scale_sigma, sys_.wavelength_shift_nm) == (0.001, 0.0, 0.5)
     _stack, free, _names = build_stack(cfg)

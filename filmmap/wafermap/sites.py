@@ -299,3 +299,36 @@ def lot_arrays(thickness_nm, ok, x_mm, y_mm):
                 f"ok mask of shape {okb.shape} does not match thickness {t.shape}",
                 field="ok") from None
     return t, okb & np.isfinite(t), x, y, single
+
+
+def coordinate_groups(x_mm, y_mm):
+    """Group wafers that share one site layout.
+
+    Wafers of one lot may be measured at different sites (a missing site, another
+    pattern); every map and statistic that assumes one layout is computed per group.
+
+    Parameters
+    ----------
+    x_mm, y_mm : numpy.ndarray (n_wafers, n_sites)
+        Site coordinates per wafer in mm, NaN where a wafer lacks the site.
+
+    Yields
+    ------
+    rows : numpy.ndarray of int
+        Wafers of the group.
+    x, y : numpy.ndarray (n_sites,)
+        Their shared coordinates in mm (missing sites at 0, to be masked by the caller).
+    present : numpy.ndarray (n_sites,) of bool
+        Sites the group has.
+
+    References
+    ----------
+    .. [1] Common practice, no source.
+    """
+    key = np.nan_to_num(np.stack([x_mm, y_mm], axis=1), nan=np.inf)
+    _, inverse = np.unique(key.reshape(key.shape[0], -1), axis=0, return_inverse=True)
+    for g in np.unique(inverse):
+        rows = np.nonzero(inverse.ravel() == g)[0]
+        x, y = x_mm[rows[0]], y_mm[rows[0]]
+        present = np.isfinite(x) & np.isfinite(y)
+        yield rows, np.where(present, x, 0.0), np.where(present, y, 0.0), present

@@ -1,6 +1,6 @@
 """Guards that run before any work: outputs never replace inputs.
 
-Publishing an output folder replaces it whole (`filmmap.io.publish.staged_output`): the
+Publishing an output folder replaces it whole (`filmmap.pipeline.publishing.staged_output`): the
 previous folder and everything in it is deleted.  So before anything is staged or fitted,
 the output folder is compared with every file the run reads, and refused when
 
@@ -220,7 +220,7 @@ def estimate_output_bytes(n_wafers, n_sites, n_values=0, figures=True, keep_spec
         Spectral values, all sites together (sites x wavelengths x channels); used with
         ``keep_spectra`` only.
     figures, keep_spectra : bool
-        As for `filmmap.pipeline.reduce_to_folder`.
+        As for `filmmap.pipeline.run.reduce_to_folder`.
 
     Returns
     -------
@@ -307,7 +307,7 @@ def check_output_location(outdir, need_bytes, option="-o"):
         folder that cannot be written (read-only medium, permissions); less free space than
         ``need_bytes + MIN_FREE_BYTES``.  Each names the path and what was expected.
     """
-    from filmmap.io.publish import staging_name
+    from filmmap.pipeline.publishing import staging_name
 
     outdir = Path(os.path.abspath(outdir))
     base, missing = _nearest_existing(outdir)

@@ -1,20 +1,15 @@
-"""Write a reduced lot to its output folder: lot.nc, sites.csv and (optionally) spectra.nc.
+"""Per-wafer analysis of a reduced lot: statistics, Zernike shape, radial profile and map trust.
 
-A thin layer between `filmmap.reduce` (the fits) and the files, usable from a
-notebook as well as from the command line.
+Adds the per-wafer variables of lot.nc to the lot dataset (`add_wafer_statistics`),
+from the numpy kernels of `filmmap.wafermap`, one site layout at a time.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-from pathlib import Path
-
 import numpy as np
 
-from filmmap.io.results import lot_dataset, spectra_dataset, write_netcdf_atomic
-from filmmap.lotstats.causes import count_causes
-from filmmap.lotstats.roles import roles_from_boat
-from filmmap.io.sites_csv import write_sites_csv
+from filmmap.bridge import site_grid
+from filmmap.wafermap.sites import coordinate_groups
 from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_loo
 from filmmap.wafermap.zernike import noll_to_nm, radial_profile, zernike_fit
@@ -31,53 +26,6 @@ SHAPE_FIGURES = {
     "astig_nm": ("astig_pv_nm", "nm", "astigmatism peak-to-valley at the measured radius"),
     "astig_angle_deg": ("astig_angle_deg", "degree", "axis of the thick side of the astigmatism"),
 }
-
-@dataclass
-class WrittenLot:
-    """Paths and headline figures of a written lot."""
-
-    outdir: Path
-    files: dict = field(default_factory=dict)
-    n_wafers: int = 0
-    n_sites: int = 0
-    n_failed: int = 0
-    mean_nm: float = float("nan")
-    failures: dict = field(default_factory=dict)
-    dataset: object = None   # the xarray.Dataset written to lot.nc
-    view: object = None      # the lot view (filmmap.lotstats.view.LotView)
-    advice: dict | None = None
-
-
-def wafer_roles(config, wafer_ids, wafer_slots):
-    """'dummy', 'monitor' or 'product' for each wafer, from the lot file's [boat]."""
-    roles = roles_from_boat(wafer_slots, config.boat)
-    return dict(zip(wafer_ids, roles.tolist()))
-
-
-def coordinate_groups(x_mm, y_mm):
-    """Group wafers that share one site layout.
-
-    Parameters
-    ----------
-    x_mm, y_mm : numpy.ndarray (n_wafers, n_sites)
-        Site coordinates per wafer, NaN where a wafer lacks the site.
-
-    Yields
-    ------
-    rows : numpy.ndarray of int
-        Wafers of the group.
-    x, y : numpy.ndarray (n_sites,)
-        Their shared coordinates (missing sites at 0, to be masked by the caller).
-    present : numpy.ndarray (n_sites,) of bool
-        Sites the group has.
-    """
-    key = np.nan_to_num(np.stack([x_mm, y_mm], axis=1), nan=np.inf)
-    _, inverse = np.unique(key.reshape(key.shape[0], -1), axis=0, return_inverse=True)
-    for g in np.unique(inverse):
-        rows = np.nonzero(inverse.ravel() == g)[0]
-        x, y = x_mm[rows[0]], y_mm[rows[0]]
-        present = np.isfinite(x) & np.isfinite(y)
-        yield rows, np.where(present, x, 0.0), np.where(present, y, 0.0), present
 
 
 def add_wafer_statistics(ds, diameter_mm, edge_exclusion_mm):
@@ -98,8 +46,9 @@ def add_wafer_statistics(ds, diameter_mm, edge_exclusion_mm):
     loo = np.full(W, np.nan)
     zern, zern_u, rings = {}, {}, {}
     # bool in memory, int8 0/1 when read back from lot.nc (CF flags): a mask either way
-    t, ok = ds["thickness"].values, np.asarray(ds["fit_ok"].values).astype(bool)
-    for rows, x, y, present in coordinate_groups(ds["x_mm"].values, ds["y_mm"].values):
+    grid = site_grid(ds)
+    t, ok = grid.thickness_nm, grid.fit_ok
+    for rows, x, y, present in coordinate_groups(grid.x_mm, grid.y_mm):
         t_g, ok_g = t[rows], ok[rows] & present
         st = within_wafer_stats(t_g, ok_g, x, y, diameter_mm, edge_exclusion_mm)
         for n in names:
@@ -155,41 +104,3 @@ def add_wafer_statistics(ds, diameter_mm, edge_exclusion_mm):
         ds["radial_mean_nm"] = (("wafer", "ring"), M, {"units": "nm", "long_name":
                                 "mean thickness of the usable sites of each ring (radial profile)"})
     return ds
-
-
-def write_lot(reduction, outdir, keep_spectra=False):
-    """Write lot.nc (and spectra.nc) for a reduced lot; summary files come from the lot view.
-
-    Parameters
-    ----------
-    reduction : filmmap.reduce.LotReduction
-    outdir : str or path-like
-        Output folder, created if missing. Every file is written atomically.
-    keep_spectra : bool
-        Also write spectra.nc with measured and model spectra and residuals.
-
-    Returns
-    -------
-    WrittenLot
-    """
-    outdir = Path(outdir)
-    outdir.mkdir(parents=True, exist_ok=True)
-    s = reduction.sites
-    ids, first = np.unique(s.wafer, return_index=True)
-    roles = wafer_roles(reduction.config, ids, s.slot[first])
-    ds = lot_dataset(reduction, roles)
-    m = reduction.config.measurement
-    ds = add_wafer_statistics(ds, m.wafer_diameter_mm, m.edge_exclusion_mm)
-    written = WrittenLot(outdir=outdir)
-    written.files["lot.nc"] = write_netcdf_atomic(ds, outdir / "lot.nc")
-    written.files["sites.csv"] = write_sites_csv(ds, outdir / "sites.csv")
-    if keep_spectra and s.measured_spectra is not None:
-        written.files["spectra.nc"] = write_netcdf_atomic(spectra_dataset(reduction, ds),
-                                                          outdir / "spectra.nc")
-    written.n_wafers = int(ds.sizes["wafer"])
-    written.n_sites = int(s.ok.size)
-    written.n_failed = int((~s.ok).sum())
-    written.mean_nm = float(np.nanmean(s.values[:, 0])) if s.ok.any() else float("nan")
-    written.failures = count_causes(s.note[~s.ok])
-    written.dataset = ds
-    return written

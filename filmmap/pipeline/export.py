@@ -1,12 +1,12 @@
 """Tables from an existing lot.nc: sites.csv, summary.csv and (from spectra.nc) spectra.csv.
 
-    from filmmap.io.export import export_lot
+    from filmmap.pipeline.export import export_lot
     export_lot("results/lot.nc", "tables/")
 
 What the reduce wrote is rebuilt, not recomputed: the lot view comes from lot.nc
 (its data and its ``lot_setup`` attribute: target, boat, zones) and, when it lies
 beside lot.nc, from advice.json (the boat-model verdicts); no spectrum is fitted
-again. The output folder is published whole (`filmmap.io.publish`), and never
+again. The output folder is published whole (`filmmap.pipeline.publishing`), and never
 one that holds lot.nc (replacing it would delete the input).
 """
 
@@ -19,11 +19,14 @@ from types import SimpleNamespace
 import numpy as np
 import xarray as xr
 
+from filmmap.bridge import site_grid, wafer_values
 from filmmap.errors import FilmmapInputError
-from filmmap.io.guard import check_outputs_spare_inputs
-from filmmap.io.publish import staged_output
 from filmmap.io.results import write_csv_atomic
 from filmmap.io.sites_csv import write_sites_csv
+from filmmap.lotstats.view import DEFAULT_MIN_SITES, lot_view, with_boat_model
+from filmmap.pipeline.guard import check_outputs_spare_inputs
+from filmmap.pipeline.publishing import staged_output
+from filmmap.report.summary_json import write_summary_csv
 
 SPECTRA_CSV_COLUMNS = ("lot_id", "wafer", "slot", "site", "quantity", "wavelength_nm", "measured",
                        "model", "residual")
@@ -99,14 +102,14 @@ def spectra_rows(spectra_ds, lot_ds):
         ``repr`` precision (the file is for analysis, not display).
     """
     lot_id = str(lot_ds.attrs.get("lot_id", ""))
-    slot = dict(zip([str(w) for w in lot_ds["wafer"].values],
-                    [int(s) for s in lot_ds["slot"].values]))
-    meas, model, resid = (spectra_ds[v].values for v in ("measured", "model", "residual"))
-    wl = spectra_ds["wavelength_nm"].values
-    quantity = [str(q) for q in spectra_ds["quantity"].values]
+    grid = site_grid(lot_ds)
+    slot = dict(zip(grid.wafer, grid.slot.tolist()))
+    meas, model, resid = (wafer_values(spectra_ds, v) for v in ("measured", "model", "residual"))
+    wl = wafer_values(spectra_ds, "wavelength_nm")
+    quantity = wafer_values(spectra_ds, "quantity", str).tolist()
     rows = []
-    for i, w in enumerate(str(v) for v in spectra_ds["wafer"].values):
-        for j, site in enumerate(int(v) for v in spectra_ds["site"].values):
+    for i, w in enumerate(wafer_values(spectra_ds, "wafer", str).tolist()):
+        for j, site in enumerate(wafer_values(spectra_ds, "site", int).tolist()):
             if not np.any(np.isfinite(meas[i, j])):
                 continue
             for k in range(wl.size):
@@ -138,9 +141,6 @@ def export_lot(lot_nc, outdir):
         A missing or foreign lot.nc, an unreadable advice.json, or an output folder that
         holds the inputs.
     """
-    from filmmap.lotstats.view import DEFAULT_MIN_SITES, lot_view, with_boat_model
-    from filmmap.report.summary_json import write_summary_csv
-
     lot_nc = Path(lot_nc).absolute()
     folder = lot_nc.parent
     advice_path, spectra_path = folder / "advice.json", folder / "spectra.nc"

@@ -6,8 +6,9 @@ from pathlib import Path
 
 import numpy as np
 
-from filmmap.outputs import coordinate_groups
+from filmmap.bridge import site_grid
 from filmmap.wafermap.figures import contact_sheet_png, render_wafer_pngs, write_bytes_atomic
+from filmmap.wafermap.sites import coordinate_groups
 from filmmap.wafermap.surface import tps_polar_surface
 
 
@@ -41,12 +42,13 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
     outdir = Path(outdir)
     m = config.measurement
     lot_id = str(config.lot.id)
-    t, ok = ds["thickness"].values, ds["fit_ok"].values
-    wafers, slots = ds.wafer.values, ds.slot.values
+    grid = site_grid(ds)
+    t, ok = grid.thickness_nm, grid.fit_ok
+    wafers, slots = grid.wafer, grid.slot
     notes = [] if notes is None else notes
     written = {}
     fig_dir = outdir / "figures"
-    groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
+    groups = list(coordinate_groups(grid.x_mm, grid.y_mm))
     if len(groups) > 1:
         notes.append(f"the wafers have {len(groups)} different site layouts (missing sites): "
                      "each wafer is mapped from its own sites")
@@ -71,7 +73,7 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
         if bar is not None:
             bar.close()
     oos = set(map(str, out_of_spec))
-    png = contact_sheet_png(t, ok, ds["x_mm"].values, ds["y_mm"].values,
+    png = contact_sheet_png(t, ok, grid.x_mm, grid.y_mm,
                             m.wafer_diameter_mm, m.edge_exclusion_mm,
                             wafer_ids=[str(w) for w in wafers], slots=[int(s) for s in slots],
                             out_of_spec=[str(w) in oos for w in wafers], lot_id=lot_id,

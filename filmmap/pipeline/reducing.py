@@ -177,6 +177,31 @@ class BatchTask:
     maps: Maps = field(default_factory=Maps)
 
 
+@dataclass(frozen=True)
+class BatchFit:
+    """The fits of one batch of files, as `_fit_batch` sends them back (picklable).
+
+    Per-site arrays (one row per spectrum of the batch, in file order) are those of
+    `filmmap.fitting.FitResult`; ``model`` and ``measured`` only with ``keep_spectra``.
+    """
+
+    values: np.ndarray
+    sigma: np.ndarray
+    sigma_stat: np.ndarray
+    correlation: np.ndarray
+    unchecked: np.ndarray
+    reduced_chi2: np.ndarray
+    rms_residual: np.ndarray
+    iterations: np.ndarray
+    ok: np.ndarray
+    note: np.ndarray
+    names: list
+    wavelength_nm: np.ndarray
+    convention: object = None
+    model: np.ndarray | None = None
+    measured: np.ndarray | None = None
+
+
 def _free_for(free, technique, n_wavelengths, shift_explicit):
     """Drop the default wavelength-shift prior for laser-line data (too few wavelengths)."""
     if shift_explicit or n_wavelengths >= SPECTROSCOPIC_MIN_WAVELENGTHS:
@@ -228,17 +253,18 @@ def _fit_batch(task):
             lambda ps, de: fit_spectra(stack, wl, (ps, de), technique, angle, free=free,
                                        workers=1), data[0], data[1])
     names = res.names
-    out = dict(values=res.values, sigma=res.sigma, sigma_stat=res.sigma_stat,
-               correlation=res.correlation, unchecked=res.unchecked_values,
-               reduced_chi2=res.reduced_chi2, rms_residual=res.rms_residual,
-               iterations=res.iterations, ok=res.ok, note=res.reason, names=names,
-               wavelength_nm=wl, convention=convention)
+    spectra = {}
     if keep_spectra:
         from filmmap.fitting import SpectralModel
         model = SpectralModel(stack, wl, angle, technique, free)
         P = np.where(np.isfinite(res.unchecked_values), res.unchecked_values, 0.0)
-        out["model"] = model.evaluate(P)
-        out["measured"] = data if technique == "reflectance" else np.concatenate(data, axis=1)
+        spectra["model"] = model.evaluate(P)
+        spectra["measured"] = data if technique == "reflectance" else np.concatenate(data, axis=1)
+    out = BatchFit(values=res.values, sigma=res.sigma, sigma_stat=res.sigma_stat,
+                   correlation=res.correlation, unchecked=res.unchecked_values,
+                   reduced_chi2=res.reduced_chi2, rms_residual=res.rms_residual,
+                   iterations=res.iterations, ok=res.ok, note=res.reason, names=names,
+                   wavelength_nm=wl, convention=convention, **spectra)
     # the tables travel back without their spectra: only the row metadata is needed
     return out, [replace(t, data={}) for t in tables]
 
@@ -336,7 +362,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
                  wafer_per_file=getattr(m, "layout", "wide") not in PARTIAL_WAFER_LAYOUTS)
 
     def cat(key):
-        return np.concatenate([r[key] for r in results])
+        return np.concatenate([getattr(r, key) for r in results])
 
     def mcat(key):
         return np.concatenate([getattr(t, key) for t in metas])
@@ -346,10 +372,10 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
     suspect, suspect_reason = flag_suspects(cat("reduced_chi2"), ok)
     for k in np.nonzero(suspect)[0]:
         note[k] = suspect_reason[k] + (f"; {note[k]}" if note[k] else "")
-    lot_free = _free_for(free, m.technique, results[0]["wavelength_nm"].size,
+    lot_free = _free_for(free, m.technique, results[0].wavelength_nm.size,
                          m.wavelength_shift_sigma_nm is not None)
     warnings = lot_tension(lot_free, cat("values"), ok)
-    convention = ConventionCheck.combine([r["convention"] for r in results])
+    convention = ConventionCheck.combine([r.convention for r in results])
     if convention.reversed_fits_better:
         warnings.append(f"{REVERSED_DELTA_HINT} ({convention.accepted_reversed} of "
                         f"{convention.n_sampled} sampled sites fit that way, "
@@ -362,7 +388,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
         reduced_chi2=cat("reduced_chi2"), rms_residual=cat("rms_residual"),
         iterations=cat("iterations"), ok=ok, note=note.astype(str),
         file=np.concatenate([np.full(t.n_rows, str(t.path)) for t in metas]),
-        line=mcat("line"), names=results[0]["names"],
+        line=mcat("line"), names=results[0].names,
         model_spectra=cat("model") if keep_spectra else None,
         measured_spectra=cat("measured") if keep_spectra else None,
         sigma_stat=cat("sigma_stat"), correlation=cat("correlation"),
@@ -370,7 +396,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
     inputs = [(str(config.path), config.sha256)] + [(str(t.path), t.sha256) for t in metas] + [
         (str(s.path), s.sha256) for s in extra_inputs] + map_inputs
     return LotReduction(config=config, stack=stack, sites=sites, inputs=inputs,
-                        wavelength_nm=results[0]["wavelength_nm"], warnings=warnings,
+                        wavelength_nm=results[0].wavelength_nm, warnings=warnings,
                         free=lot_free)
 
 

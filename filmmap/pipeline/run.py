@@ -1,7 +1,12 @@
-"""Reduce a lot into its output folder: the whole job behind ``filmmap reduce``, as an API.
+"""Reduce a lot into its output folder, and record it: the whole job behind ``filmmap reduce``.
 
     from filmmap.pipeline import reduce_to_folder
     reduction, written, seconds = reduce_to_folder("lot.toml", "results/")
+
+`reduce_to_folder` fits a lot (`filmmap.pipeline.reducing`), stages every output and
+publishes the folder whole (`filmmap.pipeline.publishing`); `reduce_many` does that for
+several lots in processes or on a Dask cluster; `record_reduced_lot` then records a
+published lot in the run history (`filmmap.history`).
 """
 
 from __future__ import annotations
@@ -10,21 +15,24 @@ import contextlib
 import json
 import os
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from filmmap import __version__
+from filmmap.bridge import site_grid, wafer_values
 from filmmap.errors import FilmmapInputError, FilmmapOutputError
 from filmmap.growth.advice import advise_from_config
 from filmmap.io.atomic import write_text_atomic
-from filmmap.io.guard import (check_output_location, check_outputs_spare_inputs,
-                              estimate_from_inputs, estimate_output_bytes, lot_inputs,
-                              output_target)
-from filmmap.io.lotfile import read_lot_file
-from filmmap.io.publish import check_outdir, staged_output
-from filmmap.outputs import write_lot
-from filmmap.reduce import reduce_lot
+from filmmap.io.lotfile import LotConfig, read_lot_file
+from filmmap.pipeline.guard import (check_history_writable, check_output_location,
+                                    check_outputs_spare_inputs, estimate_from_inputs,
+                                    estimate_output_bytes, history_inputs, lot_inputs,
+                                    output_target)
+from filmmap.pipeline.publishing import (check_outdir, fault_point, late_write_errors,
+                                         staged_output, write_lot)
+from filmmap.pipeline.reducing import reduce_lot
 from filmmap.lotstats.exclusion import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT
 from filmmap.lotstats.exclusion import lot_means, usable_wafers
 from filmmap.lotstats.view import lot_view, with_boat_model
@@ -49,35 +57,10 @@ before publishing changes neither.  The other order (record, then publish) could
 recorded lot whose results were never published, with nothing in the folder to tell.
 """
 
-FAULT_ENV = "FILMMAP_FAULT_AT"
-"""Test hook: the process ends at once (``os._exit(86)``, like a kill) at the named point:
-``after-staging`` (every output written, nothing published) or ``after-publish`` (published,
-not yet recorded).  Fault injection at named points is common practice, no source."""
-
-
-def _fault_point(name):
-    if os.environ.get(FAULT_ENV) == name:
-        os._exit(86)
-
-
-@contextlib.contextmanager
-def _late_write_errors(outdir):
-    """An OSError while writing the results (a disk filling up meanwhile, which no check
-    before the work can foresee) as an error naming the path; the staging folder is gone
-    and the previous results are untouched by then."""
-    try:
-        yield
-    except OSError as exc:
-        where = exc.filename or Path(outdir).parent
-        raise FilmmapOutputError(f"could not write the results ({exc.strerror or exc}: {where}); "
-                                 f"the previous results in {outdir} are intact, nothing was "
-                                 "replaced", file=outdir, field="-o") from None
-
-
 def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=False,
                      figure_workers=None, progress=None, protect=(), follow_output_link=False,
                      preflight=None, pending_record=None, rate_factors=None, report=True,
-                     pdf_wafer_pages=False, advice_options=None):
+                     pdf_wafer_pages=False, advice_options=None, config=None):
     """Reduce a lot and publish every output in ``outdir`` at once.
 
     Parameters
@@ -104,7 +87,7 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         of one argument is called for the fitting only.
     protect : iterable of (str, path-like)
         Further (role, path) inputs the output folder must not equal, contain or lie
-        inside, e.g. `filmmap.io.guard.history_inputs` (the lot's own inputs are always
+        inside, e.g. `filmmap.pipeline.guard.history_inputs` (the lot's own inputs are always
         protected).
     follow_output_link : bool
         ``outdir`` may be a symbolic link: its target is replaced, the link kept.
@@ -115,6 +98,14 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         ``{"db_path": str or None, "applied_trims_C": dict or None}``: the lot will be
         recorded in the run history after publishing; written as `PENDING_RECORD` into
         the published folder until `record_history` has recorded it.
+    rate_factors : dict {ambient: factor}, optional
+        The furnace's growth rate learned from its history, for the advice
+        (`filmmap.pipeline.furnace.learn_from_history`).
+    advice_options : dict, optional
+        Further keywords of `filmmap.growth.advice.advise_from_config` (a learned
+        coupling width: ``width_slots``, ``width_source``).
+    config : LotConfig, optional
+        ``lotfile`` already read (`filmmap.io.lotfile.read_lot_file`); read here if None.
 
     Returns
     -------
@@ -125,7 +116,7 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     FilmmapInputError
         Before any fit or write: a foreign or linked output folder, or one that equals,
         contains or lies inside an input; a parent that cannot take it (a file, read-only,
-        a mount point, a name too long, too little free space) (`filmmap.io.guard`).
+        a mount point, a name too long, too little free space) (`filmmap.pipeline.guard`).
     FilmmapOutputError
         When writing fails all the same (a disk filling up meanwhile): the previous
         results in ``outdir`` are intact.
@@ -134,7 +125,8 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     t0 = time.perf_counter()
     outdir = output_target(outdir, follow_output_link)
     check_outdir(outdir)  # refuse a foreign folder before spending time on fits
-    config = read_lot_file(lotfile)
+    if config is None:
+        config = read_lot_file(lotfile)
     # replacing OUTDIR deletes what is in it: never when an input is there (nothing staged yet)
     check_outputs_spare_inputs([outdir], lot_inputs(config) + list(protect))
     check_output_location(outdir, estimate_from_inputs(config, figures, keep_spectra))
@@ -159,9 +151,11 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     check_output_location(outdir, estimate_output_bytes(len(np.unique(sites.wafer)),
                                                         len(sites.wafer), n_values, figures,
                                                         keep_spectra))
+    fault_point("before-staging")
     # every output goes to a staging folder that replaces OUTDIR only once complete
-    with _late_write_errors(outdir), staged_output(outdir) as stage:
+    with late_write_errors(outdir), staged_output(outdir) as stage:
         written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+        fault_point("mid-staging")
         advice = write_advice(reduction.config, written, stage, rate_factors,
                               **(advice_options or {}))
         if advice is not None:
@@ -175,7 +169,7 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         written.advice = advice
         written.view = view
         if figures:
-            from filmmap.figures_out import write_figures
+            from filmmap.pipeline.figures import write_figures
 
             written.figure_notes = []
             written.files.update(write_figures(
@@ -202,8 +196,8 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
             plan = {**pending_record, "lot_file": str(reduction.config.path),
                     "lot_file_sha256": reduction.config.sha256}
             write_text_atomic(stage / PENDING_RECORD, json.dumps(plan) + "\n")
-        _fault_point("after-staging")
-    _fault_point("after-publish")
+        fault_point("after-staging")
+    fault_point("after-publish")
     written.outdir = Path(outdir)
     return reduction, written, time.perf_counter() - t0
 
@@ -244,12 +238,14 @@ def write_advice(config, written, folder, rate_factors=None, **options):
     if not config.recipe or config.target is None:
         return None
     ds = written.dataset
-    usable = usable_wafers(ds["sites_used"].values, MIN_SITES_FOR_LOT)
-    mean = lot_means(ds["mean_nm"].values, ds["sites_used"].values, MIN_SITES_FOR_LOT)
-    advice = advise_from_config(config, ds["slot"].values, mean, ds["role"].values,
+    grid = site_grid(ds)
+    sites_used = wafer_values(ds, "sites_used")
+    usable = usable_wafers(sites_used, MIN_SITES_FOR_LOT)
+    mean = lot_means(wafer_values(ds, "mean_nm"), sites_used, MIN_SITES_FOR_LOT)
+    advice = advise_from_config(config, grid.slot, mean, grid.role,
                                 n_failed_sites=written.n_failed, n_sites=written.n_sites,
                                 rate_factors=rate_factors, **options)
-    for w in ds.wafer.values[~usable]:
+    for w in grid.wafer[~usable]:
         advice["warnings"].append(f"wafer {w} has fewer than {MIN_SITES_FOR_LOT} usable sites "
                                   "and was left out of the calibration")
     # identification after the pinned keys (which keep their order): which layout, which
@@ -264,30 +260,81 @@ def write_advice(config, written, folder, rate_factors=None, **options):
 
 
 
+@dataclass(frozen=True)
+class LotTask:
+    """One lot of a many-lot run: what a worker process or a Dask task needs (picklable)."""
+
+    lotfile: Path
+    config: LotConfig
+    outdir: Path
+    figures: bool
+    keep_spectra: bool
+    protect: tuple
+    pending_record: dict | None
+
+
 def _reduce_one(task):
     """One lot of a many-lot run (a worker process, a Dask task or inline)."""
-    lotfile, outdir, figures, keep_spectra, protect, pending_record = task
-    reduction, written, seconds = reduce_to_folder(lotfile, outdir, workers=1, figures=figures,
-                                                   keep_spectra=keep_spectra, figure_workers=1,
-                                                   protect=protect, pending_record=pending_record)
-    return dict(lotfile=str(lotfile), outdir=str(outdir), lot_id=reduction.config.lot.id,
-                n_wafers=written.n_wafers, n_sites=written.n_sites, n_failed=written.n_failed,
-                mean_nm=written.mean_nm, seconds=seconds)
+    reduction, written, seconds = reduce_to_folder(task.lotfile, task.outdir, workers=1,
+                                                   figures=task.figures,
+                                                   keep_spectra=task.keep_spectra,
+                                                   figure_workers=1, protect=task.protect,
+                                                   pending_record=task.pending_record,
+                                                   config=task.config)
+    return dict(lotfile=str(task.lotfile), outdir=str(task.outdir),
+                lot_id=reduction.config.lot.id, n_wafers=written.n_wafers,
+                n_sites=written.n_sites, n_failed=written.n_failed, mean_nm=written.mean_nm,
+                seconds=seconds)
 
 
-def lot_folders(lotfiles, outroot):
-    """Output folder of each lot under OUTROOT: OUTROOT/<lot id> (file-system-safe)."""
+def read_lots(lotfiles):
+    """Read each lot file once, by its absolute path, for `reduce_many`.
+
+    Parameters
+    ----------
+    lotfiles : sequence of path-like or LotConfig
+        Lot files (TOML), or lot files already read (kept as they are).
+
+    Returns
+    -------
+    list of LotConfig
+        In the order given. The paths are made absolute before reading: a Dask worker has
+        its own working directory, where a relative path names another file or none.
+    """
+    return [lf if isinstance(lf, LotConfig) else read_lot_file(Path(lf).absolute())
+            for lf in lotfiles]
+
+
+def lot_folders(configs, outroot):
+    """Output folder of each lot under OUTROOT: OUTROOT/<lot id> (file-system-safe).
+
+    Parameters
+    ----------
+    configs : sequence of LotConfig
+        The lots (`read_lots`).
+    outroot : path-like
+
+    Returns
+    -------
+    list of pathlib.Path
+
+    Raises
+    ------
+    FilmmapInputError
+        Two lots with one id (their folders would collide).
+    """
     from filmmap.wafermap.figures import safe_filename
 
     outroot = Path(outroot)
     seen = {}
     folders = []
-    for lf in lotfiles:
-        lot_id = read_lot_file(lf).lot.id
+    for config in configs:
+        lot_id = config.lot.id
         if lot_id in seen:
             raise FilmmapInputError(f"lot id {lot_id!r} is also the id of {seen[lot_id]}; expected "
-                                    "each lot once in a many-lot run", file=lf, field="lot.id")
-        seen[lot_id] = lf
+                                    "each lot once in a many-lot run", file=config.path,
+                                    field="lot.id")
+        seen[lot_id] = config.path
         folders.append(outroot / safe_filename(lot_id))
     return folders
 
@@ -299,7 +346,8 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
 
     Parameters
     ----------
-    lotfiles : sequence of path-like
+    lotfiles : sequence of path-like or LotConfig
+        Lot files, or lot files already read (`read_lots`): each is parsed once.
     outroot : path-like
         Parent folder of the lots' output folders.
     workers : int, optional
@@ -326,23 +374,24 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
     # absolute on the client before anything is submitted: a Dask worker has its own
     # working directory, where a relative path names another file or none (the cluster
     # must share the file system at these absolute paths; docs/formats.md)
-    lotfiles = [Path(p).absolute() for p in lotfiles]
+    configs = read_lots(lotfiles)
+    lotfiles = [Path(lf if not isinstance(lf, LotConfig) else lf.path).absolute()
+                for lf in lotfiles]
     outroot = Path(outroot).absolute()
-    protect = [(role, Path(p).absolute()) for role, p in protect]
-    folders = [output_target(f, follow_output_link) for f in lot_folders(lotfiles, outroot)]
+    protect = tuple((role, Path(p).absolute()) for role, p in protect)
+    folders = [output_target(f, follow_output_link) for f in lot_folders(configs, outroot)]
     for f in folders:
         check_outdir(f)
     # one lot's folder must not swallow another lot's inputs either
-    configs = [read_lot_file(lf) for lf in lotfiles]
     everyone = [item for config in configs for item in lot_inputs(config)]
-    check_outputs_spare_inputs(folders, everyone + protect)
+    check_outputs_spare_inputs(folders, everyone + list(protect))
     need = sum(estimate_from_inputs(config, figures, keep_spectra) for config in configs)
     check_output_location(folders[0], need)
     for config in configs:
         if preflight is not None:
             preflight(config)
-    tasks = [(lf, out, figures, keep_spectra, protect, pending_record)
-             for lf, out in zip(lotfiles, folders)]
+    tasks = [LotTask(lf, config, out, figures, keep_spectra, protect, pending_record)
+             for lf, config, out in zip(lotfiles, configs, folders)]
     results = [None] * len(tasks)
     if scheduler is not None:
         try:
@@ -404,6 +453,7 @@ def record_history(outdir, config=None, db_path=None, applied_trims_C=None):
             f"could not record lot {record.lot_id} in the history {db} ({exc}; is its disk "
             f"full?); the results are published in {outdir} and the history is as before; the "
             f"next reduce into {outdir} records them first", file=db, field="--history") from None
+    fault_point("after-record")
     with contextlib.suppress(FileNotFoundError):
         (Path(outdir) / PENDING_RECORD).unlink()
     return replaced, record
@@ -452,3 +502,146 @@ def complete_pending_record(outdir):
                                 f"stopped before recording them, and recording them now failed: "
                                 f"{exc}. Fix that, or delete {marker} to give up that record",
                                 file=marker) from None
+
+
+@dataclass(frozen=True)
+class HistoryOptions:
+    """Where and whether a reduce records its lot in the run history.
+
+    Attributes
+    ----------
+    db_path : path-like or None
+        History database (None: the per-user default,
+        `filmmap.history.store.default_history_path`).
+    record : bool
+        Record the lot (False: ``--no-history``; the database is still protected from
+        the output folder, which would delete it).
+    applied_trims_C : dict {zone: K} or None
+        Zone trims in force during the run, recorded for run-to-run control; checked
+        against the lot file's zones and limits before any fit.
+    """
+
+    db_path: object = None
+    record: bool = True
+    applied_trims_C: dict | None = None
+
+    def protect(self):
+        """(role, path) of the database and its companion files, for ``protect``."""
+        return history_inputs(self.db_path)
+
+    def pending_record(self):
+        """The ``pending_record`` of `reduce_to_folder`, or None when not recording."""
+        if not self.record:
+            return None
+        from filmmap.history.store import default_history_path
+
+        db = Path(self.db_path) if self.db_path else default_history_path()
+        return {"db_path": str(db.absolute()), "applied_trims_C": self.applied_trims_C}
+
+    def preflight(self, config):
+        """Checks against the lot file, after the output-folder guards and before any fit."""
+        from filmmap.bounds import check_zone_trims
+
+        check_zone_trims(self.applied_trims_C, config, "--applied-trims")
+        if self.record:
+            check_history_writable(self.db_path)
+
+
+@dataclass(frozen=True)
+class RecordOutcome:
+    """What `record_reduced_lot` did.
+
+    Attributes
+    ----------
+    recorded : bool
+        The lot is in the history now.
+    replaced : bool
+        It replaced an earlier record of the same lot and furnace.
+    record : object or None
+        The history record (`filmmap.history.store.LotRecord`) when recorded.
+    reason : str
+        Why the lot was not recorded ("" when it was).
+    """
+
+    recorded: bool
+    replaced: bool = False
+    record: object = None
+    reason: str = ""
+
+
+def record_reduced_lot(outdir, config, db_path=None, applied_trims_C=None, n_ok=None):
+    """Record a published lot in the run history, unless it has no thickness at all.
+
+    Parameters
+    ----------
+    outdir : path-like
+        The lot's published output folder.
+    config : LotConfig
+        Its lot file (recipe, target, furnace).
+    db_path : path-like, optional
+        History database (None: the per-user default).
+    applied_trims_C : dict {zone: K}, optional
+        Zone trims in force during the run.
+    n_ok : int, optional
+        Accepted sites of the lot; with none the lot is not recorded (a lot without one
+        thickness has no statistics: recording it would poison the trends) and its
+        pending-record marker is removed.
+
+    Returns
+    -------
+    RecordOutcome
+    """
+    if n_ok is not None and n_ok <= 0:
+        discard_pending_record(outdir)
+        return RecordOutcome(False, reason="every fit failed (see fit_note in lot.nc)")
+    replaced, record = record_history(outdir, config, db_path, applied_trims_C)
+    return RecordOutcome(True, bool(replaced), record)
+
+
+RUN_TO_RUN_WEIGHT = 0.3
+"""EWMA weight of the newest lot in the run-to-run estimate printed after a reduce."""
+
+
+@dataclass(frozen=True)
+class RunToRun:
+    """The run-to-run estimate a reduce reports once a furnace has two recorded lots.
+
+    Attributes
+    ----------
+    estimate : object or None
+        `filmmap.history.r2r.NextRun` (``adjust_step``, ``minutes_next``,
+        ``zone_trims_C``), None when the history gives none.
+    n_lots : int
+        Recorded lots of the furnace the estimate is made from.
+    weight : float
+        EWMA weight of the newest lot.
+    reason : str
+        Why there is no estimate although there are enough lots ("" otherwise).
+    """
+
+    estimate: object
+    n_lots: int
+    weight: float
+    reason: str = ""
+
+
+def run_to_run_estimate(config, db_path=None, weight=RUN_TO_RUN_WEIGHT):
+    """The EWMA run-to-run estimate for the next run of ``config``'s recipe, or None.
+
+    None when the lot file has no recipe, target or furnace name, or the furnace has
+    fewer than two recorded lots; a `RunToRun` without an estimate (with its reason)
+    when the history cannot give one.
+    """
+    from filmmap.history import lots, next_run_from_history
+
+    if not config.recipe or config.target is None or not config.lot.furnace:
+        return None
+    rows = lots(db_path, furnace=config.lot.furnace)
+    if len(rows) < 2:
+        return None
+    try:
+        nxt = next_run_from_history(rows, config, weight=weight)
+    except FilmmapInputError as exc:
+        return RunToRun(None, len(rows), weight, exc.reason)
+    return RunToRun(nxt, len(rows), weight)
+
