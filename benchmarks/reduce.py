@@ -24,7 +24,7 @@ import numpy as np
 
 from filmmap.io.spectra_csv import check_tables, read_spectra_csv
 from filmmap.optics import Layer, Stack
-from filmmap.pipeline.publishing import write_lot
+from filmmap.pipeline.lot_files import write_lot
 from filmmap.pipeline.reducing import reduce_lot
 from filmmap.wafermap.sites import polar_sites
 

@@ -13,8 +13,9 @@ Rooms, one job each:
   processes when asked; the optical stack and systematics of a lot file.
 - `wafer_analysis`: per-wafer statistics, Zernike shape, radial profile and map trust,
   added to the lot dataset.
-- `publishing`: lot.nc, sites.csv, spectra.nc written into a staging folder that replaces
-  the output folder whole (`staged_output`), and the named fault points of that sequence.
+- `lot_files`: lot.nc, sites.csv and spectra.nc of a reduced lot (`write_lot`).
+- `publishing`: the staging folder that replaces the output folder whole once complete
+  (`staged_output`), and the named fault points of the publish-then-record sequence.
 - `guard`: the checks before any work (outputs never replace inputs, a writable place,
   a usable history).
 - `figures`: the wafer maps and the contact sheet of a reduced lot.
@@ -35,7 +36,7 @@ _EXPORTS = {
     "reduce_lot": "reducing", "LotReduction": "reducing", "SiteResults": "reducing",
     "build_stack": "reducing", "lot_systematics": "reducing",
     "add_wafer_statistics": "wafer_analysis",
-    "write_lot": "publishing", "WrittenLot": "publishing", "staged_output": "publishing",
+    "write_lot": "lot_files", "WrittenLot": "lot_files", "staged_output": "publishing",
     "FAULT_ENV": "publishing", "FAULT_POINTS": "publishing",
     "reduce_to_folder": "run", "reduce_many": "run", "write_advice": "run",
     "record_history": "run", "complete_pending_record": "run",

@@ -1,8 +1,8 @@
-"""Publish a reduced lot: its files written into a staging folder that replaces OUTDIR whole.
+"""Publish a complete output folder at once, so a crash never leaves a mix.
 
-Outputs are first written into a staging folder beside OUTDIR (`write_lot` writes lot.nc,
-sites.csv and spectra.nc; the run adds the summaries, advice, figures and reports). When
-the set is complete, the staging folder and OUTDIR are swapped in one atomic step
+Outputs are first written into a staging folder beside OUTDIR
+(`filmmap.pipeline.lot_files.write_lot` writes lot.nc, sites.csv and spectra.nc; the run
+adds the summaries, advice, figures and reports). When the set is complete, the staging folder and OUTDIR are swapped in one atomic step
 (Linux ``renameat2(RENAME_EXCHANGE)``), and the old results are removed. A
 reader of OUTDIR sees either the complete previous results or the complete
 new ones, never a mix or a half-written file. Where the atomic exchange is not
@@ -26,17 +26,9 @@ import ctypes.util
 import os
 import shutil
 import uuid
-from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-
 from filmmap.errors import FilmmapInputError, FilmmapOutputError
-from filmmap.io.results import lot_dataset, spectra_dataset, write_netcdf_atomic
-from filmmap.io.sites_csv import write_sites_csv
-from filmmap.lotstats.causes import count_causes
-from filmmap.lotstats.roles import roles_from_boat
-from filmmap.pipeline.wafer_analysis import add_wafer_statistics
 
 MARKER = ".filmmap-output"
 
@@ -184,63 +176,3 @@ def late_write_errors(outdir):
         raise FilmmapOutputError(f"could not write the results ({exc.strerror or exc}: {where}); "
                                  f"the previous results in {outdir} are intact, nothing was "
                                  "replaced", file=outdir, field="-o") from None
-
-
-@dataclass
-class WrittenLot:
-    """Paths and headline figures of a written lot."""
-
-    outdir: Path
-    files: dict = field(default_factory=dict)
-    n_wafers: int = 0
-    n_sites: int = 0
-    n_failed: int = 0
-    mean_nm: float = float("nan")
-    failures: dict = field(default_factory=dict)
-    dataset: object = None   # the xarray.Dataset written to lot.nc
-    view: object = None      # the lot view (filmmap.lotstats.view.LotView)
-    advice: dict | None = None
-
-
-def wafer_roles(config, wafer_ids, wafer_slots):
-    """'dummy', 'monitor' or 'product' for each wafer, from the lot file's [boat]."""
-    roles = roles_from_boat(wafer_slots, config.boat)
-    return dict(zip(wafer_ids, roles.tolist()))
-
-
-def write_lot(reduction, outdir, keep_spectra=False):
-    """Write lot.nc (and spectra.nc) for a reduced lot; summary files come from the lot view.
-
-    Parameters
-    ----------
-    reduction : filmmap.pipeline.reducing.LotReduction
-    outdir : str or path-like
-        Output folder, created if missing. Every file is written atomically.
-    keep_spectra : bool
-        Also write spectra.nc with measured and model spectra and residuals.
-
-    Returns
-    -------
-    WrittenLot
-    """
-    outdir = Path(outdir)
-    outdir.mkdir(parents=True, exist_ok=True)
-    s = reduction.sites
-    ids, first = np.unique(s.wafer, return_index=True)
-    roles = wafer_roles(reduction.config, ids, s.slot[first])
-    ds = lot_dataset(reduction, roles)
-    m = reduction.config.measurement
-    ds = add_wafer_statistics(ds, m.wafer_diameter_mm, m.edge_exclusion_mm)
-    written = WrittenLot(outdir=outdir)
-    written.files["lot.nc"] = write_netcdf_atomic(ds, outdir / "lot.nc")
-    written.files["sites.csv"] = write_sites_csv(ds, outdir / "sites.csv")
-    if keep_spectra and s.measured_spectra is not None:
-        written.files["spectra.nc"] = write_netcdf_atomic(spectra_dataset(reduction, ds),
-                                                          outdir / "spectra.nc")
-    written.n_wafers = int(ds.sizes["wafer"])
-    written.n_sites = int(s.ok.size)
-    written.n_failed = int((~s.ok).sum())
-    written.mean_nm = float(np.nanmean(s.values[:, 0])) if s.ok.any() else float("nan")
-    written.failures = count_causes(s.note[~s.ok])
-    written.dataset = ds
-    return written

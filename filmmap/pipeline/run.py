@@ -30,8 +30,9 @@ from filmmap.pipeline.guard import (check_history_writable, check_output_locatio
                                     check_outputs_spare_inputs, estimate_from_inputs,
                                     estimate_output_bytes, history_inputs, lot_inputs,
                                     output_target)
+from filmmap.pipeline.lot_files import write_lot
 from filmmap.pipeline.publishing import (check_outdir, fault_point, late_write_errors,
-                                         staged_output, write_lot)
+                                         staged_output)
 from filmmap.pipeline.reducing import reduce_lot
 from filmmap.lotstats.exclusion import DEFAULT_MIN_SITES as MIN_SITES_FOR_LOT
 from filmmap.lotstats.exclusion import lot_means, usable_wafers
