@@ -122,3 +122,26 @@ def test_reduce_prints_run_to_run_estimate_after_two_lots(tmp_path, capsys):
                  "--history", str(db)]) == 0
     out = capsys.readouterr().out
     assert "run-to-run (EWMA w = 0.3 over 2 lots" in out and "advisory only" in out
+
+
+def test_a_many_lot_run_reads_each_lot_file_once(tmp_path, capsys, monkeypatch):
+    # the lot files are read once for the output folders, the guards, the fits and the
+    # history records (issue 16: a many-lot run used to parse each lot file three times)
+    import filmmap.pipeline.reducing as reducing
+    import filmmap.pipeline.run as run
+
+    files = _make_lots(tmp_path / "in", n=2)
+    reads = []
+    real = run.read_lot_file
+
+    def counting(path, *args, **kwargs):
+        reads.append(str(path))
+        return real(path, *args, **kwargs)
+
+    monkeypatch.setattr(run, "read_lot_file", counting)
+    monkeypatch.setattr(reducing, "read_lot_file", counting)
+    assert main(["reduce", *map(str, files), "-o", str(tmp_path / "out"), "--no-figures",
+                 "--no-report", "--quiet", "--workers", "1", "--history",
+                 str(tmp_path / "h.sqlite")]) == 0, capsys.readouterr().err
+    assert sorted(reads) == sorted(str(f.absolute()) for f in files)
+    assert [r.lot_id for r in lots(tmp_path / "h.sqlite")] == ["T-0000", "T-0001"]

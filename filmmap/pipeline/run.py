@@ -200,6 +200,8 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         fault_point("after-staging")
     fault_point("after-publish")
     written.outdir = Path(outdir)
+    # the files were written into the staging folder, which is OUTDIR now
+    written.files = {name: written.outdir / name for name in written.files}
     return reduction, written, time.perf_counter() - t0
 
 
