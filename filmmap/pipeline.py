@@ -270,9 +270,12 @@ def _reduce_one(task):
     reduction, written, seconds = reduce_to_folder(lotfile, outdir, workers=1, figures=figures,
                                                    keep_spectra=keep_spectra, figure_workers=1,
                                                    protect=protect, pending_record=pending_record)
+    # the history record is made here, from the lot view in memory: the caller records it
+    record = (history_record(written, reduction.config, pending_record.get("applied_trims_C"))
+              if pending_record is not None else None)
     return dict(lotfile=str(lotfile), outdir=str(outdir), lot_id=reduction.config.lot.id,
                 n_wafers=written.n_wafers, n_sites=written.n_sites, n_failed=written.n_failed,
-                mean_nm=written.mean_nm, seconds=seconds)
+                mean_nm=written.mean_nm, seconds=seconds, record=record)
 
 
 def lot_folders(lotfiles, outroot):
@@ -377,11 +380,40 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
     return results
 
 
-def record_history(outdir, config=None, db_path=None, applied_trims_C=None):
+def history_record(written, config, applied_trims_C=None):
+    """The run-history record of a lot reduced in this process, from its result in memory.
+
+    Parameters
+    ----------
+    written : WrittenLot
+        As `reduce_to_folder` returns it, published: its lot view (``view``) and advice
+        (``advice``) give every figure (`filmmap.history.records.record_from_view`); only
+        the SHA-256 of the published ``lot.nc`` is read from disk.
+    config : LotConfig
+        The lot file as read: its recipe is recorded.
+    applied_trims_C : mapping, optional
+        Zone name -> trim in force during the run, K.
+
+    Returns
+    -------
+    filmmap.history.records.LotRecord
+    """
+    from filmmap.history.records import file_sha256, recipe_steps, record_from_view
+
+    nc = Path(written.outdir).absolute() / "lot.nc"
+    return record_from_view(written.view, written.advice, recipe_steps(config), lot_nc_path=nc,
+                            lot_nc_sha256=file_sha256(nc), applied_trims_C=applied_trims_C)
+
+
+def record_history(outdir, config=None, db_path=None, applied_trims_C=None, *, record=None):
     """Record a reduced lot (its published OUTDIR) in the run history; True if it replaced one.
 
-    Recording is idempotent: the same lot and furnace replace their earlier record.  Once
-    the record is committed, the folder's `PENDING_RECORD` marker is removed.
+    ``record`` is the lot's record made in memory (`history_record`); without it (results
+    published by an earlier run) the record is rebuilt from OUTDIR
+    (`filmmap.history.importing.record_from_outputs`, with ``config`` and
+    ``applied_trims_C``).  Recording is idempotent: the same lot and furnace replace their
+    earlier record.  Once the record is committed, the folder's `PENDING_RECORD` marker is
+    removed.
 
     Raises
     ------
@@ -391,9 +423,11 @@ def record_history(outdir, config=None, db_path=None, applied_trims_C=None):
     """
     import sqlite3
 
-    from filmmap.history import record_from_outputs, record_lot
+    from filmmap.history.importing import record_from_outputs
+    from filmmap.history.store import record_lot
 
-    record = record_from_outputs(outdir, config, applied_trims_C=applied_trims_C)
+    if record is None:
+        record = record_from_outputs(outdir, config, applied_trims_C=applied_trims_C)
     try:
         replaced = record_lot(db_path, record)
     except sqlite3.Error as exc:

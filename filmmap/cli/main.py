@@ -268,12 +268,15 @@ def cmd_reduce(args):
     if not args.quiet:
         print_summary(reduction, written, seconds)
     if not args.no_history:
+        from filmmap.pipeline import history_record
+
         _record(written.outdir, reduction.config, args.history, trims, args.quiet,
-                n_ok=int(written.n_sites) - int(written.n_failed))
+                n_ok=int(written.n_sites) - int(written.n_failed),
+                record=history_record(written, reduction.config, trims))
     return 0
 
 
-def _record(outdir, config, db_path, trims, quiet, n_ok=None):
+def _record(outdir, config, db_path, trims, quiet, n_ok=None, record=None):
     from filmmap.pipeline import discard_pending_record, record_history
 
     if n_ok is not None and n_ok <= 0:
@@ -282,7 +285,7 @@ def _record(outdir, config, db_path, trims, quiet, n_ok=None):
         sys.stderr.write(f"filmmap: lot {config.lot.id} is not recorded in the history: every "
                          "fit failed (see fit_note in lot.nc)\n")
         return
-    replaced, record = record_history(outdir, config, db_path, trims)
+    replaced, record = record_history(outdir, config, db_path, trims, record=record)
     if quiet:
         return
     what = "replaced its earlier record" if replaced else "recorded"
@@ -331,7 +334,7 @@ def _reduce_many(args, trims, protect, preflight, pending):
     if not args.no_history:
         for lf, res in zip(args.lotfile, results):
             _record(res["outdir"], read_lot_file(lf), args.history, trims, args.quiet,
-                    n_ok=res["n_sites"] - res["n_failed"])
+                    n_ok=res["n_sites"] - res["n_failed"], record=res.get("record"))
     if not args.quiet:
         print(f"{len(results)} lots reduced into {args.output}")
     return 0

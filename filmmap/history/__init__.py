@@ -1,8 +1,14 @@
 """Run history and run-to-run control of a furnace.
 
+`records`
+    What the history keeps about a lot (`LotRecord`) and how a record is made from the
+    in-memory lot view and advice: `record_from_view`, `make_record`.
 `store`
     An embedded SQLite history of reduced lots (WAL mode, one transaction per write,
-    schema migrations): `record_lot`, `lots`, `record_from_outputs`.
+    schema migrations): `record_lot`, `lots`.
+`importing`
+    Rebuilding a record from an old output folder (lot.nc, advice.json) through the
+    lot view: `record_from_outputs`.
 `charts`
     Shewhart individuals charts with the Western Electric run rules, EWMA charts, their
     figures and a self-contained HTML page: `individuals_chart`, `ewma_chart`,
@@ -56,16 +62,18 @@ _EXPORTS = {
     'simulate': 'r2r',
     'CURRENT_VERSION': 'store',
     'MIGRATIONS': 'store',
-    'LotRecord': 'store',
-    'SlotSummary': 'store',
-    'WaferSummary': 'store',
     'default_history_path': 'store',
     'lots': 'store',
-    'make_record': 'store',
     'open_history': 'store',
-    'record_from_outputs': 'store',
     'record_lot': 'store',
     'schema_version': 'store',
+    'LotRecord': 'records',
+    'SlotSummary': 'records',
+    'WaferSummary': 'records',
+    'make_record': 'records',
+    'recipe_steps': 'records',
+    'record_from_view': 'records',
+    'record_from_outputs': 'importing',
 }
 
 
@@ -79,8 +87,8 @@ def __getattr__(name):
 
 __all__ = [
     "CURRENT_VERSION", "MIGRATIONS", "LotRecord", "SlotSummary", "WaferSummary",
-    "default_history_path", "lots", "make_record", "open_history", "record_from_outputs",
-    "record_lot", "schema_version",
+    "default_history_path", "lots", "make_record", "open_history", "recipe_steps",
+    "record_from_outputs", "record_from_view", "record_lot", "schema_version",
     "METRICS", "RULE_TEXT", "EwmaChart", "IndividualsChart", "baseline_limits",
     "control_charts", "ewma_chart", "ewma_figure", "history_figures", "history_html",
     "individuals_chart", "metric_series", "save_chart", "trend_figure",
