@@ -12,10 +12,8 @@ import traceback
 from pathlib import Path
 
 from filmmap import __version__
+from filmmap.cautions import CONSOLE_CAUTION as CAUTION
 from filmmap.errors import FilmmapInputError
-
-CAUTION = ("filmmap advises; it never drives equipment. Any recipe or zone change is for the "
-           "process owner to approve, within the furnace's qualified limits and local safety rules.")
 
 
 def _furnace_model_options(parser, trim_help):
