@@ -42,7 +42,7 @@ EWMA -> next recipe) lives with the tests, ``tests/furnace_sim.py``: it is a tes
 not part of the package; ``benchmarks/r2r_closed_loop.py`` compares weights with it.
 
 Caution: every recipe or zone change is advisory and must be approved by the process
-owner, within the furnace's qualified limits (see `filmmap.growth.CAUTION`).
+owner, within the furnace's qualified limits (see `filmmap.cautions.ADVICE_CAUTION`).
 
 Units: temperature offsets and trims K, time minutes, thickness nm, errors percent.
 
