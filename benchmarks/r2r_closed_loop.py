@@ -6,9 +6,9 @@ rate factor (steam partial pressure, scaling B and B/A) drifts down 0.3 % per ru
 run-to-run noise, and the source zone's real temperature drifts down 0.2 K per run (a
 thermocouple drifting).  Every run: grow -> measure the wafer means (with noise) ->
 advice (`filmmap.growth.advise`, as ``reduce`` writes it) -> EWMA of the furnace state
-(`filmmap.history.r2r`) -> next recipe time and zone trims.  Open loop runs the starting
-recipe unchanged.  The same noise is used for every strategy (common random numbers),
-and the table averages several seeds.
+(`filmmap.history.r2r`) -> next recipe time and zone trims; the loop is the test fixture
+``tests/furnace_sim.py``.  Open loop runs the starting recipe unchanged.  The same noise
+is used for every strategy (common random numbers), and the table averages several seeds.
 
     python benchmarks/r2r_closed_loop.py [--runs 30] [--seeds 4] [--tolerance 2]
 
@@ -26,12 +26,17 @@ References: E. Sachs, A. Hu and A. Ingolfsson, IEEE Trans. Semicond. Manuf. 8, 2
 from __future__ import annotations
 
 import argparse
+import sys
 import time
+from pathlib import Path
 
 import numpy as np
 
 from filmmap.pipeline.demo import DUMMY_SLOTS, RECIPE, TARGET_NM, ZONES, demo_temperature_offset_C
-from filmmap.history.r2r import SyntheticFurnace, simulate
+
+# the invented furnace is a test fixture (tests/furnace_sim.py), not part of the package
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from furnace_sim import SyntheticFurnace, simulate  # noqa: E402
 
 WEIGHTS = (0.1, 0.3, 0.5, 0.7, 1.0)
 

@@ -30,20 +30,17 @@ import pytest
 from matplotlib.figure import Figure
 
 from filmmap.errors import FilmmapInputError
-from filmmap.history.charts import (
+from filmmap.history.chart_figures import ewma_figure, history_figures, save_chart, trend_figure
+from filmmap.history.control import (
     D2_PAIRS,
     baseline_limits,
     control_charts,
     ewma_chart,
-    ewma_figure,
-    history_figures,
-    history_html,
     individuals_chart,
-    save_chart,
-    trend_figure,
     western_electric_flags,
 )
-from filmmap.history.store import LotRecord, WaferSummary
+from filmmap.history.records import LotRecord, WaferSummary
+from filmmap.report.history_page import history_html
 
 # Montgomery's 30 observations, from memory (see the module notes)
 MONTGOMERY = [9.45, 7.99, 9.29, 11.66, 12.16, 10.18, 8.04, 11.46, 9.20, 10.34,
@@ -260,7 +257,7 @@ def test_history_html_is_self_contained_and_escaped():
 
 
 def test_chart_files_are_named_by_what_they_show():
-    from filmmap.history.charts import chart_filename
+    from filmmap.report.history_page import chart_filename
 
     figs = history_figures(_rows(), dpi=40)
     names = [chart_filename(c) for c in figs]
@@ -273,7 +270,7 @@ def test_chart_files_are_named_by_what_they_show():
 def test_limits_from_few_lots_are_called_provisional_and_spreads_stay_non_negative():
     # Montgomery (section 5.3, from memory): 20-25 subgroups for trial limits; a spread's
     # lower limit below zero means nothing, so it is drawn at zero
-    from filmmap.history.charts import MIN_BASELINE_LOTS, baseline_warnings
+    from filmmap.history.control import MIN_BASELINE_LOTS, baseline_warnings
 
     import dataclasses
 
@@ -304,7 +301,7 @@ def test_ewma_centre_is_labelled_as_the_baseline_mean():
 
 
 def test_next_run_in_words_with_units():
-    from filmmap.history.charts import next_run_lines
+    from filmmap.report.history_page import next_run_lines
 
     nxt = {"adjust_step": "wet", "minutes_now": 115.0, "minutes_next": 116.50548055609704,
            "zone_trims_C": {"load": 1.5914918558218443, "center": 1.16e-14, "source": -0.70},

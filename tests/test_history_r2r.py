@@ -18,17 +18,16 @@ from filmmap.growth import advise, gain_matrix, integrate_recipe, with_minutes, 
 from filmmap.history.r2r import (
     FurnaceEstimate,
     LotOffsets,
-    SyntheticFurnace,
     estimate_from_records,
     estimate_furnace,
     ewma_filter,
     lot_offsets,
     next_run,
     next_run_from_history,
-    simulate,
 )
-from filmmap.history.store import LotRecord, WaferSummary
+from filmmap.history.records import LotRecord, WaferSummary
 from filmmap.io import read_lot_file
+from furnace_sim import SyntheticFurnace, simulate
 
 RECIPE = [{"name": "dry-cap", "ambient": "O2", "minutes": 5.0, "at_C": 1000.0},
           {"name": "wet", "ambient": "H2O", "minutes": 115.0, "at_C": 1000.0}]

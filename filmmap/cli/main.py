@@ -16,10 +16,8 @@ import traceback
 from pathlib import Path
 
 from filmmap import __version__
+from filmmap.cautions import CONSOLE_CAUTION as CAUTION
 from filmmap.errors import FilmmapInputError
-
-CAUTION = ("filmmap advises; it never drives equipment. Any recipe or zone change is for the "
-           "process owner to approve, within the furnace's qualified limits and local safety rules.")
 
 
 def _furnace_model_options(parser, trim_help):
@@ -269,8 +267,11 @@ def cmd_reduce(args):
     if not args.quiet:
         print_summary(reduction, written, seconds)
     if not args.no_history:
+        from filmmap.pipeline.run import history_record
+
         _record(written.outdir, reduction.config, args.history, trims, args.quiet,
-                n_ok=int(written.n_sites) - int(written.n_failed))
+                n_ok=int(written.n_sites) - int(written.n_failed),
+                record=history_record(written, reduction.config, trims))
     return 0
 
 
@@ -279,11 +280,11 @@ def _print_lines(lines):
         print(line)
 
 
-def _record(outdir, config, db_path, trims, quiet, n_ok=None):
+def _record(outdir, config, db_path, trims, quiet, n_ok=None, record=None):
     """Record a published lot in the history and say so (with the run-to-run estimate)."""
     from filmmap.pipeline.run import record_reduced_lot, run_to_run_estimate
 
-    outcome = record_reduced_lot(outdir, config, db_path, trims, n_ok=n_ok)
+    outcome = record_reduced_lot(outdir, config, db_path, trims, n_ok=n_ok, record=record)
     if not outcome.recorded:
         sys.stderr.write(f"filmmap: lot {config.lot.id} is not recorded in the history: "
                          f"{outcome.reason}\n")
@@ -323,43 +324,20 @@ def _reduce_many(args, history, protect):
     if not args.no_history:
         for config, res in zip(configs, results):
             _record(res["outdir"], config, args.history, history.applied_trims_C, args.quiet,
-                    n_ok=res["n_sites"] - res["n_failed"])
+                    n_ok=res["n_sites"] - res["n_failed"], record=res.get("record"))
     if not args.quiet:
         print(f"{len(results)} lots reduced into {args.output}")
     return 0
 
 
 def cmd_history(args):
-    from filmmap.bounds import MAX_BASELINE_LOTS, check_in_range
-    from filmmap.history import (control_charts, history_figures, lots, next_run_from_history,
-                                 save_chart, write_history_html)
-    from filmmap.history.charts import baseline_warnings, chart_filename, next_run_lines
-    from filmmap.pipeline.guard import (check_name_lengths, check_output_location,
-                                        check_outputs_spare_inputs, estimate_output_bytes,
-                                        history_inputs, output_target)
-    from filmmap.pipeline.publishing import check_outdir, staged_output
+    from filmmap.pipeline.history_report import write_history_report
 
-    # every value before any work (the control-chart code would clip a bad baseline silently)
-    check_in_range(args.baseline, "--baseline", 2, MAX_BASELINE_LOTS, "--baseline (lots)")
-    check_in_range(args.ewma_lambda, "--ewma-lambda", 0.0, 1.0, "--ewma-lambda", lo_open=True)
-    check_in_range(args.weight, "--weight", 0.0, 1.0, "--weight", lo_open=True)
-    outdir = output_target(args.output, args.follow_output_link)
-    check_outdir(outdir)
-    check_output_location(outdir, estimate_output_bytes(0, 0, figures=False))
-    if args.history:
-        check_name_lengths(args.history, "--history")
-    inputs = history_inputs(args.history)
-    if args.next_run:
-        inputs.append(("lot file", Path(args.next_run)))
-    check_outputs_spare_inputs([outdir], inputs)
-    rows = lots(args.history, furnace=args.furnace)
-    if not rows:
-        from filmmap.history.store import default_history_path
-
-        where = args.history or default_history_path()
-        raise FilmmapInputError(f"no lots recorded in {where}" + (
-            f" for furnace {args.furnace!r}" if args.furnace else "")
-            + "; run filmmap reduce first", field="--history")
+    rep = write_history_report(args.output, args.history, furnace=args.furnace,
+                               baseline=args.baseline, ewma_lambda=args.ewma_lambda,
+                               weight=args.weight, next_run_lotfile=args.next_run,
+                               follow_output_link=args.follow_output_link)
+    rows = rep.rows
     print(f"{'run date':<11} {'lot':<18} {'furnace':<24} {'mean nm':>9} {'WTW %':>7} {'WIW %':>7}")
     for r in rows:
         def f(v, d=2):
@@ -368,32 +346,21 @@ def cmd_history(args):
               f"{f(r.lot_mean_nm):>9} {f(r.wtw_pct, 3):>7} {f(r.wiw_mean_pct, 3):>7}")
     if args.baseline > len(rows):
         print(f"  baseline: all {len(rows)} lots (fewer recorded than --baseline {args.baseline})")
-    charts = control_charts(rows, baseline=args.baseline, lam=args.ewma_lambda)
-    figs = history_figures(rows, charts)
-    nxt = config = None
-    if args.next_run:
-        from filmmap.io.lotfile import read_lot_file
-
-        config = read_lot_file(args.next_run)
-        mine = [r for r in rows if r.furnace == config.lot.furnace] or rows
-        nxt = next_run_from_history(mine, config, weight=args.weight).as_dict()
-    with staged_output(outdir) as stage:
-        for caption, fig in figs.items():
-            save_chart(fig, stage / chart_filename(caption))     # named by what it shows
-        write_history_html(stage / "history.html", rows, figs, signals=charts, next_run=nxt)
     print(f"charts and history.html in {args.output}")
-    for w in baseline_warnings(charts):
+    for w in rep.warnings:
         print(f"  warning: {w}")
-    for metric, (ind, ewma) in charts.items():
+    for metric, (ind, ewma) in rep.charts.items():
         flagged = [rows[i].lot_id for i, fl in enumerate(ind.flags) if fl]
         if flagged:
             print(f"  {metric}: Western Electric signals at lots " + ", ".join(flagged))
-    if nxt is not None:
-        print(f"run-to-run estimate (EWMA weight {args.weight:g}) for {config.lot.id}'s recipe "
+    if rep.next_run is not None:
+        from filmmap.report.history_page import next_run_lines
+
+        print(f"run-to-run estimate (EWMA weight {args.weight:g}) for {rep.config.lot.id}'s recipe "
               "(also on history.html):")
-        for line in next_run_lines(nxt):
+        for line in next_run_lines(rep.next_run):
             print(f"  {line}")
-        print(nxt.get("caution", CAUTION))
+        print(rep.next_run.get("caution", CAUTION))
     print(CAUTION)
     return 0
 

@@ -53,6 +53,7 @@ import math
 import numpy as np
 from scipy.optimize import brentq, lsq_linear
 
+from filmmap.cautions import ADVICE_CAUTION
 from filmmap.errors import FilmmapInputError
 from filmmap.growth.boat import fit_boat
 from filmmap.growth.settings import growth_settings
@@ -81,11 +82,8 @@ ADVICE_KEYS = ("adjust_step", "minutes_now", "minutes_next", "zone_offsets_C",
                "effective_offset_C_by_slot", "predicted_wtw_pct_now", "predicted_wtw_pct_next",
                "warnings")
 
-#: Always attached to an advice under the key ``"caution"``.
-CAUTION = ("Advisory only: these time and zone-offset changes come from a growth model fitted "
-           "to one lot. They must be reviewed and approved by the process owner, within the "
-           "furnace's qualified limits and under the site's safety and change-control rules, "
-           "before any run uses them.")
+#: Always attached to an advice under the key ``"caution"`` (text owned by `filmmap.cautions`).
+CAUTION = ADVICE_CAUTION
 
 # Relative slack when deciding that a bound is active.
 _AT_BOUND = 1e-6

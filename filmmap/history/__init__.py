@@ -1,18 +1,30 @@
 """Run history and run-to-run control of a furnace.
 
+`records`
+    What the history keeps about a lot (`LotRecord`) and how a record is made from the
+    in-memory lot view and advice: `record_from_view`, `make_record`.
 `store`
     An embedded SQLite history of reduced lots (WAL mode, one transaction per write,
-    schema migrations): `record_lot`, `lots`, `record_from_outputs`.
-`charts`
-    Shewhart individuals charts with the Western Electric run rules, EWMA charts, their
-    figures and a self-contained HTML page: `individuals_chart`, `ewma_chart`,
-    `control_charts`, `history_figures`, `history_html`.
+    schema migrations): `record_lot`, `lots`.
+`importing`
+    Rebuilding a record from an old output folder (lot.nc, advice.json) through the
+    lot view: `record_from_outputs`.
+`control`
+    Control-chart statistics (pure numpy): Shewhart individuals charts with the Western
+    Electric run rules and EWMA charts, one base `ControlChart`: `individuals_chart`,
+    `ewma_chart`, `control_charts`, `baseline_warnings`.
+`chart_figures`
+    Their figures: `trend_figure`, `ewma_figure`, `history_figures`, `save_chart`.
 `r2r`
     Run-to-run control: EWMA estimates of the furnace's effective offsets across lots and
     the next run's time and zone trims: `estimate_from_records`, `next_run`,
-    `next_run_from_history`; a synthetic closed loop, `simulate`.
+    `next_run_from_history`.
+`rate`
+    A furnace's growth rate and zone coupling learned from its history.
 
-Everything here advises; nothing drives equipment.
+The history page (history.html) is drawn by the report layer,
+`filmmap.report.history_page`; ``filmmap history`` assembles it with
+`filmmap.pipeline.history_report`.  Everything here advises; nothing drives equipment.
 
 References
 ----------
@@ -26,46 +38,47 @@ from importlib import import_module
 
 # names load on first use (PEP 562): recording a lot must not import the chart code
 _EXPORTS = {
-    'METRICS': 'charts',
-    'RULE_TEXT': 'charts',
-    'EwmaChart': 'charts',
-    'IndividualsChart': 'charts',
-    'baseline_limits': 'charts',
-    'control_charts': 'charts',
-    'ewma_chart': 'charts',
-    'ewma_figure': 'charts',
-    'history_figures': 'charts',
-    'history_html': 'charts',
-    'individuals_chart': 'charts',
-    'metric_series': 'charts',
-    'save_chart': 'charts',
-    'trend_figure': 'charts',
-    'western_electric_flags': 'charts',
-    'write_history_html': 'charts',
+    'D2_PAIRS': 'control',
+    'METRICS': 'control',
+    'MIN_BASELINE_LOTS': 'control',
+    'RULE_TEXT': 'control',
+    'ControlChart': 'control',
+    'EwmaChart': 'control',
+    'IndividualsChart': 'control',
+    'baseline_limits': 'control',
+    'baseline_warnings': 'control',
+    'control_charts': 'control',
+    'ewma_chart': 'control',
+    'individuals_chart': 'control',
+    'metric_series': 'control',
+    'western_electric_flags': 'control',
+    'ewma_figure': 'chart_figures',
+    'history_figures': 'chart_figures',
+    'save_chart': 'chart_figures',
+    'trend_figure': 'chart_figures',
     'FurnaceEstimate': 'r2r',
     'LotOffsets': 'r2r',
     'NextRun': 'r2r',
-    'SimulationResult': 'r2r',
-    'SyntheticFurnace': 'r2r',
     'estimate_from_records': 'r2r',
     'estimate_furnace': 'r2r',
     'ewma_filter': 'r2r',
     'lot_offsets': 'r2r',
     'next_run': 'r2r',
     'next_run_from_history': 'r2r',
-    'simulate': 'r2r',
     'CURRENT_VERSION': 'store',
     'MIGRATIONS': 'store',
-    'LotRecord': 'store',
-    'SlotSummary': 'store',
-    'WaferSummary': 'store',
     'default_history_path': 'store',
     'lots': 'store',
-    'make_record': 'store',
     'open_history': 'store',
-    'record_from_outputs': 'store',
     'record_lot': 'store',
     'schema_version': 'store',
+    'LotRecord': 'records',
+    'SlotSummary': 'records',
+    'WaferSummary': 'records',
+    'make_record': 'records',
+    'recipe_steps': 'records',
+    'record_from_view': 'records',
+    'record_from_outputs': 'importing',
 }
 
 
@@ -77,15 +90,4 @@ def __getattr__(name):
     raise AttributeError(f"module 'filmmap.history' has no attribute {name!r}")
 
 
-__all__ = [
-    "CURRENT_VERSION", "MIGRATIONS", "LotRecord", "SlotSummary", "WaferSummary",
-    "default_history_path", "lots", "make_record", "open_history", "record_from_outputs",
-    "record_lot", "schema_version",
-    "METRICS", "RULE_TEXT", "EwmaChart", "IndividualsChart", "baseline_limits",
-    "control_charts", "ewma_chart", "ewma_figure", "history_figures", "history_html",
-    "individuals_chart", "metric_series", "save_chart", "trend_figure",
-    "western_electric_flags", "write_history_html",
-    "FurnaceEstimate", "LotOffsets", "NextRun", "SimulationResult", "SyntheticFurnace",
-    "estimate_from_records", "estimate_furnace", "ewma_filter", "lot_offsets", "next_run",
-    "next_run_from_history", "simulate",
-]
+__all__ = list(_EXPORTS)

@@ -1,10 +1,8 @@
-"""Run history: an embedded SQLite database of reduced lots, one row per lot and furnace.
+"""Run history storage: an embedded SQLite database of lot records, one row per lot and furnace.
 
-The history keeps, for every recorded lot, what the run-to-run controller and the
-control charts need: the lot's identity (lot id, furnace, run date), the recipe as run
-(JSON, with its SHA-256), per-wafer and per-slot summaries, the advice the lot produced,
-the path and SHA-256 of its ``lot.nc``, and three headline figures: the lot mean (nm), the
-wafer-to-wafer non-uniformity WTW (%) and the mean within-wafer non-uniformity WIW (%).
+This module opens, migrates, writes and reads the database; what a record holds and how
+it is made from the lot view is `filmmap.history.records`, rebuilding one from an old
+output folder `filmmap.history.importing`.
 
 Location.  By default one database per user:
 
@@ -55,31 +53,26 @@ References
 .. [2] Python documentation, ``sqlite3`` module (timeout, isolation_level=None for
    explicit transaction control).
 .. [3] XDG Base Directory Specification, version 0.8 (``XDG_DATA_HOME``).
-.. [4] FIPS PUB 180-4, Secure Hash Standard (SHA-256), via `hashlib`.
 """
 
 from __future__ import annotations
 
 import contextlib
 import datetime as _dt
-import hashlib
 import json
-import math
 import os
 import shutil
 import sqlite3
 import stat
-import tomllib
 import urllib.parse
-from collections.abc import Mapping
-from dataclasses import dataclass, fields
 from pathlib import Path
 
 from filmmap.errors import FilmmapInputError
+from filmmap.history.records import (LotRecord, SlotSummary, WaferSummary, canonical_json,
+                                     finite_or_none, make_record)
 
-__all__ = ["CURRENT_VERSION", "MIGRATIONS", "HISTORY_FILENAME", "LotRecord", "SlotSummary",
-           "WaferSummary", "default_history_path", "file_sha256", "lots", "open_history",
-           "make_record", "open_history_readonly", "recipe_sha256", "record_from_outputs",
+__all__ = ["CURRENT_VERSION", "MIGRATIONS", "HISTORY_FILENAME", "check_sqlite_file",
+           "default_history_path", "lots", "open_history", "open_history_readonly",
            "record_lot", "schema_version"]
 
 #: File name of the default history database.
@@ -87,341 +80,6 @@ HISTORY_FILENAME = "history.sqlite"
 
 #: Default wait for a lock held by another process, seconds.
 DEFAULT_BUSY_TIMEOUT_S = 60.0
-
-
-# --------------------------------------------------------------------------- records
-
-@dataclass(frozen=True)
-class WaferSummary:
-    """Within-wafer summary of one wafer of a recorded lot.
-
-    Attributes
-    ----------
-    wafer : str
-        Wafer id.
-    slot : int
-        Boat slot (1 = load/door end), dimensionless.
-    role : str
-        ``"product"``, ``"monitor"`` or ``"dummy"``.
-    mean_nm, sigma_nm : float or None
-        Within-wafer mean and standard deviation of the thickness, nm.
-    nu_pct : float or None
-        Within-wafer non-uniformity 100 sigma / mean, percent.
-    sites_used : int or None
-        Sites behind the statistics (count).
-
-    References
-    ----------
-    .. [1] Non-uniformity as 100 sigma / mean: common practice, no source.
-    """
-
-    wafer: str
-    slot: int
-    role: str = "product"
-    mean_nm: float | None = None
-    sigma_nm: float | None = None
-    nu_pct: float | None = None
-    sites_used: int | None = None
-
-
-@dataclass(frozen=True)
-class SlotSummary:
-    """One boat slot of a recorded lot.
-
-    Attributes
-    ----------
-    slot : int
-        Boat slot (1 = load/door end), dimensionless.
-    mean_nm : float or None
-        Mean thickness of the wafer in that slot, nm (None: no usable mean).
-    offset_C : float or None
-        Effective temperature offset of the slot read from its oxide by the advice
-        (``effective_offset_C_by_slot``), K; None where not calibrated.
-
-    References
-    ----------
-    .. [1] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965) (the model
-       behind the effective offset).
-    """
-
-    slot: int
-    mean_nm: float | None = None
-    offset_C: float | None = None
-
-
-@dataclass(frozen=True)
-class LotRecord:
-    """Everything the history keeps about one lot.
-
-    Attributes
-    ----------
-    lot_id : str
-        Lot id (non-empty).
-    furnace : str
-        Furnace name; ``""`` when the lot file names none.
-    run_date : str or None
-        Run date (or date and time), ISO 8601, e.g. ``"2026-11-30"``.
-    recipe : list of dict or None
-        The recipe as run: steps with ``name``, ``ambient``, ``minutes`` and ``at_C`` or
-        ``from_C``/``to_C`` (minutes, degrees Celsius).
-    advice : dict or None
-        The advice the lot produced (``advice.json``).
-    lot_nc_path : str or None
-        Absolute path of the lot's ``lot.nc``.
-    lot_nc_sha256 : str or None
-        SHA-256 of that file (hex).
-    lot_mean_nm : float or None
-        Mean of the usable product wafer means, nm.
-    wtw_pct : float or None
-        Wafer-to-wafer non-uniformity of the product wafers, 100 s / mean, percent.
-    wiw_mean_pct : float or None
-        Mean within-wafer non-uniformity of the usable product wafers, percent.
-    target_nm : float or None
-        Target thickness, nm.
-    tolerance_pct : float or None
-        Spec half-width, percent of the target.
-    applied_trims_C : dict or None
-        Zone name -> trim in force during the run, K (None: not known, taken as 0).
-    wafers : tuple of WaferSummary
-    slots : tuple of SlotSummary
-    recorded_at : str or None
-        When the lot was recorded (UTC, ISO 8601); set by the store.
-
-    Notes
-    -----
-    `recipe_sha256` is derived from ``recipe``; it is not a field.
-
-    References
-    ----------
-    .. [1] Wafer-to-wafer and within-wafer non-uniformity: common practice, no source.
-    """
-
-    lot_id: str
-    furnace: str = ""
-    run_date: str | None = None
-    recipe: list | None = None
-    advice: dict | None = None
-    lot_nc_path: str | None = None
-    lot_nc_sha256: str | None = None
-    lot_mean_nm: float | None = None
-    wtw_pct: float | None = None
-    wiw_mean_pct: float | None = None
-    target_nm: float | None = None
-    tolerance_pct: float | None = None
-    applied_trims_C: dict | None = None
-    wafers: tuple = ()
-    slots: tuple = ()
-    recorded_at: str | None = None
-
-    @property
-    def recipe_sha256(self):
-        """SHA-256 (hex) of the canonical JSON of the recipe, None without a recipe."""
-        return recipe_sha256(self.recipe)
-
-    @property
-    def recipe_json(self):
-        """The recipe as canonical JSON text (sorted keys, no spaces), or None."""
-        return _canonical_json(self.recipe)
-
-
-def _canonical_json(value):
-    if value is None:
-        return None
-    return json.dumps(value, sort_keys=True, separators=(",", ":"), allow_nan=False,
-                      ensure_ascii=False)
-
-
-def recipe_sha256(recipe):
-    """SHA-256 of a recipe, independent of key order and whitespace.
-
-    Parameters
-    ----------
-    recipe : list of dict or None
-        Recipe steps (minutes, degrees Celsius).
-
-    Returns
-    -------
-    str or None
-        Hex digest of the UTF-8 canonical JSON (sorted keys, ``","`` and ``":"``
-        separators), None for None.
-
-    References
-    ----------
-    .. [1] FIPS PUB 180-4, Secure Hash Standard.
-    """
-    text = _canonical_json(recipe)
-    return None if text is None else hashlib.sha256(text.encode("utf-8")).hexdigest()
-
-
-def file_sha256(path, chunk=1 << 20):
-    """SHA-256 (hex) of a file's bytes, read in chunks of ``chunk`` bytes.
-
-    References
-    ----------
-    .. [1] FIPS PUB 180-4, Secure Hash Standard.
-    """
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(chunk), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
-def _num(value, name):
-    """float or None (None, NaN and +/-inf are missing)."""
-    if value is None:
-        return None
-    if isinstance(value, bool):
-        raise FilmmapInputError(f"{name} must be a number, got {value!r}", field=name)
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise FilmmapInputError(f"{name} must be a number, got {value!r}", field=name) from None
-    return v if math.isfinite(v) else None
-
-
-def _int(value, name, optional=False):
-    if value is None and optional:
-        return None
-    try:
-        f = float(value)
-    except (TypeError, ValueError):
-        raise FilmmapInputError(f"{name} must be a whole number, got {value!r}",
-                                field=name) from None
-    if optional and not math.isfinite(f):
-        return None
-    if isinstance(value, bool) or not math.isfinite(f) or f != round(f):
-        raise FilmmapInputError(f"{name} must be a whole number, got {value!r}", field=name)
-    return int(f)
-
-
-def _run_date(value):
-    if value is None or value == "":
-        return None
-    if isinstance(value, (_dt.date, _dt.datetime)):
-        return value.isoformat()
-    text = str(value).strip()
-    try:
-        if len(text) == 10:
-            _dt.date.fromisoformat(text)
-        else:
-            _dt.datetime.fromisoformat(text)
-    except ValueError:
-        raise FilmmapInputError(f"run date {value!r} is not an ISO 8601 date such as "
-                                "2026-11-30", field="run_date") from None
-    return text
-
-
-def _json_obj(value, name, kind):
-    if value is None:
-        return None
-    if isinstance(value, str):
-        try:
-            value = json.loads(value)
-        except ValueError as exc:
-            raise FilmmapInputError(f"{name} is not valid JSON: {exc}", field=name) from None
-    if not isinstance(value, kind):
-        raise FilmmapInputError(f"{name} must be a JSON {kind.__name__}, got "
-                                f"{type(value).__name__}", field=name)
-    try:  # must serialise as strict JSON; also a deep copy
-        return json.loads(json.dumps(value, allow_nan=False))
-    except (TypeError, ValueError) as exc:
-        raise FilmmapInputError(f"{name} cannot be stored as JSON: {exc}", field=name) from None
-
-
-def _as_dataclass(cls, item, name):
-    if isinstance(item, cls):
-        data = {f.name: getattr(item, f.name) for f in fields(cls)}
-    elif isinstance(item, Mapping):
-        unknown = set(item) - {f.name for f in fields(cls)}
-        if unknown:
-            raise FilmmapInputError(f"{name}: unknown key(s) {sorted(unknown)}", field=name)
-        data = dict(item)
-    else:
-        raise FilmmapInputError(f"{name}: expected a {cls.__name__} or a mapping, got "
-                                f"{type(item).__name__}", field=name)
-    return data
-
-
-def make_record(record):
-    """Check a lot record and return it as a normalised `LotRecord`.
-
-    Parameters
-    ----------
-    record : LotRecord or mapping
-        The fields of `LotRecord` (``wafers`` and ``slots`` as `WaferSummary` /
-        `SlotSummary` objects or mappings).  Unknown keys are refused.
-
-    Returns
-    -------
-    LotRecord
-        Missing or non-finite numbers as None, the run date as ISO text, the furnace as
-        a string (``""`` when unknown), wafers and slots sorted by slot (then wafer id).
-
-    Raises
-    ------
-    FilmmapInputError
-        For an empty lot id, a bad run date, a wafer or slot listed twice, or a value
-        of the wrong type.
-
-    References
-    ----------
-    .. [1] ISO 8601 dates, via `datetime.date.fromisoformat`.
-    """
-    data = _as_dataclass(LotRecord, record, "record")
-    lot_id = data.get("lot_id")
-    if not isinstance(lot_id, str) or not lot_id.strip():
-        raise FilmmapInputError(f"lot id must be a non-empty string, got {lot_id!r}",
-                                field="lot_id")
-    furnace = data.get("furnace") or ""
-    if not isinstance(furnace, str):
-        raise FilmmapInputError(f"furnace must be a string, got {furnace!r}", field="furnace")
-    wafers = []
-    for i, w in enumerate(data.get("wafers") or ()):
-        d = _as_dataclass(WaferSummary, w, f"wafers[{i}]")
-        wid = d.get("wafer")
-        if not isinstance(wid, str) or not wid:
-            raise FilmmapInputError(f"wafers[{i}]: wafer id must be a non-empty string, got "
-                                    f"{wid!r}", field=f"wafers[{i}].wafer")
-        wafers.append(WaferSummary(
-            wafer=wid, slot=_int(d.get("slot"), f"wafers[{i}].slot"),
-            role=str(d.get("role", "product")),
-            mean_nm=_num(d.get("mean_nm"), f"wafers[{i}].mean_nm"),
-            sigma_nm=_num(d.get("sigma_nm"), f"wafers[{i}].sigma_nm"),
-            nu_pct=_num(d.get("nu_pct"), f"wafers[{i}].nu_pct"),
-            sites_used=_int(d.get("sites_used"), f"wafers[{i}].sites_used", optional=True)))
-    ids = [w.wafer for w in wafers]
-    if len(set(ids)) != len(ids):
-        dup = sorted({v for v in ids if ids.count(v) > 1})
-        raise FilmmapInputError(f"wafer(s) {dup} listed twice", field="wafers")
-    slots = []
-    for i, s in enumerate(data.get("slots") or ()):
-        d = _as_dataclass(SlotSummary, s, f"slots[{i}]")
-        slots.append(SlotSummary(slot=_int(d.get("slot"), f"slots[{i}].slot"),
-                                 mean_nm=_num(d.get("mean_nm"), f"slots[{i}].mean_nm"),
-                                 offset_C=_num(d.get("offset_C"), f"slots[{i}].offset_C")))
-    nums = [s.slot for s in slots]
-    if len(set(nums)) != len(nums):
-        raise FilmmapInputError(f"slot(s) {sorted({v for v in nums if nums.count(v) > 1})} "
-                                "listed twice", field="slots")
-    trims = _json_obj(data.get("applied_trims_C"), "applied_trims_C", dict)
-    if trims is not None:
-        trims = {str(k): _num(v, f"applied_trims_C.{k}") for k, v in trims.items()}
-    return LotRecord(
-        lot_id=lot_id, furnace=furnace, run_date=_run_date(data.get("run_date")),
-        recipe=_json_obj(data.get("recipe"), "recipe", list),
-        advice=_json_obj(data.get("advice"), "advice", dict),
-        lot_nc_path=None if data.get("lot_nc_path") is None else str(data["lot_nc_path"]),
-        lot_nc_sha256=data.get("lot_nc_sha256"),
-        lot_mean_nm=_num(data.get("lot_mean_nm"), "lot_mean_nm"),
-        wtw_pct=_num(data.get("wtw_pct"), "wtw_pct"),
-        wiw_mean_pct=_num(data.get("wiw_mean_pct"), "wiw_mean_pct"),
-        target_nm=_num(data.get("target_nm"), "target_nm"),
-        tolerance_pct=_num(data.get("tolerance_pct"), "tolerance_pct"),
-        applied_trims_C=trims,
-        wafers=tuple(sorted(wafers, key=lambda w: (w.slot, w.wafer))),
-        slots=tuple(sorted(slots, key=lambda s: s.slot)),
-        recorded_at=data.get("recorded_at"))
 
 
 # --------------------------------------------------------------------------- location
@@ -524,7 +182,7 @@ def _migrate_1_to_2(con):
 
 def _num_or_none(v):
     try:
-        return _num(v, "value")
+        return finite_or_none(v, "value")
     except FilmmapInputError:
         return None
 
@@ -852,9 +510,9 @@ def record_lot(db_path, record, *, busy_timeout_s=DEFAULT_BUSY_TIMEOUT_S):
             "wiw_mean_pct, target_nm, tolerance_pct, applied_trims_json) "
             "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (rec.lot_id, rec.furnace, rec.run_date, recorded_at, rec.recipe_json,
-             rec.recipe_sha256, _canonical_json(rec.advice), rec.lot_nc_path, rec.lot_nc_sha256,
+             rec.recipe_sha256, canonical_json(rec.advice), rec.lot_nc_path, rec.lot_nc_sha256,
              rec.lot_mean_nm, rec.wtw_pct, rec.wiw_mean_pct, rec.target_nm, rec.tolerance_pct,
-             _canonical_json(rec.applied_trims_C)))
+             canonical_json(rec.applied_trims_C)))
         ref = cur.lastrowid
         con.executemany(
             "INSERT INTO wafers (lot_ref, wafer, slot, role, mean_nm, sigma_nm, nu_pct, "
@@ -936,153 +594,3 @@ def lots(db_path=None, furnace=None):
             wafers=tuple(wafers.get(d["id"], ())), slots=tuple(slots.get(d["id"], ())),
             recorded_at=d["recorded_at"]))
     return out
-
-
-# --------------------------------------------------------------------------- from OUTDIR
-
-def _recipe_from_config(config):
-    steps = []
-    for s in config.recipe:
-        d = {"name": s.name, "ambient": s.ambient, "minutes": float(s.minutes)}
-        if s.at_C is not None:
-            d["at_C"] = float(s.at_C)
-        if s.from_C is not None:
-            d["from_C"], d["to_C"] = float(s.from_C), float(s.to_C)
-        steps.append(d)
-    return steps or None
-
-
-def _lot_file_from_attrs(attrs):
-    """(path, sha256) of the lot file recorded in lot.nc, or (None, None)."""
-    try:
-        inputs = json.loads(attrs.get("input_files_sha256", "[]"))
-        first = inputs[0]
-        return Path(first["file"]), str(first["sha256"])
-    except (ValueError, TypeError, KeyError, IndexError):
-        return None, None
-
-
-def _recipe_and_target_from_lot_file(path, sha256):
-    """Recipe steps, target and tolerance from the lot file, when it is unchanged."""
-    if path is None or not path.is_file() or file_sha256(path) != sha256:
-        return None, None, None
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeError, tomllib.TOMLDecodeError):
-        return None, None, None
-    steps = []
-    for s in (data.get("recipe") or {}).get("step") or []:
-        d = {k: s[k] for k in ("name", "ambient", "minutes", "at_C", "from_C", "to_C") if k in s}
-        for k in ("minutes", "at_C", "from_C", "to_C"):
-            if k in d:
-                d[k] = float(d[k])
-        steps.append(d)
-    target = data.get("target") or {}
-    return (steps or None, target.get("thickness_nm"), target.get("tolerance_pct"))
-
-
-def record_from_outputs(outdir, config=None, *, applied_trims_C=None, min_sites=None):
-    """Build the history record of a reduced lot from its output folder.
-
-    Parameters
-    ----------
-    outdir : str or path-like
-        The folder ``filmmap reduce`` wrote: ``lot.nc`` is required, ``advice.json``
-        is used when present.
-    config : filmmap.io.lotfile.LotConfig, optional
-        The lot file as read by reduce: gives the recipe, target and tolerance.  Without
-        it they are read from the lot file named in ``lot.nc`` (its first input file),
-        provided that file still exists with the SHA-256 recorded there; otherwise the
-        recipe is None and the target comes from the advice.
-    applied_trims_C : mapping, optional
-        Zone name -> trim in force during this run, K (for run-to-run control).
-    min_sites : int, optional
-        Wafers with fewer usable sites are left out of the lot figures (default
-        `filmmap.lotstats.exclusion.DEFAULT_MIN_SITES`, the threshold the reduce pipeline
-        uses for lot statistics and advice).
-
-    Returns
-    -------
-    LotRecord
-        ``lot_mean_nm`` and ``wtw_pct`` over the usable product wafers (grand mean and
-        100 s / mean with the n - 1 standard deviation, `filmmap.lotstats.wtw`),
-        ``wiw_mean_pct`` the mean of their ``nu_pct``; one `SlotSummary` per wafer with
-        the advice's effective offset of its slot.
-
-    Raises
-    ------
-    FilmmapInputError
-        When ``lot.nc`` is missing or lacks the pinned variables, or ``advice.json`` is
-        not valid JSON.
-
-    References
-    ----------
-    .. [1] Non-uniformity as 100 sigma / mean with the n - 1 sample standard deviation:
-       common practice, no source.
-    """
-    import numpy as np
-    import xarray as xr
-
-    from filmmap.lotstats.exclusion import lot_means, usable_wafers
-    from filmmap.lotstats.wtw import wafer_to_wafer
-
-    if min_sites is None:
-        from filmmap.lotstats.exclusion import DEFAULT_MIN_SITES as min_sites
-    outdir = Path(outdir).absolute()
-    nc = outdir / "lot.nc"
-    if not nc.is_file():
-        raise FilmmapInputError("no lot.nc in the output folder; run filmmap reduce first",
-                                file=outdir)
-    try:
-        with xr.open_dataset(nc) as ds:
-            attrs = dict(ds.attrs)
-            wafer = [str(w) for w in ds["wafer"].values]
-            slot = ds["slot"].values.astype(int)
-            role = ([str(r) for r in ds["role"].values] if "role" in ds.coords
-                    else ["product"] * len(wafer))
-            mean = ds["mean_nm"].values.astype(float)
-            sigma = ds["sigma_nm"].values.astype(float)
-            nu = ds["nu_pct"].values.astype(float)
-            used_sites = ds["sites_used"].values
-    except KeyError as exc:
-        raise FilmmapInputError(f"lot.nc lacks variable {exc}", file=nc) from None
-    except (OSError, ValueError) as exc:
-        raise FilmmapInputError(f"cannot read lot.nc: {exc}", file=nc) from None
-
-    advice = None
-    adv_path = outdir / "advice.json"
-    if adv_path.is_file():
-        try:
-            advice = json.loads(adv_path.read_text(encoding="utf-8"))
-        except ValueError as exc:
-            raise FilmmapInputError(f"advice.json is not valid JSON: {exc}",
-                                    file=adv_path) from None
-    by_slot = (advice or {}).get("effective_offset_C_by_slot") or {}
-
-    if config is not None:
-        recipe = _recipe_from_config(config)
-        target = config.target.thickness_nm if config.target is not None else None
-        tol = config.target.tolerance_pct if config.target is not None else None
-    else:
-        recipe, target, tol = _recipe_and_target_from_lot_file(*_lot_file_from_attrs(attrs))
-    if target is None and advice is not None:
-        target = advice.get("target_nm")
-
-    usable = usable_wafers(used_sites, min_sites)
-    m_use = lot_means(mean, used_sites, min_sites)
-    wtw = wafer_to_wafer(wafer, slot, role, m_use, sigma)
-    prod = np.array([r == "product" for r in role]) & usable & np.isfinite(mean)
-    nu_p = nu[prod & np.isfinite(nu)]
-    wafers = [WaferSummary(wafer=w, slot=int(s), role=r, mean_nm=float(m), sigma_nm=float(sg),
-                           nu_pct=float(n), sites_used=int(u))
-              for w, s, r, m, sg, n, u in zip(wafer, slot, role, mean, sigma, nu, used_sites)]
-    slots = [SlotSummary(slot=int(s), mean_nm=float(m), offset_C=by_slot.get(str(int(s))))
-             for s, m in zip(slot, m_use)]
-    return make_record(LotRecord(
-        lot_id=str(attrs.get("lot_id", "")), furnace=str(attrs.get("furnace", "") or ""),
-        run_date=attrs.get("run_date") or None, recipe=recipe, advice=advice,
-        lot_nc_path=str(nc), lot_nc_sha256=file_sha256(nc),
-        lot_mean_nm=wtw.grand_mean_nm, wtw_pct=wtw.wtw_nu_pct,
-        wiw_mean_pct=float(np.mean(nu_p)) if nu_p.size else None,
-        target_nm=target, tolerance_pct=tol, applied_trims_C=applied_trims_C,
-        wafers=tuple(wafers), slots=tuple(slots)))

@@ -197,6 +197,24 @@ class LotView:
         return [w for w in self.wafers if w.role == "product"]
 
     @property
+    def wiw_mean_pct(self):
+        """Mean within-wafer non-uniformity (WIW) of the lot, percent; NaN without one.
+
+        The mean of ``nu_pct`` over the product wafers counted in the lot statistics
+        (``in_lot_stats``: a usable mean, `filmmap.lotstats.exclusion`) whose ``nu_pct``
+        is finite - the same wafers as the grand mean and WTW. The run history charts it
+        per lot.
+
+        References
+        ----------
+        .. [1] Within-wafer non-uniformity averaged over a lot: common practice, no source.
+        """
+        nu = np.array([w.nu_pct for w in self.wafers if w.role == "product" and w.in_lot_stats],
+                      dtype=float)
+        nu = nu[np.isfinite(nu)]
+        return float(np.mean(nu)) if nu.size else math.nan
+
+    @property
     def failure_counts(self):
         """``{reason: count}`` of the failed sites (reason = text before the first ':')."""
         return count_causes(f.note for f in self.failed_sites)

@@ -24,6 +24,8 @@ Rooms, one job each:
   width, a calibrated profile from an advice.json) and the checks of what-if values.
 - `export`: the tables of an existing lot.nc (``filmmap export``).
 - `demo`: the invented demo lot.
+- `history_report`: the run-history page, its charts and the run-to-run estimate
+  (``filmmap history``).
 
 Names are imported on first use (PEP 562), so ``import filmmap.pipeline`` stays light.
 """
@@ -39,12 +41,13 @@ _EXPORTS = {
     "write_lot": "lot_files", "WrittenLot": "lot_files", "staged_output": "publishing",
     "FAULT_ENV": "publishing", "FAULT_POINTS": "publishing",
     "reduce_to_folder": "run", "reduce_many": "run", "write_advice": "run",
-    "record_history": "run", "complete_pending_record": "run",
+    "record_history": "run", "history_record": "run", "complete_pending_record": "run",
     "discard_pending_record": "run", "record_reduced_lot": "run",
     "run_to_run_estimate": "run", "HistoryOptions": "run", "PENDING_RECORD": "run",
     "ADVICE_FORMAT": "run", "read_lots": "run",
     "export_lot": "export",
     "generate_demo_lot": "demo",
+    "write_history_report": "history_report", "HistoryReport": "history_report",
 }
 
 __all__ = sorted(_EXPORTS)

@@ -261,8 +261,6 @@ def write_advice(config, written, folder, rate_factors=None, **options):
     return advice
 
 
-
-
 @dataclass(frozen=True)
 class LotTask:
     """One lot of a many-lot run: what a worker process or a Dask task needs (picklable)."""
@@ -284,10 +282,14 @@ def _reduce_one(task):
                                                    figure_workers=1, protect=task.protect,
                                                    pending_record=task.pending_record,
                                                    config=task.config)
+    # the history record is made here, from the lot view in memory: the caller records it
+    record = (history_record(written, reduction.config,
+                             task.pending_record.get("applied_trims_C"))
+              if task.pending_record is not None else None)
     return dict(lotfile=str(task.lotfile), outdir=str(task.outdir),
                 lot_id=reduction.config.lot.id, n_wafers=written.n_wafers,
                 n_sites=written.n_sites, n_failed=written.n_failed, mean_nm=written.mean_nm,
-                seconds=seconds)
+                seconds=seconds, record=record)
 
 
 def read_lots(lotfiles):
@@ -429,11 +431,40 @@ def reduce_many(lotfiles, outroot, workers=None, scheduler=None, figures=True,
     return results
 
 
-def record_history(outdir, config=None, db_path=None, applied_trims_C=None):
+def history_record(written, config, applied_trims_C=None):
+    """The run-history record of a lot reduced in this process, from its result in memory.
+
+    Parameters
+    ----------
+    written : WrittenLot
+        As `reduce_to_folder` returns it, published: its lot view (``view``) and advice
+        (``advice``) give every figure (`filmmap.history.records.record_from_view`); only
+        the SHA-256 of the published ``lot.nc`` is read from disk.
+    config : LotConfig
+        The lot file as read: its recipe is recorded.
+    applied_trims_C : mapping, optional
+        Zone name -> trim in force during the run, K.
+
+    Returns
+    -------
+    filmmap.history.records.LotRecord
+    """
+    from filmmap.history.records import file_sha256, recipe_steps, record_from_view
+
+    nc = Path(written.outdir).absolute() / "lot.nc"
+    return record_from_view(written.view, written.advice, recipe_steps(config), lot_nc_path=nc,
+                            lot_nc_sha256=file_sha256(nc), applied_trims_C=applied_trims_C)
+
+
+def record_history(outdir, config=None, db_path=None, applied_trims_C=None, *, record=None):
     """Record a reduced lot (its published OUTDIR) in the run history; True if it replaced one.
 
-    Recording is idempotent: the same lot and furnace replace their earlier record.  Once
-    the record is committed, the folder's `PENDING_RECORD` marker is removed.
+    ``record`` is the lot's record made in memory (`history_record`); without it (results
+    published by an earlier run) the record is rebuilt from OUTDIR
+    (`filmmap.history.importing.record_from_outputs`, with ``config`` and
+    ``applied_trims_C``).  Recording is idempotent: the same lot and furnace replace their
+    earlier record.  Once the record is committed, the folder's `PENDING_RECORD` marker is
+    removed.
 
     Raises
     ------
@@ -443,9 +474,11 @@ def record_history(outdir, config=None, db_path=None, applied_trims_C=None):
     """
     import sqlite3
 
-    from filmmap.history import record_from_outputs, record_lot
+    from filmmap.history.importing import record_from_outputs
+    from filmmap.history.store import record_lot
 
-    record = record_from_outputs(outdir, config, applied_trims_C=applied_trims_C)
+    if record is None:
+        record = record_from_outputs(outdir, config, applied_trims_C=applied_trims_C)
     try:
         replaced = record_lot(db_path, record)
     except sqlite3.Error as exc:
@@ -572,7 +605,8 @@ class RecordOutcome:
     reason: str = ""
 
 
-def record_reduced_lot(outdir, config, db_path=None, applied_trims_C=None, n_ok=None):
+def record_reduced_lot(outdir, config, db_path=None, applied_trims_C=None, n_ok=None, *,
+                       record=None):
     """Record a published lot in the run history, unless it has no thickness at all.
 
     Parameters
@@ -589,6 +623,8 @@ def record_reduced_lot(outdir, config, db_path=None, applied_trims_C=None, n_ok=
         Accepted sites of the lot; with none the lot is not recorded (a lot without one
         thickness has no statistics: recording it would poison the trends) and its
         pending-record marker is removed.
+    record : LotRecord, optional
+        The lot's record made in memory (`history_record`); None rebuilds it from OUTDIR.
 
     Returns
     -------
@@ -597,7 +633,7 @@ def record_reduced_lot(outdir, config, db_path=None, applied_trims_C=None, n_ok=
     if n_ok is not None and n_ok <= 0:
         discard_pending_record(outdir)
         return RecordOutcome(False, reason="every fit failed (see fit_note in lot.nc)")
-    replaced, record = record_history(outdir, config, db_path, applied_trims_C)
+    replaced, record = record_history(outdir, config, db_path, applied_trims_C, record=record)
     return RecordOutcome(True, bool(replaced), record)
 
 

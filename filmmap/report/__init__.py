@@ -23,6 +23,7 @@ from pathlib import Path
 _EXPORTS = {
     "CAUTION_PARAGRAPHS": "cautions", "CAUTIONS": "cautions", "CAUTIONS_TITLE": "cautions",
     "draw_fit_quality": "fitquality", "fit_quality_figure": "fitquality",
+    "history_html": "history_page", "write_history_html": "history_page",
     "render_html": "html", "write_html_report": "html",
     "ReportImages": "images",
     "BASE_LOT_PAGES": "pdf", "lot_page_count": "pdf", "pdf_page_plan": "pdf",
@@ -92,5 +93,5 @@ __all__ = [
     "SUMMARY_CSV_COLUMNS", "slot_profile_figure", "draw_slot_profile", "fit_quality_figure",
     "draw_fit_quality", "render_html", "write_html_report", "write_pdf_report", "pdf_page_plan",
     "lot_page_count", "BASE_LOT_PAGES", "ReportImages", "CAUTIONS", "CAUTION_PARAGRAPHS",
-    "CAUTIONS_TITLE", "write_reports",
+    "CAUTIONS_TITLE", "write_reports", "history_html", "write_history_html",
 ]

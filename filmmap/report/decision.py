@@ -27,6 +27,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+from filmmap.report.cautions import SHORT_CAUTION
 from filmmap.report.formatting import is_number
 
 #: Failed plus suspect sites, as a fraction of the measured sites, above which a lot that is
@@ -256,9 +257,6 @@ class Decision:
         return out
 
 
-#: The one-line caution under the action.
-SHORT_CAUTION = ("Advisory only: any recipe or heater-zone change needs the process owner's "
-                 "approval, within the furnace's qualified limits (see the cautions).")
 
 
 def key_numbers(view):

@@ -17,8 +17,6 @@ kept on one page.
 
 from __future__ import annotations
 
-import base64
-import html
 from pathlib import Path
 
 from filmmap.io.atomic import atomic_path
@@ -30,6 +28,8 @@ from filmmap.report.decision import (IN_SPEC, OUT_OF_SPEC, UNITS_NOTE, advice_ca
 from filmmap.report.formatting import (MISSING, compact_dict_text, flag_text, fmt, fmt_in_spec,
                                        fmt_wafer, is_long_scalar_dict, scalar_text, wtw_rows)
 from filmmap.report.images import ReportImages
+from filmmap.report.markup import e
+from filmmap.report.markup import img_tag as _img
 from filmmap.report.provenance import provenance
 
 #: id and alt text of the slot-profile image.
@@ -109,21 +109,6 @@ details summary { cursor: pointer; color: var(--accent); margin: 0.4rem 0; }
   .decision, .verdict, .cautions, th { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
 }
 """
-
-
-def e(value):
-    """Escape any value for HTML text or an attribute (quotes included)."""
-    return html.escape(str(value), quote=True)
-
-
-def _data_uri(png):
-    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
-
-
-def _img(png, alt, img_id=None, width=None):
-    attrs = f' id="{e(img_id)}"' if img_id else ""
-    attrs += f' width="{int(width)}"' if width else ""
-    return f'<img{attrs} alt="{e(alt)}" src="{_data_uri(png)}">'
 
 
 def _cell(text, cls=None):
