@@ -45,10 +45,8 @@ the line (and column) concerned and saying what was expected.
 
 from __future__ import annotations
 
-import codecs
 import csv
 import difflib
-import hashlib
 import math
 import os
 import re
@@ -59,12 +57,10 @@ import numpy as np
 
 from filmmap.bounds import MAX_BOAT_SLOTS, MAX_ID_CHARS, MAX_SITES_PER_WAFER, MAX_WAVELENGTHS
 from filmmap.errors import FilmmapInputError
+from filmmap.io.textfile import DEFAULT_MAX_BYTES, read_text_file
 
 __all__ = ["SpectraTable", "Spectrum", "read_spectra_csv", "read_spectrum_file", "check_tables",
            "TECHNIQUES", "REFLECTANCE_UNITS", "REQUIRED_COLUMNS", "DEFAULT_MAX_BYTES"]
-
-#: Largest input file read by default (bytes); larger files are refused.
-DEFAULT_MAX_BYTES = 512 * 2**20
 
 #: Techniques a spectra file can be read as.
 TECHNIQUES = ("reflectance", "ellipsometry", "intensity")
@@ -197,56 +193,6 @@ class Spectrum:
 
 
 # --------------------------------------------------------------------------- file level
-
-def _read_bytes(path, max_bytes):
-    """Read a whole file read-only, refusing directories and files over ``max_bytes``."""
-    if max_bytes is None or not int(max_bytes) > 0:
-        raise ValueError("max_bytes must be a positive number of bytes")
-    max_bytes = int(max_bytes)
-    try:
-        size = os.stat(path).st_size
-        if size > max_bytes:
-            raise FilmmapInputError(
-                f"file is {size} bytes, larger than the limit of {max_bytes} bytes; "
-                "pass a larger max_bytes if this file is genuine", file=path)
-        with open(path, "rb") as fh:
-            raw = fh.read(max_bytes + 1)
-    except FilmmapInputError:
-        raise
-    except IsADirectoryError:
-        raise FilmmapInputError("expected a file, found a directory", file=path) from None
-    except OSError as exc:
-        raise FilmmapInputError(f"cannot read file: {exc.strerror or exc}", file=path) from None
-    if len(raw) > max_bytes:
-        raise FilmmapInputError(f"file grew beyond the limit of {max_bytes} bytes while reading",
-                                file=path)
-    return raw
-
-
-def _decode(raw, path):
-    """Bytes -> text (UTF-8, optional BOM); say so when the file is not UTF-8 text."""
-    if raw.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
-        raise FilmmapInputError("file is UTF-16 encoded; expected UTF-8 text (save as UTF-8 CSV)",
-                                file=path, line=1)
-    nul = raw.find(b"\x00")
-    if nul >= 0:
-        raise FilmmapInputError(
-            "file contains NUL bytes: binary data (or UTF-16 text without a byte-order mark), "
-            "not a UTF-8 CSV text file",
-            file=path, line=raw.count(b"\n", 0, nul) + 1)
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise FilmmapInputError(
-            f"not UTF-8 text: invalid byte 0x{raw[exc.start]:02x} at byte offset {exc.start}; "
-            "expected a UTF-8 CSV text file (binary data or another encoding?)",
-            file=path, line=raw.count(b"\n", 0, exc.start) + 1) from None
-    if text.startswith("\ufeff"):
-        text = text[1:]
-    if "\r" in text:
-        text = text.replace("\r\n", "\n").replace("\r", "\n")
-    return text
-
 
 def _header_and_rows(text, path):
     """Split text into the header line and the (line number, text) of each data row."""
@@ -680,9 +626,8 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
         raise ValueError(f"reflectance_unit must be one of {REFLECTANCE_UNITS}, "
                          f"got {reflectance_unit!r}")
     path = Path(path)
-    raw = _read_bytes(path, max_bytes)
-    sha = hashlib.sha256(raw).hexdigest()
-    text = _decode(raw, path)
+    source = read_text_file(path, max_bytes)
+    sha, text = source.sha256, source.text
     hline, header_text, rows, numbers = _header_and_rows(text, path)
     names, fixed, spectral = _parse_header(header_text, rows[0] if rows else None, path, hline,
                                            technique, REQUIRED_COLUMNS)
@@ -780,9 +725,8 @@ def read_spectrum_file(path, max_bytes=DEFAULT_MAX_BYTES):
         Any problem with the file, naming the file and line.
     """
     path = Path(path)
-    raw = _read_bytes(path, max_bytes)
-    sha = hashlib.sha256(raw).hexdigest()
-    text = _decode(raw, path)
+    source = read_text_file(path, max_bytes)
+    sha, text = source.sha256, source.text
     hline, header_text, rows, numbers = _header_and_rows(text, path)
     names, _, spectral = _parse_header(header_text, rows[0] if rows else None, path, hline,
                                        "intensity", ())

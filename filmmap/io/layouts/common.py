@@ -1,4 +1,4 @@
-"""What every input layout shares: the maps, the text reading, the checks and the table built.
+"""What every input layout shares: the maps, the line and cell parsing, the checks and the table built.
 
 A layout reader turns one file into a `filmmap.io.spectra_csv.SpectraTable` (rows are
 sites). What the file does not carry (slot, x_mm, y_mm, sometimes the wafer and the
@@ -13,14 +13,13 @@ reverse), ellipsometric angles in radians or Delta outside both conventions.
 
 from __future__ import annotations
 
-import hashlib
 import re
 from dataclasses import dataclass
 
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.spectra_csv import (DEFAULT_MAX_BYTES, SpectraTable, _decode, _read_bytes)
+from filmmap.io.spectra_csv import SpectraTable
 
 #: Largest wavelength (in the file's numbers) that is taken as micrometres, not nm:
 #: optical thickness metrology works at 190-2500 nm, i.e. 0.19-2.5 um, so a set of
@@ -54,12 +53,6 @@ class Maps:
     pattern: str | None = None
     site_map_file: str | None = None
     slot_map_file: str | None = None
-
-
-def read_text(path, max_bytes=DEFAULT_MAX_BYTES):
-    """(text, sha256) of a UTF-8 text file, read-only, with the readers' checks."""
-    raw = _read_bytes(path, max_bytes)
-    return _decode(raw, path), hashlib.sha256(raw).hexdigest()
 
 
 def data_lines(text):

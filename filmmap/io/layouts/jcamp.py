@@ -18,7 +18,8 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import build_table, fields_from_name, read_text
+from filmmap.io.layouts.common import build_table, fields_from_name
+from filmmap.io.textfile import read_text_file
 
 NAME = "jcamp"
 EXAMPLE = """\
@@ -44,7 +45,7 @@ def read(path, technique, unit, maps):
     except ImportError:
         raise FilmmapInputError("layout 'jcamp' needs the optional package: pip install "
                                 "'filmmap[jcamp]'", file=path, field="measurement.layout") from None
-    _text, sha = read_text(path)
+    sha = read_text_file(path).sha256
     try:
         d = jcamp.readfile(str(path))
     except Exception as exc:  # noqa: BLE001 - the package raises many kinds on bad files

@@ -15,7 +15,8 @@ import numpy as np
 
 from filmmap.errors import FilmmapInputError
 from filmmap.io.layouts.common import (build_table, data_lines, fields_from_name, integer,
-                                       number, read_text)
+                                       number)
+from filmmap.io.textfile import read_text_file
 
 NAME = "long"
 EXAMPLE = """\
@@ -32,7 +33,8 @@ _OPTIONAL = ("wafer", "slot", "x_mm", "y_mm")
 def read(path, technique, unit, maps):
     """One long CSV file as a `SpectraTable`."""
     path = Path(path)
-    text, sha = read_text(path)
+    source = read_text_file(path)
+    text, sha = source.text, source.sha256
     lines = data_lines(text)
     if not lines:
         raise FilmmapInputError("empty file; expected a header and one row per site and "

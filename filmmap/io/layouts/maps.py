@@ -26,7 +26,8 @@ import re
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import Maps, data_lines, integer, number, read_text
+from filmmap.io.layouts.common import Maps, data_lines, integer, number
+from filmmap.io.textfile import read_text_file
 
 CARTESIAN_COUNTS = tuple(k * k for k in range(1, 12))
 
@@ -69,7 +70,8 @@ def builtin_site_map(name, diameter_mm, edge_exclusion_mm):
 
 
 def _rows(path, columns):
-    text, sha = read_text(path)
+    source = read_text_file(path)
+    text, sha = source.text, source.sha256
     lines = data_lines(text)
     if not lines:
         raise FilmmapInputError(f"empty map; expected a header {','.join(columns)}", file=path)

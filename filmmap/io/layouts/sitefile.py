@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import (build_table, data_lines, fields_from_name, number,
-                                       read_text)
+from filmmap.io.layouts.common import build_table, data_lines, fields_from_name, number
+from filmmap.io.textfile import read_text_file
 
 NAME = "site-files"
 EXAMPLE = """\
@@ -33,7 +33,8 @@ _SPLIT = re.compile(r"\s*[,\t]\s*|\s+")
 def read(path, technique, unit, maps):
     """One site's file as a one-row `SpectraTable`."""
     path = Path(path)
-    text, sha = read_text(path)
+    source = read_text_file(path)
+    text, sha = source.text, source.sha256
     lines = data_lines(text)
     quantities = ("R",) if technique in ("reflectance", "intensity") else ("psi", "delta")
     ncol = 1 + len(quantities)

@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import (build_table, data_lines, fields_from_name, number,
-                                       read_text)
+from filmmap.io.layouts.common import build_table, data_lines, fields_from_name, number
+from filmmap.io.textfile import read_text_file
 
 NAME = "transposed"
 EXAMPLE = """\
@@ -33,7 +33,8 @@ _COLUMN = re.compile(r"(?:(R|psi|delta):)?(\d+)\Z")
 def read(path, technique, unit, maps):
     """One transposed CSV file (one wafer) as a `SpectraTable`."""
     path = Path(path)
-    text, sha = read_text(path)
+    source = read_text_file(path)
+    text, sha = source.text, source.sha256
     lines = data_lines(text)
     if len(lines) < 2:
         raise FilmmapInputError("expected a header and one row per wavelength", file=path)

@@ -18,7 +18,8 @@ import numpy as np
 
 from filmmap.errors import FilmmapInputError
 from filmmap.io.layouts.common import (build_table, check_wavelengths, data_lines,
-                                       fields_from_name, integer, number, read_text)
+                                       fields_from_name, integer, number)
+from filmmap.io.textfile import read_text_file
 from filmmap.io.spectra_csv import REQUIRED_COLUMNS, read_spectra_csv
 
 NAME = "wide"
@@ -43,7 +44,8 @@ def read(path, technique, unit, maps):
         table = read_spectra_csv(path, technique, unit)
         check_wavelengths(table.wavelength_nm, table.path, max(1, int(table.line[0]) - 1))
         return table
-    text, sha = read_text(path)
+    source = read_text_file(path)
+    text, sha = source.text, source.sha256
     lines = data_lines(text)
     return _read_mapped(path, sha, technique, unit, maps, lines,
                         [c.strip() for c in lines[0][1].split(",")])
