@@ -121,8 +121,8 @@ def _decode(raw, path, what, expected):
     nul = raw.find(b"\x00")
     if nul >= 0:
         raise FilmmapInputError(
-            f"{what} contains NUL bytes: binary data (or UTF-16 text without a byte-order "
-            f"mark), not {expected}", file=path, line=_line_at(raw, nul))
+            f"{what} contains NUL bytes: binary data, not {expected} (or UTF-16 text without "
+            "a byte-order mark)", file=path, line=_line_at(raw, nul))
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
