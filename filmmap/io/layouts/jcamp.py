@@ -22,6 +22,10 @@ from filmmap.io.layouts.common import build_table, fields_from_name
 from filmmap.io.textfile import read_text_file
 
 NAME = "jcamp"
+#: Techniques this layout reads (`filmmap.io.techniques`).
+TECHNIQUES = ("reflectance",)
+#: Whether each wafer lies whole in one file (False: a wafer spans several files).
+WAFER_PER_FILE = False
 EXAMPLE = """\
 ##TITLE= W2-04 site 3
 ##JCAMP-DX= 4.24
@@ -37,9 +41,6 @@ EXAMPLE = """\
 def read(path, technique, unit, maps):
     """One JCAMP-DX file as a one-row `SpectraTable`."""
     path = Path(path)
-    if technique != "reflectance":
-        raise FilmmapInputError("the jcamp layout holds reflectance spectra only; expected "
-                                "technique 'reflectance'", file=path, field="measurement.layout")
     try:
         import jcamp
     except ImportError:

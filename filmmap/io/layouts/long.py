@@ -16,9 +16,14 @@ import numpy as np
 from filmmap.errors import FilmmapInputError
 from filmmap.io.layouts.common import (build_table, data_lines, fields_from_name, integer,
                                        number)
+from filmmap.io.techniques import QUANTITIES
 from filmmap.io.textfile import read_text_file
 
 NAME = "long"
+#: Techniques this layout reads (`filmmap.io.techniques`).
+TECHNIQUES = ("reflectance", "ellipsometry")
+#: Whether each wafer lies whole in one file (False: a wafer spans several files).
+WAFER_PER_FILE = True
 EXAMPLE = """\
 wafer,site,wavelength_nm,R
 W2-04,1,400,0.2512
@@ -41,7 +46,7 @@ def read(path, technique, unit, maps):
                                 "wavelength", file=path)
     hline, header = lines[0]
     cols = [c.strip() for c in header.split(",")]
-    quantities = ("R",) if technique in ("reflectance", "intensity") else ("psi", "delta")
+    quantities = QUANTITIES[technique]
     known = ("site", "wavelength_nm") + quantities + _OPTIONAL
     for c in cols:
         if c not in known:

@@ -16,9 +16,14 @@ import numpy as np
 
 from filmmap.errors import FilmmapInputError
 from filmmap.io.layouts.common import build_table, data_lines, fields_from_name, number
+from filmmap.io.techniques import QUANTITIES
 from filmmap.io.textfile import read_text_file
 
 NAME = "site-files"
+#: Techniques this layout reads (`filmmap.io.techniques`).
+TECHNIQUES = ("reflectance", "ellipsometry")
+#: Whether each wafer lies whole in one file (False: a wafer spans several files).
+WAFER_PER_FILE = False
 EXAMPLE = """\
 # W2-04_site3.txt
 wavelength_nm,R
@@ -36,7 +41,7 @@ def read(path, technique, unit, maps):
     source = read_text_file(path)
     text, sha = source.text, source.sha256
     lines = data_lines(text)
-    quantities = ("R",) if technique in ("reflectance", "intensity") else ("psi", "delta")
+    quantities = QUANTITIES[technique]
     ncol = 1 + len(quantities)
     if lines and not re.match(r"[+-]?[\d.]", lines[0][1]):
         lines = lines[1:]          # a header of names

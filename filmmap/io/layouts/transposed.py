@@ -16,9 +16,14 @@ import numpy as np
 
 from filmmap.errors import FilmmapInputError
 from filmmap.io.layouts.common import build_table, data_lines, fields_from_name, number
+from filmmap.io.techniques import QUANTITIES
 from filmmap.io.textfile import read_text_file
 
 NAME = "transposed"
+#: Techniques this layout reads (`filmmap.io.techniques`).
+TECHNIQUES = ("reflectance", "ellipsometry")
+#: Whether each wafer lies whole in one file (False: a wafer spans several files).
+WAFER_PER_FILE = True
 EXAMPLE = """\
 wavelength_nm,1,2,3
 400,0.2512,0.2498,0.2505
@@ -44,7 +49,7 @@ def read(path, technique, unit, maps):
         raise FilmmapInputError(f"first column {cols[0]!r}; expected 'wavelength_nm' (a "
                                 "transposed layout: one row per wavelength)", file=path,
                                 line=hline, field=cols[0])
-    quantities = ("R",) if technique in ("reflectance", "intensity") else ("psi", "delta")
+    quantities = QUANTITIES[technique]
     where = {q: {} for q in quantities}   # quantity -> site -> column index
     for j, c in enumerate(cols[1:], start=1):
         m = _COLUMN.match(c)

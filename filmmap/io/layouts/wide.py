@@ -1,7 +1,7 @@
 """The wide CSV (filmmap's own, pinned): one row per site, ``wafer, slot, site, x_mm, y_mm, R@..``.
 
 Format: `filmmap.io.spectra_csv`. A file with every one of those columns is read by
-that (strict, fast) reader; this module adds the micrometre check, which the wide
+that (strict, fast) parser; this module adds the micrometre check, which the wide
 reader alone turns into a less helpful material-range error later.
 
 With maps, rows need only what the instrument writes: ``site`` and the spectral
@@ -19,10 +19,15 @@ import numpy as np
 from filmmap.errors import FilmmapInputError
 from filmmap.io.layouts.common import (build_table, check_wavelengths, data_lines,
                                        fields_from_name, integer, number)
-from filmmap.io.textfile import read_text_file
 from filmmap.io.spectra_csv import REQUIRED_COLUMNS, read_spectra_csv
+from filmmap.io.techniques import QUANTITIES
+from filmmap.io.textfile import read_text_file
 
 NAME = "wide"
+#: Techniques this layout reads (`filmmap.io.techniques`).
+TECHNIQUES = ("reflectance", "ellipsometry", "intensity")
+#: Whether each wafer lies whole in one file (False: a wafer spans several files).
+WAFER_PER_FILE = True
 EXAMPLE = """\
 wafer,slot,site,x_mm,y_mm,R@400,R@410,R@420
 W2-04,4,1,0.000,0.000,0.2512,0.2633,0.2741
@@ -67,7 +72,7 @@ def _peek_header(path, limit=1 << 16):
 
 def _read_mapped(path, sha, technique, unit, maps, lines, header):
     hline = lines[0][0]
-    quantities = ("R",) if technique == "reflectance" else ("psi", "delta")
+    quantities = QUANTITIES[technique]
     fixed, spectral = {}, {q: {} for q in quantities}
     for j, c in enumerate(header):
         m = _SPECTRAL.match(c)

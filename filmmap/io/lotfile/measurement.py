@@ -12,7 +12,7 @@ import math
 import re
 
 from filmmap.bounds import MAX_WAFER_DIAMETER_MM
-from filmmap.io.layouts import LAYOUTS
+from filmmap.io.layouts import LAYOUTS, layout_problem
 from filmmap.io.lotfile.paths import read_data_dir, relative_file, resolve_globs
 from filmmap.io.lotfile.reader import found
 from filmmap.io.lotfile.schema import LOT_TECHNIQUES, MeasurementConfig
@@ -104,11 +104,9 @@ def read_measurement(rd, doc, folder, allow_outside, exclude, require_files=True
 def _read_layout(rd, t, w, folder, allow_outside, technique, reference, diameter_mm):
     """``layout``, ``site_map``, ``slot_map``, ``file_pattern`` (`filmmap.io.layouts`)."""
     layout = rd.string(t, "layout", w, default="wide", choices=tuple(LAYOUTS))
-    if layout != "wide" and reference is not None:
-        rd.fail("raw intensities (reference_file) are read from the wide layout only",
-                f"{w}.layout")
-    if layout == "jcamp" and technique != "reflectance":
-        rd.fail("layout 'jcamp' holds reflectance spectra only", f"{w}.layout")
+    problem = layout_problem(layout, "intensity" if reference is not None else technique)
+    if problem:
+        rd.fail(problem, f"{w}.layout")
     # a map is a pattern name / CSV file (a string) or written inline (a table)
     site_map = (_inline_site_map(rd, t["site_map"], f"{w}.site_map", diameter_mm)
                 if isinstance(t.get("site_map"), dict)

@@ -168,8 +168,14 @@ class MeasurementConfig:
 
     @property
     def file_technique(self):
-        """Technique to read the data files with (`filmmap.io.read_spectra_csv`)."""
+        """Technique to read the data files with (`filmmap.io.read_spectra`)."""
         return "intensity" if self.raw_intensity else self.technique
+
+    @property
+    def file_unit(self):
+        """Unit of the reflectance in the data files (``"fraction"`` for raw counts, which
+        hold none)."""
+        return "fraction" if self.raw_intensity else self.reflectance_unit
 
 
 @dataclass(frozen=True)
