@@ -17,6 +17,7 @@ from filmmap.io.lotchecks import check_tables
 from filmmap.io.lotfile import (BoatConfig, CauchySpec, FurnaceConfig, LayerConfig, LotConfig,
                                 LotInfo, MeasurementConfig, RecipeStep, StackConfig, TargetConfig,
                                 Zone, read_lot_file)
+from filmmap.io.nktable import read_nk_table
 from filmmap.io.spectra import SpectraTable, Spectrum
 from filmmap.io.spectra_csv import read_spectra_csv, read_spectrum_file
 from filmmap.io.techniques import REFLECTANCE_UNITS, TECHNIQUES
@@ -25,7 +26,7 @@ from filmmap.io.textfile import DEFAULT_MAX_BYTES, read_text_file
 __all__ = [
     "read_spectra", "LAYOUTS", "TECHNIQUES", "REFLECTANCE_UNITS",
     "read_spectra_csv", "read_spectrum_file", "check_tables", "SpectraTable", "Spectrum",
-    "intensity_to_reflectance", "read_dark_and_reference",
+    "intensity_to_reflectance", "read_dark_and_reference", "read_nk_table",
     "DEFAULT_MAX_BYTES", "read_text_file",
     "read_lot_file", "LotConfig", "LotInfo", "MeasurementConfig", "StackConfig", "LayerConfig",
     "CauchySpec", "TargetConfig", "BoatConfig", "Zone", "FurnaceConfig", "RecipeStep",

@@ -7,7 +7,6 @@ user material defined in the layer by an n,k table (``nk_file``, read by
 
 from __future__ import annotations
 
-import csv
 import difflib
 
 import numpy as np
@@ -16,7 +15,8 @@ from filmmap.errors import FilmmapInputError
 from filmmap.io.lotfile.paths import relative_file
 from filmmap.io.lotfile.reader import found
 from filmmap.io.lotfile.schema import MAX_SEARCH_NM, CauchySpec, LayerConfig, StackConfig
-from filmmap.materials import Cauchy, Tabulated, available, get_material
+from filmmap.io.nktable import read_nk_table
+from filmmap.materials import Cauchy, available, get_material
 
 
 def read_stack(rd, doc, folder, allow_outside, lot_path):
@@ -67,13 +67,7 @@ def _read_layer(rd, t, where, folder, allow_outside, lot_path):
     if has_nk:
         rel = rd.string(t, "nk_file", where)
         nk_file = relative_file(rd, rel, f"{where}.nk_file", folder, allow_outside, "nk_file")
-        try:
-            model = Tabulated.from_csv(nk_file, name=name)
-        except FilmmapInputError:
-            raise
-        except (ValueError, csv.Error) as exc:
-            raise FilmmapInputError(f"cannot read n,k table: {exc}", file=nk_file,
-                                    field=f"{where}.nk_file") from None
+        model = read_nk_table(nk_file, name=name)
         source = "nk_file"
     elif has_cauchy:
         ct = rd.value(t, "cauchy", where, "table")
