@@ -169,7 +169,8 @@ def test_each_layout_declares_what_it_holds_and_the_entry_enforces_it(tmp_path):
     # the per-site layouts, and only they, let a wafer span files in the lot check
     assert set(PARTIAL_WAFER_LAYOUTS) == {"site-files", "jcamp"}
     assert layout_problem("long", "ellipsometry") is None
-    assert layout_problem("jcamp", "ellipsometry") == "layout 'jcamp' holds reflectance spectra only"
+    assert (layout_problem("jcamp", "ellipsometry")
+            == "layout 'jcamp' holds reflectance spectra only")
     assert layout_problem("long", "intensity") == ("raw intensities (reference_file) are read "
                                                    "from the wide layout only")
     p = _write(tmp_path, "W1_site1.jdx", "##TITLE= x\n")

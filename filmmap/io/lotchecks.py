@@ -1,4 +1,4 @@
-"""Lot-level checks of spectra tables: the files of a lot against each other, the wafer and the boat.
+"""Lot-level checks of spectra tables: a lot's files against each other, the wafer, the boat.
 
 Each reader checks its own file; `check_tables` checks what only the whole lot shows: one
 technique and one wavelength set, slots inside the boat, sites inside the wafer, each
@@ -142,22 +142,24 @@ def check_rows_consistent(rows, who):
                 f"duplicate wafer {wafer!r} site {site}: also at {_loc(first, where, who)}; "
                 "expected each (wafer, site) once", file=where[0], line=where[1], field="site")
         by_site[key] = where
-        seen = slot_of_wafer.get(wafer)
-        if seen is None:
-            slot_of_wafer[wafer] = (slot, where)
-        elif seen[0] != slot:
+        seen = _first_other(slot_of_wafer, wafer, slot, where)
+        if seen is not None:
             raise FilmmapInputError(
                 f"wafer {wafer!r} is in slot {slot} here but in slot {seen[0]} at "
                 f"{_loc(seen[1], where, who)}; expected one slot per wafer",
                 file=where[0], line=where[1], field="slot")
-        seen = wafer_of_slot.get(slot)
-        if seen is None:
-            wafer_of_slot[slot] = (wafer, where)
-        elif seen[0] != wafer:
+        seen = _first_other(wafer_of_slot, slot, wafer, where)
+        if seen is not None:
             raise FilmmapInputError(
                 f"slot {slot} holds wafer {wafer!r} here but wafer {seen[0]!r} at "
                 f"{_loc(seen[1], where, who)}; expected one wafer per slot",
                 file=where[0], line=where[1], field="slot")
+
+
+def _first_other(first_of, key, value, where):
+    """Record the first ``(value, where)`` of ``key``; return it when ``value`` differs."""
+    seen = first_of.setdefault(key, (value, where))
+    return seen if seen[0] != value else None
 
 
 def _loc(first, where, who):

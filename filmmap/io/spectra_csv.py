@@ -63,7 +63,8 @@ from filmmap.errors import FilmmapInputError
 from filmmap.io.lotchecks import check_rows_consistent
 from filmmap.io.spectra import SpectraTable, Spectrum
 from filmmap.io.techniques import (DELTA_RANGE_DEG, MAX_FRACTION, PSI_RANGE_DEG, QUANTITIES,
-                                   TECHNIQUE_OF_QUANTITY, check_arguments)
+                                   TECHNIQUE_OF_QUANTITY, check_arguments,
+                                   check_percent_is_percent)
 from filmmap.io.textfile import DEFAULT_MAX_BYTES, read_text_file
 
 __all__ = ["read_spectra_csv", "read_spectrum_file", "REQUIRED_COLUMNS"]
@@ -519,11 +520,7 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
                 _check_range(values, None, 100 * MAX_FRACTION, col_names, numbers, path,
                              "reflectance {value}% in column {column} is above "
                              f"{100 * MAX_FRACTION:g}%; expected percent 0-100")
-                if values.max() <= MAX_FRACTION:
-                    raise FilmmapInputError(
-                        f"all reflectance values are <= {MAX_FRACTION:g} although the lot says "
-                        'reflectance_unit = "percent"; the file looks like fractions 0-1 - set '
-                        'reflectance_unit = "fraction"', file=path, line=numbers[0])
+                check_percent_is_percent(values, path, numbers[0])
                 values = values / 100.0
         elif p == "psi":
             _check_range(values, *PSI_RANGE_DEG, col_names, numbers, path,

@@ -28,7 +28,7 @@ from filmmap.errors import FilmmapInputError
 
 __all__ = ["TECHNIQUES", "REFLECTANCE_UNITS", "QUANTITIES", "TECHNIQUE_OF_QUANTITY",
            "MAX_FRACTION", "PSI_RANGE_DEG", "DELTA_RANGE_DEG", "check_arguments",
-           "check_values"]
+           "check_percent_is_percent", "check_values"]
 
 #: Quantities (file column prefixes) of each technique, in the order they are read.
 QUANTITIES = {"reflectance": ("R",), "ellipsometry": ("psi", "delta"), "intensity": ("I",)}
@@ -60,6 +60,28 @@ def check_arguments(technique, reflectance_unit):
     if reflectance_unit not in REFLECTANCE_UNITS:
         raise ValueError(f"reflectance_unit must be one of {REFLECTANCE_UNITS}, "
                          f"got {reflectance_unit!r}")
+
+
+def check_percent_is_percent(R, path, line, field=None):
+    """Refuse reflectance said to be in percent whose values are all <= `MAX_FRACTION`: the
+    file holds fractions 0-1 (common practice, no source).
+
+    Parameters
+    ----------
+    R : numpy.ndarray
+        Reflectance as in the file, percent.
+    path : pathlib.Path
+        The file, for messages.
+    line : int
+        Line to name (the first data row).
+    field : str, optional
+        Field to name.
+    """
+    if R.max() <= MAX_FRACTION:
+        raise FilmmapInputError(
+            f"all reflectance values are <= {MAX_FRACTION:g} although the lot says "
+            'reflectance_unit = "percent"; the file looks like fractions 0-1 - set '
+            'reflectance_unit = "fraction"', file=path, line=line, field=field)
 
 
 def check_values(technique, unit, data, path, lines, wl_lines=None):
@@ -108,11 +130,7 @@ def check_values(technique, unit, data, path, lines, wl_lines=None):
                 'and looks like percent; if so, set reflectance_unit = "percent" in the lot file',
                 file=path, line=where(R > MAX_FRACTION), field="R")
         if unit == "percent":
-            if R.max() <= MAX_FRACTION:
-                raise FilmmapInputError(
-                    f"all reflectance values are <= {MAX_FRACTION:g} although the lot says "
-                    'reflectance_unit = "percent"; the file looks like fractions 0-1 - set '
-                    'reflectance_unit = "fraction"', file=path, line=int(lines[0]), field="R")
+            check_percent_is_percent(R, path, int(lines[0]), field="R")
             return {"R": R / 100.0}
         return data
     psi, delta = data["psi"], data["delta"]

@@ -23,6 +23,7 @@ from filmmap.errors import FilmmapInputError
 from filmmap.io.lotchecks import check_rows_consistent
 from filmmap.io.spectra import SpectraTable
 from filmmap.io.techniques import check_values
+from filmmap.io.textfile import read_text_file
 
 #: Largest wavelength (in the file's numbers) that is taken as micrometres, not nm:
 #: optical thickness metrology works at 190-2500 nm, i.e. 0.19-2.5 um, so a set of
@@ -58,6 +59,13 @@ def data_lines(text):
     """(line number, stripped text) of the lines that are neither blank nor ``#`` comments."""
     return [(i + 1, line.strip()) for i, line in enumerate(text.split("\n"))
             if line.strip() and not line.strip().startswith("#")]
+
+
+def read_data_lines(path):
+    """`data_lines` of a text file (read by `filmmap.io.textfile.read_text_file`) and its
+    SHA-256."""
+    source = read_text_file(path)
+    return data_lines(source.text), source.sha256
 
 
 def number(cell, path, line, field):

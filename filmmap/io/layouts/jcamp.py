@@ -22,9 +22,7 @@ from filmmap.io.layouts.common import build_table, fields_from_name
 from filmmap.io.textfile import read_text_file
 
 NAME = "jcamp"
-#: Techniques this layout reads (`filmmap.io.techniques`).
 TECHNIQUES = ("reflectance",)
-#: Whether each wafer lies whole in one file (False: a wafer spans several files).
 WAFER_PER_FILE = False
 EXAMPLE = """\
 ##TITLE= W2-04 site 3

@@ -14,15 +14,12 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import (build_table, data_lines, fields_from_name, integer,
-                                       number)
+from filmmap.io.layouts.common import (build_table, fields_from_name, integer, number,
+                                       read_data_lines)
 from filmmap.io.techniques import QUANTITIES
-from filmmap.io.textfile import read_text_file
 
 NAME = "long"
-#: Techniques this layout reads (`filmmap.io.techniques`).
 TECHNIQUES = ("reflectance", "ellipsometry")
-#: Whether each wafer lies whole in one file (False: a wafer spans several files).
 WAFER_PER_FILE = True
 EXAMPLE = """\
 wafer,site,wavelength_nm,R
@@ -38,9 +35,7 @@ _OPTIONAL = ("wafer", "slot", "x_mm", "y_mm")
 def read(path, technique, unit, maps):
     """One long CSV file as a `SpectraTable`."""
     path = Path(path)
-    source = read_text_file(path)
-    text, sha = source.text, source.sha256
-    lines = data_lines(text)
+    lines, sha = read_data_lines(path)
     if not lines:
         raise FilmmapInputError("empty file; expected a header and one row per site and "
                                 "wavelength", file=path)

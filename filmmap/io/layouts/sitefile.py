@@ -15,14 +15,11 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import build_table, data_lines, fields_from_name, number
+from filmmap.io.layouts.common import build_table, fields_from_name, number, read_data_lines
 from filmmap.io.techniques import QUANTITIES
-from filmmap.io.textfile import read_text_file
 
 NAME = "site-files"
-#: Techniques this layout reads (`filmmap.io.techniques`).
 TECHNIQUES = ("reflectance", "ellipsometry")
-#: Whether each wafer lies whole in one file (False: a wafer spans several files).
 WAFER_PER_FILE = False
 EXAMPLE = """\
 # W2-04_site3.txt
@@ -38,9 +35,7 @@ _SPLIT = re.compile(r"\s*[,\t]\s*|\s+")
 def read(path, technique, unit, maps):
     """One site's file as a one-row `SpectraTable`."""
     path = Path(path)
-    source = read_text_file(path)
-    text, sha = source.text, source.sha256
-    lines = data_lines(text)
+    lines, sha = read_data_lines(path)
     quantities = QUANTITIES[technique]
     ncol = 1 + len(quantities)
     if lines and not re.match(r"[+-]?[\d.]", lines[0][1]):

@@ -15,14 +15,11 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import build_table, data_lines, fields_from_name, number
+from filmmap.io.layouts.common import build_table, fields_from_name, number, read_data_lines
 from filmmap.io.techniques import QUANTITIES
-from filmmap.io.textfile import read_text_file
 
 NAME = "transposed"
-#: Techniques this layout reads (`filmmap.io.techniques`).
 TECHNIQUES = ("reflectance", "ellipsometry")
-#: Whether each wafer lies whole in one file (False: a wafer spans several files).
 WAFER_PER_FILE = True
 EXAMPLE = """\
 wavelength_nm,1,2,3
@@ -38,9 +35,7 @@ _COLUMN = re.compile(r"(?:(R|psi|delta):)?(\d+)\Z")
 def read(path, technique, unit, maps):
     """One transposed CSV file (one wafer) as a `SpectraTable`."""
     path = Path(path)
-    source = read_text_file(path)
-    text, sha = source.text, source.sha256
-    lines = data_lines(text)
+    lines, sha = read_data_lines(path)
     if len(lines) < 2:
         raise FilmmapInputError("expected a header and one row per wavelength", file=path)
     hline, header = lines[0]

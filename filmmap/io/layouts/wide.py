@@ -17,16 +17,13 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import (build_table, check_wavelengths, data_lines,
-                                       fields_from_name, integer, number)
+from filmmap.io.layouts.common import (build_table, check_wavelengths, fields_from_name,
+                                       integer, number, read_data_lines)
 from filmmap.io.spectra_csv import REQUIRED_COLUMNS, read_spectra_csv
 from filmmap.io.techniques import QUANTITIES
-from filmmap.io.textfile import read_text_file
 
 NAME = "wide"
-#: Techniques this layout reads (`filmmap.io.techniques`).
 TECHNIQUES = ("reflectance", "ellipsometry", "intensity")
-#: Whether each wafer lies whole in one file (False: a wafer spans several files).
 WAFER_PER_FILE = True
 EXAMPLE = """\
 wafer,slot,site,x_mm,y_mm,R@400,R@410,R@420
@@ -49,9 +46,7 @@ def read(path, technique, unit, maps):
         table = read_spectra_csv(path, technique, unit)
         check_wavelengths(table.wavelength_nm, table.path, max(1, int(table.line[0]) - 1))
         return table
-    source = read_text_file(path)
-    text, sha = source.text, source.sha256
-    lines = data_lines(text)
+    lines, sha = read_data_lines(path)
     return _read_mapped(path, sha, technique, unit, maps, lines,
                         [c.strip() for c in lines[0][1].split(",")])
 

@@ -25,7 +25,19 @@ def _norm_key(key):
 
 
 def key_lines(text):
-    """Best-effort map from field path (``stack.layer[1].material``) to its 1-based line."""
+    """Best-effort map from field path (``stack.layer[1].material``) to its 1-based line.
+
+    Parameters
+    ----------
+    text : str
+        The TOML text.
+
+    Returns
+    -------
+    dict of str to int
+        Field path (array entries counted from 1) -> the line where it is first written;
+        a table or array entry maps to its header line.
+    """
     where = {}
     prefix = ""
     arrays = {}
