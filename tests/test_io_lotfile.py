@@ -604,6 +604,18 @@ def test_wet_step_below_the_furnace_range_fails_at_read_time(folder):
     assert "steps[" not in str(err)
 
 
+def test_reduce_refuses_the_out_of_range_step_before_any_work(folder, tmp_path, capsys):
+    from filmmap.cli.main import main
+
+    text = edit("at_C = 1000", "at_C = 550", THREE_STEPS)
+    path = write_lot(folder, text)
+    out = tmp_path / "out"
+    assert main(["reduce", str(path), "-o", str(out), "--no-figures", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert f"{path}:{line_of(text, 'at_C = 550')}, field 'recipe.step[3].at_C'" in err
+    assert not out.exists()
+
+
 def test_furnace_range_covers_ramps_and_spares_inert_steps(folder):
     text = edit('ambient = "N2"\nminutes = 150\nfrom_C = 800\nto_C = 1000',
                 'ambient = "O2"\nminutes = 150\nfrom_C = 1000\nto_C = 1350')

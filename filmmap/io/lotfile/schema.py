@@ -22,7 +22,7 @@ __all__ = ["LotConfig", "LotInfo", "MeasurementConfig", "StackConfig", "LayerCon
 #: Techniques a lot can declare.
 LOT_TECHNIQUES = ("reflectance", "ellipsometry")
 
-#: Recipe step ambients (those of `filmmap.growth.Step`), and the ones that grow oxide.
+#: The recipe step ambients that grow oxide (`AMBIENTS` are those of `filmmap.growth.Step`).
 OXIDISING_AMBIENTS = OXIDANTS
 
 #: Largest lot file read by default (bytes).
@@ -53,8 +53,6 @@ KEYS = {
     "recipe": ("step",),
     "recipe.step": ("name", "ambient", "minutes", "at_C", "from_C", "to_C"),
 }
-
-
 
 MAX_SEARCH_NM = 50000.0
 """Largest accepted search_nm upper end and target thickness (50 um, far above any thermal
