@@ -111,7 +111,7 @@ from filmmap.io.lotfile.lot import read_lot
 from filmmap.io.lotfile.measurement import read_measurement
 from filmmap.io.lotfile.reader import LotReader
 from filmmap.io.lotfile.schema import (AMBIENTS, DEFAULT_MAX_LOT_BYTES, LOT_TECHNIQUES,
-                                       OXIDISING_AMBIENTS, BoatConfig, CauchySpec,
+                                       MAX_SEARCH_NM, OXIDISING_AMBIENTS, BoatConfig, CauchySpec,
                                        FurnaceConfig, GrowthConfig, LayerConfig, LotConfig,
                                        LotInfo, MeasurementConfig, RecipeStep, StackConfig,
                                        TargetConfig, Zone)
@@ -122,7 +122,7 @@ from filmmap.io.textfile import read_text_file
 __all__ = ["LotConfig", "LotInfo", "MeasurementConfig", "StackConfig", "LayerConfig",
            "CauchySpec", "TargetConfig", "BoatConfig", "Zone", "FurnaceConfig", "GrowthConfig",
            "RecipeStep", "read_lot_file", "AMBIENTS", "OXIDISING_AMBIENTS", "LOT_TECHNIQUES",
-           "DEFAULT_MAX_LOT_BYTES"]
+           "DEFAULT_MAX_LOT_BYTES", "MAX_SEARCH_NM"]
 
 
 def read_lot_file(path, allow_outside=False, max_bytes=DEFAULT_MAX_LOT_BYTES, require_files=True):
