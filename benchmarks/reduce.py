@@ -22,7 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
-from filmmap.io.spectra_csv import check_tables, read_spectra_csv
+from filmmap.io import check_tables, read_spectra
 from filmmap.optics import Layer, Stack
 from filmmap.pipeline.lot_files import write_lot
 from filmmap.pipeline.reducing import reduce_lot
@@ -80,7 +80,7 @@ def main(repeats=3):
         t_parse = t_api1 = t_api2 = np.inf
         for _ in range(repeats):
             t0 = time.perf_counter()
-            tables = [read_spectra_csv(f, "reflectance") for f in files]
+            tables = [read_spectra(f, "reflectance") for f in files]
             check_tables(tables, 150.0, 150)
             t_parse = min(t_parse, time.perf_counter() - t0)
             del tables

@@ -157,6 +157,33 @@ def test_registry_names_every_layout_and_examples_are_in_the_docs():
         assert module.EXAMPLE.strip().splitlines()[1] in docs, name
 
 
+def test_each_layout_declares_what_it_holds_and_the_entry_enforces_it(tmp_path):
+    from filmmap.io import read_spectra as entry
+    from filmmap.io.layouts import PARTIAL_WAFER_LAYOUTS, layout_problem
+    from filmmap.io.techniques import TECHNIQUES
+
+    for name, module in LAYOUTS.items():
+        assert module.NAME == name and set(module.TECHNIQUES) <= set(TECHNIQUES), name
+        assert isinstance(module.WAFER_PER_FILE, bool) and callable(module.read), name
+    assert entry is read_spectra
+    # the per-site layouts, and only they, let a wafer span files in the lot check
+    assert set(PARTIAL_WAFER_LAYOUTS) == {"site-files", "jcamp"}
+    assert layout_problem("long", "ellipsometry") is None
+    assert (layout_problem("jcamp", "ellipsometry")
+            == "layout 'jcamp' holds reflectance spectra only")
+    assert layout_problem("long", "intensity") == ("raw intensities (reference_file) are read "
+                                                   "from the wide layout only")
+    p = _write(tmp_path, "W1_site1.jdx", "##TITLE= x\n")
+    maps = Maps(site_xy={1: (0.0, 0.0)}, slot_of={"W1": 2}, pattern="{wafer}_site{site}.jdx")
+    with pytest.raises(FilmmapInputError, match="holds reflectance spectra only") as e:
+        read_spectra(p, "ellipsometry", "fraction", "jcamp", maps)
+    assert e.value.field == "measurement.layout" and str(p) in str(e.value)
+    with pytest.raises(FilmmapInputError, match="unknown layout 'wider'"):
+        read_spectra(p, "reflectance", "fraction", "wider", maps)
+    with pytest.raises(ValueError, match="technique"):
+        read_spectra(p, "raman", "fraction", "long", maps)
+
+
 # ------------------------------------------------------------------ common mistakes
 
 def _write(tmp_path, name, text):

@@ -579,6 +579,71 @@ def test_step_temperature_forms(folder):
     check(folder, text, "step 'wet' has no temperature", field="recipe.step[2].at_C")
 
 
+THREE_STEPS = edit("""[[recipe.step]]
+name = "wet"
+""", """[[recipe.step]]
+name = "dry"
+ambient = "O2"
+minutes = 10
+at_C = 950
+
+[[recipe.step]]
+name = "wet"
+""")
+
+
+def test_wet_step_below_the_furnace_range_fails_at_read_time(folder):
+    # the issue's case: a wet step at 550 C used to pass the reader and fail after every
+    # fit, as 'steps[2].at_C' with no file or line; now the reader names file, line and
+    # the lot file's own path, counting steps as the file does (the third step is [3])
+    text = edit("at_C = 1000", "at_C = 550", THREE_STEPS)
+    err = check(folder, text, "step 'wet' (H2O): at_C = 550 C is outside the furnace range",
+                "expected 600 <= at_C <= 1300 C", field="recipe.step[3].at_C",
+                line=line_of(text, "at_C = 550"))
+    assert "temperature_range_C" not in str(err)     # an option the CLI does not have
+    assert "steps[" not in str(err)
+
+
+def test_reduce_refuses_the_out_of_range_step_before_any_work(folder, tmp_path, capsys):
+    from filmmap.cli.main import main
+
+    text = edit("at_C = 1000", "at_C = 550", THREE_STEPS)
+    path = write_lot(folder, text)
+    out = tmp_path / "out"
+    assert main(["reduce", str(path), "-o", str(out), "--no-figures", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert f"{path}:{line_of(text, 'at_C = 550')}, field 'recipe.step[3].at_C'" in err
+    assert not out.exists()
+
+
+def test_furnace_range_covers_ramps_and_spares_inert_steps(folder):
+    text = edit('ambient = "N2"\nminutes = 150\nfrom_C = 800\nto_C = 1000',
+                'ambient = "O2"\nminutes = 150\nfrom_C = 1000\nto_C = 1350')
+    check(folder, text, "step 'ramp-up' (O2): to_C = 1350 C", field="recipe.step[1].to_C",
+          line=line_of(text, "to_C = 1350"))
+    # an N2 step grows nothing: only the sanity bound of every temperature applies
+    cfg = read_lot_file(write_lot(folder, edit("from_C = 800", "from_C = 300")))
+    assert cfg.recipe[0].from_C == 300.0
+    # the range is inclusive at both ends
+    for t in (600, 1300):
+        cfg = read_lot_file(write_lot(folder, edit("at_C = 1000", f"at_C = {t}")))
+        assert cfg.step("wet").at_C == float(t)
+
+
+def test_recipe_steps_are_growth_steps_the_model_accepts(folder):
+    from filmmap.growth import Step, integrate_recipe, steps_from_config, validate_steps
+    from filmmap.io import RecipeStep
+
+    text = edit("at_C = 1000", "at_C = 600", THREE_STEPS)      # the edge of the range
+    cfg = read_lot_file(write_lot(folder, text))
+    assert RecipeStep is Step and all(type(s) is Step for s in cfg.recipe)
+    assert [s.name for s in cfg.recipe] == ["ramp-up", "dry", "wet"]
+    # what the reader accepted, the growth model accepts unchanged (no late failure)
+    assert validate_steps(cfg.recipe) == cfg.recipe
+    assert steps_from_config(cfg) == cfg.recipe
+    assert integrate_recipe(cfg.recipe, "100", 1.5) > 1.5
+
+
 def test_step_ambient_and_names(folder):
     text = edit('ambient = "H2O"', 'ambient = "steam"')
     check(folder, text, "'N2', 'O2', 'H2O'", field="recipe.step[2].ambient",

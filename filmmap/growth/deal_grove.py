@@ -14,14 +14,13 @@ whole load of slots (one temperature each) is evaluated in one call.
 
 from __future__ import annotations
 
-import tomllib
 from functools import lru_cache
 from typing import NamedTuple
 
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.materials.registry import reference_file
+from filmmap.reference_data import reference_toml
 
 #: Boltzmann constant in eV/K (CODATA 2018, 8.617333262e-5 eV/K).
 BOLTZMANN_EV = 8.617333e-5
@@ -56,8 +55,7 @@ def load_constants():
        Prentice Hall (2000), Ch. 6.
     .. [2] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965).
     """
-    text = reference_file("deal_grove_constants.toml").read_text(encoding="utf-8")
-    return tomllib.loads(text)
+    return reference_toml("deal_grove_constants.toml")
 
 
 def check_ambient(ambient):

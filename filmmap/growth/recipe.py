@@ -134,13 +134,44 @@ def _number(value, index, name, key, positive=False):
     return v
 
 
-def _check_range(index, name, key, value, temperature_range_C):
+def temperatures_outside_range(ambient, temperatures_C,
+                               temperature_range_C=DEFAULT_TEMPERATURE_RANGE_C):
+    """The temperatures of a recipe step that lie outside the furnace's accepted range.
+
+    The one rule for step temperatures, applied by `validate_steps` and by the lot-file
+    reader (`filmmap.io.read_lot_file`), so a step one accepts the other accepts too.
+
+    Parameters
+    ----------
+    ambient : str
+        ``"N2"``, ``"O2"`` or ``"H2O"``; an N2 step grows no oxide and its temperature
+        does not enter the model, so it is never outside.
+    temperatures_C : mapping of str to float or None
+        ``{"at_C": ..., "from_C": ..., "to_C": ...}``, degrees Celsius; None = not given.
+    temperature_range_C : (float, float)
+        Accepted range of oxidising steps, degrees Celsius, inclusive.
+
+    Returns
+    -------
+    list of (str, float)
+        ``(key, value_C)`` of each temperature outside the range, in the mapping's order.
+
+    Notes
+    -----
+    The default range, 600-1300 C, is the span of thermal oxidation the Arrhenius rate
+    constants are meant for; outside it they would be extrapolated too far to advise on
+    (common practice, no source).
+
+    References
+    ----------
+    .. [1] B. E. Deal and A. S. Grove, J. Appl. Phys. 36, 3770-3778 (1965) (the rate law
+       whose constants the range is for).
+    """
+    if ambient == "N2":
+        return []
     lo, hi = temperature_range_C
-    if not lo <= value <= hi:
-        raise FilmmapInputError(
-            f"{_label(index, name)}: {key} = {value:g} C is outside the accepted furnace range "
-            f"{lo:g}-{hi:g} C (pass temperature_range_C to change it)",
-            field=f"steps[{index}].{key}")
+    return [(key, value) for key, value in temperatures_C.items()
+            if value is not None and not lo <= value <= hi]
 
 
 def _check_step(raw, index, temperature_range_C):
@@ -194,12 +225,16 @@ def _check_step(raw, index, temperature_range_C):
         raise FilmmapInputError(
             f"{_label(index, name)}: an {key} step needs a temperature: at_C, or from_C and to_C",
             field=f"steps[{index}].at_C")
-    temps = {}
-    for k, v in (("at_C", at_C), ("from_C", from_C), ("to_C", to_C)):
-        if v is not None:
-            temps[k] = _number(v, index, name, k)
-            if key != "N2":
-                _check_range(index, name, k, temps[k], temperature_range_C)
+    temps = {k: _number(v, index, name, k)
+             for k, v in (("at_C", at_C), ("from_C", from_C), ("to_C", to_C)) if v is not None}
+    outside = temperatures_outside_range(key, temps, temperature_range_C)
+    if outside:
+        k, value = outside[0]
+        lo, hi = temperature_range_C
+        raise FilmmapInputError(
+            f"{_label(index, name)}: {k} = {value:g} C is outside the accepted furnace range "
+            f"{lo:g}-{hi:g} C (pass temperature_range_C to change it)",
+            field=f"steps[{index}].{k}")
     pressure = data["pressure_atm"]
     if pressure is not None:
         pressure = _number(pressure, index, name, "pressure_atm", positive=True)

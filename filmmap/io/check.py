@@ -13,8 +13,8 @@ import numpy as np
 
 from filmmap.io.layouts import PARTIAL_WAFER_LAYOUTS, read_spectra
 from filmmap.io.layouts.maps import lot_maps
+from filmmap.io.lotchecks import check_tables
 from filmmap.io.lotfile import read_lot_file
-from filmmap.io.spectra_csv import check_tables
 
 
 @dataclass
@@ -49,10 +49,8 @@ def check_lot(lot_file):
     """
     config = read_lot_file(lot_file)
     m = config.measurement
-    technique = "intensity" if m.raw_intensity else m.technique
     maps, _inputs = lot_maps(m)
-    tables = [read_spectra(p, technique, m.reflectance_unit if not m.raw_intensity
-                           else "fraction", m.layout, maps) for p in m.files]
+    tables = [read_spectra(p, m.file_technique, m.file_unit, m.layout, maps) for p in m.files]
     boat = config.boat.slots if config.boat is not None else None
     check_tables(tables, m.wafer_diameter_mm, boat,
                  wafer_per_file=m.layout not in PARTIAL_WAFER_LAYOUTS)

@@ -1,4 +1,9 @@
-"""Strict, fast readers for measured spectra: one CSV file per group of wafers.
+"""The wide CSV parser: filmmap's own spectra file (pinned), one row per site.
+
+This is the parser behind the ``wide`` layout (`filmmap.io.layouts.wide`); read spectra
+through `filmmap.io.read_spectra`, which picks the layout. The lot-level checks across
+files are in `filmmap.io.lotchecks`, the physics of each technique in
+`filmmap.io.techniques`, the result type in `filmmap.io.spectra`.
 
 File format (filmmap's own)
 ---------------------------
@@ -23,7 +28,7 @@ then one row per measured site.  Columns, in any order:
     Ellipsometric angles in degrees, the same wavelength set for both.
     Technique ``"ellipsometry"``.
 ``I@<nm>``
-    Raw detector intensity in counts (converted to reflectance elsewhere).
+    Raw detector intensity in counts (converted to reflectance by `filmmap.io.intensity`).
     Technique ``"intensity"``.
 
 Spectral columns may come in any order: the reader sorts them by wavelength
@@ -45,56 +50,30 @@ the line (and column) concerned and saying what was expected.
 
 from __future__ import annotations
 
-import codecs
 import csv
 import difflib
-import hashlib
 import math
-import os
 import re
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from filmmap.bounds import MAX_BOAT_SLOTS, MAX_ID_CHARS, MAX_SITES_PER_WAFER, MAX_WAVELENGTHS
 from filmmap.errors import FilmmapInputError
+from filmmap.io.lotchecks import check_rows_consistent
+from filmmap.io.spectra import SpectraTable, Spectrum
+from filmmap.io.techniques import (DELTA_RANGE_DEG, MAX_FRACTION, PSI_RANGE_DEG, QUANTITIES,
+                                   TECHNIQUE_OF_QUANTITY, check_arguments,
+                                   check_percent_is_percent)
+from filmmap.io.textfile import DEFAULT_MAX_BYTES, read_text_file
 
-__all__ = ["SpectraTable", "Spectrum", "read_spectra_csv", "read_spectrum_file", "check_tables",
-           "TECHNIQUES", "REFLECTANCE_UNITS", "REQUIRED_COLUMNS", "DEFAULT_MAX_BYTES"]
-
-#: Largest input file read by default (bytes); larger files are refused.
-DEFAULT_MAX_BYTES = 512 * 2**20
-
-#: Techniques a spectra file can be read as.
-TECHNIQUES = ("reflectance", "ellipsometry", "intensity")
-
-#: Accepted values of ``reflectance_unit``.
-REFLECTANCE_UNITS = ("fraction", "percent")
+__all__ = ["read_spectra_csv", "read_spectrum_file", "REQUIRED_COLUMNS"]
 
 #: Columns every spectra file must have.
 REQUIRED_COLUMNS = ("wafer", "slot", "site", "x_mm", "y_mm")
 
-#: Spectral column prefixes of each technique.
-_PREFIXES = {"reflectance": ("R",), "ellipsometry": ("psi", "delta"), "intensity": ("I",)}
-_TECHNIQUE_OF_PREFIX = {p: t for t, ps in _PREFIXES.items() for p in ps}
-
-#: Largest plausible reflectance given as a fraction: above it the file is
-#: almost surely in percent.  Measured values slightly above 1 (noise,
-#: calibration) are accepted.
-_MAX_FRACTION = 1.5
-
-#: Ranges (degrees) accepted for the ellipsometric angles; delta is accepted
-#: in both the (-180, 180] and [0, 360) conventions.
-_PSI_RANGE = (0.0, 90.0)
-_DELTA_RANGE = (-180.0, 360.0)
-
 #: Largest accepted |slot| and |site| (keeps them exact in a 64-bit int).
 _MAX_INDEX = 10**9
-
-#: Slack (mm) when testing "inside the wafer": a site exactly on the edge
-#: counts as inside despite float rounding.
-_RADIUS_SLACK_MM = 1e-6
 
 _NUMBER = re.compile(
     r"[+-]?(?:(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|nan|inf|infinity)", re.IGNORECASE | re.ASCII)
@@ -111,142 +90,7 @@ _SPECTRAL_VARIANT = re.compile(
 _PREFIX_CASE = {p.lower(): p for p in ("R", "psi", "delta", "I")}
 
 
-@dataclass(frozen=True, eq=False)
-class SpectraTable:
-    """The contents of one spectra CSV file, one row per measured site.
-
-    Attributes
-    ----------
-    path : pathlib.Path
-        The file read.
-    sha256 : str
-        Hex SHA-256 of the file bytes (provenance).
-    technique : str
-        ``"reflectance"``, ``"ellipsometry"`` or ``"intensity"``.
-    wafer : numpy.ndarray of str, shape (n_rows,)
-        Wafer id of each row.
-    slot : numpy.ndarray of int, shape (n_rows,)
-        Boat slot (1 = load/door end).
-    site : numpy.ndarray of int, shape (n_rows,)
-        Site number.
-    x_mm, y_mm : numpy.ndarray of float, shape (n_rows,)
-        Site position from the wafer centre in mm (notch toward -y).
-    wavelength_nm : numpy.ndarray of float, shape (n_wl,)
-        Strictly increasing wavelengths in nm.
-    data : dict of str to numpy.ndarray, each shape (n_rows, n_wl)
-        ``{"R": reflectance as a fraction}``, ``{"psi": deg, "delta": deg}``
-        or ``{"I": counts}``.
-    line : numpy.ndarray of int, shape (n_rows,)
-        1-based line number of each row in the file.
-
-    Notes
-    -----
-    Treat the arrays as read-only: they are the measured data.
-    """
-
-    path: Path
-    sha256: str
-    technique: str
-    wafer: np.ndarray
-    slot: np.ndarray
-    site: np.ndarray
-    x_mm: np.ndarray
-    y_mm: np.ndarray
-    wavelength_nm: np.ndarray
-    data: dict
-    line: np.ndarray
-
-    @property
-    def n_rows(self):
-        """Number of measured sites (rows)."""
-        return int(self.slot.size)
-
-    @property
-    def n_wavelengths(self):
-        """Number of wavelengths."""
-        return int(self.wavelength_nm.size)
-
-    def where(self, row):
-        """``"file:line"`` of a row index, for messages."""
-        return f"{self.path}:{int(self.line[row])}"
-
-
-@dataclass(frozen=True, eq=False)
-class Spectrum:
-    """A single dark or reference intensity spectrum.
-
-    Attributes
-    ----------
-    path : pathlib.Path
-        The file read.
-    sha256 : str
-        Hex SHA-256 of the file bytes.
-    wavelength_nm : numpy.ndarray of float, shape (n_wl,)
-        Strictly increasing wavelengths in nm.
-    counts : numpy.ndarray of float, shape (n_wl,)
-        Detector intensity in counts.
-    line : int
-        1-based line number of the data row.
-    """
-
-    path: Path
-    sha256: str
-    wavelength_nm: np.ndarray
-    counts: np.ndarray
-    line: int
-
-
 # --------------------------------------------------------------------------- file level
-
-def _read_bytes(path, max_bytes):
-    """Read a whole file read-only, refusing directories and files over ``max_bytes``."""
-    if max_bytes is None or not int(max_bytes) > 0:
-        raise ValueError("max_bytes must be a positive number of bytes")
-    max_bytes = int(max_bytes)
-    try:
-        size = os.stat(path).st_size
-        if size > max_bytes:
-            raise FilmmapInputError(
-                f"file is {size} bytes, larger than the limit of {max_bytes} bytes; "
-                "pass a larger max_bytes if this file is genuine", file=path)
-        with open(path, "rb") as fh:
-            raw = fh.read(max_bytes + 1)
-    except FilmmapInputError:
-        raise
-    except IsADirectoryError:
-        raise FilmmapInputError("expected a file, found a directory", file=path) from None
-    except OSError as exc:
-        raise FilmmapInputError(f"cannot read file: {exc.strerror or exc}", file=path) from None
-    if len(raw) > max_bytes:
-        raise FilmmapInputError(f"file grew beyond the limit of {max_bytes} bytes while reading",
-                                file=path)
-    return raw
-
-
-def _decode(raw, path):
-    """Bytes -> text (UTF-8, optional BOM); say so when the file is not UTF-8 text."""
-    if raw.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)):
-        raise FilmmapInputError("file is UTF-16 encoded; expected UTF-8 text (save as UTF-8 CSV)",
-                                file=path, line=1)
-    nul = raw.find(b"\x00")
-    if nul >= 0:
-        raise FilmmapInputError(
-            "file contains NUL bytes: binary data (or UTF-16 text without a byte-order mark), "
-            "not a UTF-8 CSV text file",
-            file=path, line=raw.count(b"\n", 0, nul) + 1)
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise FilmmapInputError(
-            f"not UTF-8 text: invalid byte 0x{raw[exc.start]:02x} at byte offset {exc.start}; "
-            "expected a UTF-8 CSV text file (binary data or another encoding?)",
-            file=path, line=raw.count(b"\n", 0, exc.start) + 1) from None
-    if text.startswith("\ufeff"):
-        text = text[1:]
-    if "\r" in text:
-        text = text.replace("\r\n", "\n").replace("\r", "\n")
-    return text
-
 
 def _header_and_rows(text, path):
     """Split text into the header line and the (line number, text) of each data row."""
@@ -341,7 +185,7 @@ def _parse_header(header_text, first_row, path, lineno, technique, required):
         numeric = [bool(_NUMBER.fullmatch(c.strip())) for c in cells]
         if cells and (numeric[0] or (len(cells) > 5 and sum(numeric) >= len(cells) - 1)):
             expected = (", ".join(required) + " and " if required else "") + ", ".join(
-                f"{p}@<nm>" for p in _PREFIXES[technique])
+                f"{p}@<nm>" for p in QUANTITIES[technique])
             raise FilmmapInputError(
                 f"no header row: line {lineno} looks like data; expected a header naming the "
                 f"columns {expected}", file=path, line=lineno)
@@ -365,7 +209,7 @@ def _classify_header(cells, path, lineno, technique, required):
     spectral : dict
         Prefix -> (wavelengths sorted increasing, column indices in that order).
     """
-    allowed = _PREFIXES[technique]
+    allowed = QUANTITIES[technique]
     expected = ", ".join(f"{p}@<nm>" for p in allowed)
     fixed, by_prefix = {}, {p: [] for p in allowed}
     for j, raw_name in enumerate(cells):
@@ -388,7 +232,7 @@ def _classify_header(cells, path, lineno, technique, required):
         variant = _SPECTRAL_VARIANT.fullmatch(name)
         if variant and not (variant.group(3) or re.search(r"[\s(\[]", name)):
             variant = None
-        if variant and not (sep and prefix in _TECHNIQUE_OF_PREFIX
+        if variant and not (sep and prefix in TECHNIQUE_OF_QUANTITY
                             and _WAVELENGTH.fullmatch(rest.strip())):
             if (variant.group(3) or "").lower() in ("um", "µm"):
                 raise FilmmapInputError(
@@ -396,10 +240,10 @@ def _classify_header(cells, path, lineno, technique, required):
                     f"{_PREFIX_CASE[variant.group(1).lower()]}@"
                     f"{float(variant.group(2)) * 1000:g}", file=path, line=lineno, field=name)
             prefix, sep, rest = _PREFIX_CASE[variant.group(1).lower()], "@", variant.group(2)
-        if sep and prefix in _TECHNIQUE_OF_PREFIX:
+        if sep and prefix in TECHNIQUE_OF_QUANTITY:
             if prefix not in allowed:
                 raise FilmmapInputError(
-                    f"column {name!r} belongs to technique {_TECHNIQUE_OF_PREFIX[prefix]!r}, but "
+                    f"column {name!r} belongs to technique {TECHNIQUE_OF_QUANTITY[prefix]!r}, but "
                     f"this file is read as technique {technique!r}, which expects {expected} "
                     "columns",
                     file=path, line=lineno, field=name)
@@ -593,50 +437,6 @@ def _check_wafer_ids(wafer, numbers, path):
                                     file=path, line=numbers[r], field="wafer")
 
 
-def _check_rows_consistent(rows, who):
-    """Within/across-file row checks.
-
-    Parameters
-    ----------
-    rows : iterable of (wafer, slot, site, where)
-        ``where`` is ``(file, line)``.
-    who : str
-        ``"file"`` (one file: an error names the file and the line) or ``"lot"``.
-    """
-    by_site, slot_of_wafer, wafer_of_slot = {}, {}, {}
-    for wafer, slot, site, where in rows:
-        wafer = str(wafer)
-        key = (wafer, site)
-        if key in by_site:
-            first = by_site[key]
-            raise FilmmapInputError(
-                f"duplicate wafer {wafer!r} site {site}: also at {_loc(first, where, who)}; "
-                "expected each (wafer, site) once", file=where[0], line=where[1], field="site")
-        by_site[key] = where
-        seen = slot_of_wafer.get(wafer)
-        if seen is None:
-            slot_of_wafer[wafer] = (slot, where)
-        elif seen[0] != slot:
-            raise FilmmapInputError(
-                f"wafer {wafer!r} is in slot {slot} here but in slot {seen[0]} at "
-                f"{_loc(seen[1], where, who)}; expected one slot per wafer",
-                file=where[0], line=where[1], field="slot")
-        seen = wafer_of_slot.get(slot)
-        if seen is None:
-            wafer_of_slot[slot] = (wafer, where)
-        elif seen[0] != wafer:
-            raise FilmmapInputError(
-                f"slot {slot} holds wafer {wafer!r} here but wafer {seen[0]!r} at "
-                f"{_loc(seen[1], where, who)}; expected one wafer per slot",
-                file=where[0], line=where[1], field="slot")
-
-
-def _loc(first, where, who):
-    if who == "file" or str(first[0]) == str(where[0]):
-        return f"line {first[1]}"
-    return f"{first[0]}:{first[1]}"
-
-
 # --------------------------------------------------------------------------- public readers
 
 def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEFAULT_MAX_BYTES):
@@ -674,15 +474,10 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
     psi must lie in [0, 90] deg and delta in [-180, 360] deg.  Rows must have
     distinct (wafer, site), one slot per wafer and one wafer per slot.
     """
-    if technique not in TECHNIQUES:
-        raise ValueError(f"technique must be one of {TECHNIQUES}, got {technique!r}")
-    if reflectance_unit not in REFLECTANCE_UNITS:
-        raise ValueError(f"reflectance_unit must be one of {REFLECTANCE_UNITS}, "
-                         f"got {reflectance_unit!r}")
+    check_arguments(technique, reflectance_unit)
     path = Path(path)
-    raw = _read_bytes(path, max_bytes)
-    sha = hashlib.sha256(raw).hexdigest()
-    text = _decode(raw, path)
+    source = read_text_file(path, max_bytes)
+    sha, text = source.sha256, source.text
     hline, header_text, rows, numbers = _header_and_rows(text, path)
     names, fixed, spectral = _parse_header(header_text, rows[0] if rows else None, path, hline,
                                            technique, REQUIRED_COLUMNS)
@@ -690,7 +485,7 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
         raise FilmmapInputError("no data rows after the header; expected one row per site",
                                 file=path, line=hline)
     _check_wavelength_count(spectral, path, hline)
-    prefixes = _PREFIXES[technique]
+    prefixes = QUANTITIES[technique]
     num_cols = [fixed["slot"], fixed["site"], fixed["x_mm"], fixed["y_mm"]]
     for p in prefixes:
         num_cols += spectral[p][1]
@@ -717,28 +512,24 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
                          "negative reflectance {value}" + unit + " in column {column}; "
                          "expected reflectance >= 0")
             if reflectance_unit == "fraction":
-                _check_range(values, None, _MAX_FRACTION, col_names, numbers, path,
+                _check_range(values, None, MAX_FRACTION, col_names, numbers, path,
                              "reflectance {value} in column {column} is above "
-                             f"{_MAX_FRACTION:g}, too large for a fraction 0-1; if the file is "
+                             f"{MAX_FRACTION:g}, too large for a fraction 0-1; if the file is "
                              'in percent, set reflectance_unit = "percent" in the lot file')
             else:
-                _check_range(values, None, 100 * _MAX_FRACTION, col_names, numbers, path,
+                _check_range(values, None, 100 * MAX_FRACTION, col_names, numbers, path,
                              "reflectance {value}% in column {column} is above "
-                             f"{100 * _MAX_FRACTION:g}%; expected percent 0-100")
-                if values.max() <= _MAX_FRACTION:
-                    raise FilmmapInputError(
-                        f"all reflectance values are <= {_MAX_FRACTION:g} although the lot says "
-                        'reflectance_unit = "percent"; the file looks like fractions 0-1 - set '
-                        'reflectance_unit = "fraction"', file=path, line=numbers[0])
+                             f"{100 * MAX_FRACTION:g}%; expected percent 0-100")
+                check_percent_is_percent(values, path, numbers[0])
                 values = values / 100.0
         elif p == "psi":
-            _check_range(values, *_PSI_RANGE, col_names, numbers, path,
+            _check_range(values, *PSI_RANGE_DEG, col_names, numbers, path,
                          "psi {value} deg in column {column} is outside "
-                         f"[{_PSI_RANGE[0]:g}, {_PSI_RANGE[1]:g}] deg")
+                         f"[{PSI_RANGE_DEG[0]:g}, {PSI_RANGE_DEG[1]:g}] deg")
         elif p == "delta":
-            _check_range(values, *_DELTA_RANGE, col_names, numbers, path,
+            _check_range(values, *DELTA_RANGE_DEG, col_names, numbers, path,
                          "delta {value} deg in column {column} is outside "
-                         f"[{_DELTA_RANGE[0]:g}, {_DELTA_RANGE[1]:g}] deg")
+                         f"[{DELTA_RANGE_DEG[0]:g}, {DELTA_RANGE_DEG[1]:g}] deg")
         data[p] = np.ascontiguousarray(values)
     wafer = np.array(wafer, dtype=str)
     ids, first, counts = np.unique(wafer, return_index=True, return_counts=True)
@@ -748,7 +539,7 @@ def read_spectra_csv(path, technique, reflectance_unit="fraction", max_bytes=DEF
                                 f"at most {MAX_SITES_PER_WAFER} sites per wafer", file=path,
                                 line=numbers[first[k]], field="site")
     line = np.asarray(numbers, dtype=np.int64)
-    _check_rows_consistent(
+    check_rows_consistent(
         zip(wafer.tolist(), slot.tolist(), site.tolist(), ((path, n) for n in numbers)), "file")
     return SpectraTable(path=path, sha256=sha, technique=technique, wafer=wafer, slot=slot,
                         site=site, x_mm=np.ascontiguousarray(block[:, 2]),
@@ -780,9 +571,8 @@ def read_spectrum_file(path, max_bytes=DEFAULT_MAX_BYTES):
         Any problem with the file, naming the file and line.
     """
     path = Path(path)
-    raw = _read_bytes(path, max_bytes)
-    sha = hashlib.sha256(raw).hexdigest()
-    text = _decode(raw, path)
+    source = read_text_file(path, max_bytes)
+    sha, text = source.sha256, source.text
     hline, header_text, rows, numbers = _header_and_rows(text, path)
     names, _, spectral = _parse_header(header_text, rows[0] if rows else None, path, hline,
                                        "intensity", ())
@@ -796,102 +586,3 @@ def read_spectrum_file(path, max_bytes=DEFAULT_MAX_BYTES):
     _check_finite(block, numbers, cols, names, path)
     return Spectrum(path=path, sha256=sha, wavelength_nm=wavelength,
                     counts=np.ascontiguousarray(block[0]), line=numbers[0])
-
-
-def check_tables(tables, wafer_diameter_mm, boat_slots=None, wafer_per_file=True):
-    """Check a lot's spectra tables against each other, the wafer and the boat.
-
-    Parameters
-    ----------
-    tables : sequence of SpectraTable
-        All files of one lot.
-    wafer_diameter_mm : float
-        Wafer diameter in mm; every site must lie within the radius.
-    boat_slots : int, optional
-        Number of boat slots; every slot must lie in ``1..boat_slots``.
-    wafer_per_file : bool
-        Each wafer in one file (False for layouts with a file per site).
-
-    Returns
-    -------
-    None
-
-    Raises
-    ------
-    FilmmapInputError
-        Naming the file(s) and line(s): no tables; mixed techniques; a
-        different wavelength set; a slot outside the boat; a site outside the
-        wafer; a wafer in two files; a wafer in two slots; two wafers in one
-        slot; a duplicate (wafer, site).
-    """
-    tables = list(tables)
-    if not tables:
-        raise FilmmapInputError("no spectra files to check; expected at least one")
-    radius = float(wafer_diameter_mm) / 2.0
-    if not (math.isfinite(radius) and radius > 0):
-        raise FilmmapInputError(f"wafer diameter must be a positive number of mm, "
-                                f"got {wafer_diameter_mm!r}", field="wafer_diameter_mm")
-    seen = {}
-    for t in tables:
-        key = os.path.abspath(t.path)
-        if key in seen:
-            raise FilmmapInputError("file is listed twice; expected each spectra file once",
-                                    file=t.path)
-        seen[key] = t
-    ref = tables[0]
-    for t in tables[1:]:
-        if t.technique != ref.technique:
-            raise FilmmapInputError(
-                f"technique {t.technique!r} differs from {ref.technique!r} of {ref.path}; "
-                "expected all files of a lot to use one technique", file=t.path)
-        same = (t.wavelength_nm.size == ref.wavelength_nm.size
-                and np.allclose(t.wavelength_nm, ref.wavelength_nm, rtol=1e-9, atol=0.0))
-        if not same:
-            raise FilmmapInputError(
-                f"wavelength set differs from {ref.path}: "
-                f"{_describe_difference(t.wavelength_nm, ref.wavelength_nm)}; "
-                "expected the same wavelength columns in every file", file=t.path,
-                line=max(1, int(t.line[0]) - 1) if t.line.size else None)
-    for t in tables:
-        if boat_slots is not None:
-            out = (t.slot < 1) | (t.slot > int(boat_slots))
-            if out.any():
-                r = int(np.argmax(out))
-                raise FilmmapInputError(
-                    f"slot {int(t.slot[r])} is outside the boat (slots 1..{int(boat_slots)})",
-                    file=t.path, line=int(t.line[r]), field="slot")
-        rr = np.hypot(t.x_mm, t.y_mm)
-        out = ~(rr <= radius + _RADIUS_SLACK_MM)
-        if out.any():
-            r = int(np.argmax(out))
-            raise FilmmapInputError(
-                f"site {int(t.site[r])} at (x, y) = ({t.x_mm[r]:g}, {t.y_mm[r]:g}) mm lies "
-                f"{rr[r]:g} mm from the centre, outside the wafer radius {radius:g} mm",
-                file=t.path, line=int(t.line[r]), field="x_mm")
-    first_file = {}
-    for t in tables:
-        for w in dict.fromkeys(str(x) for x in t.wafer.tolist()):
-            r = int(np.argmax(t.wafer == w))
-            if w in first_file and str(first_file[w][0]) != str(t.path) and (
-                    wafer_per_file or first_file[w][2] != int(t.slot[r])):
-                other, oline, oslot = first_file[w]
-                slot = int(t.slot[r])
-                if oslot != slot:
-                    msg = (f"wafer {w!r} is in slot {slot} here but in slot {oslot} in "
-                           f"{other}:{oline}; expected one slot per wafer")
-                else:
-                    msg = (f"wafer {w!r} appears in two files: {other}:{oline} and here; "
-                           "expected each wafer in one file")
-                raise FilmmapInputError(msg, file=t.path, line=int(t.line[r]), field="wafer")
-            first_file.setdefault(w, (t.path, int(t.line[r]), int(t.slot[r])))
-    _check_rows_consistent(
-        (row for t in tables for row in zip(t.wafer.tolist(), t.slot.tolist(), t.site.tolist(),
-                                            ((t.path, n) for n in t.line.tolist()))), "lot")
-
-
-def _describe_difference(wl, ref):
-    if wl.size != ref.size:
-        return (f"{wl.size} wavelengths {wl[0]:g}-{wl[-1]:g} nm here, "
-                f"{ref.size} wavelengths {ref[0]:g}-{ref[-1]:g} nm there")
-    i = int(np.argmax(~np.isclose(wl, ref, rtol=1e-9, atol=0.0)))
-    return f"column {i + 1} of the spectrum is at {wl[i]:g} nm here but {ref[i]:g} nm there"

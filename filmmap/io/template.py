@@ -12,6 +12,7 @@ from pathlib import Path
 
 from filmmap.errors import FilmmapInputError
 from filmmap.io.atomic import write_text_atomic
+from filmmap.io.layouts import LAYOUTS
 
 TEMPLATE = '''\
 # filmmap lot file: one furnace run (a lot) measured on a reflectometer or ellipsometer.
@@ -29,7 +30,7 @@ files = ["spectra/*.csv"]       # globs of the data files
 wafer_diameter_mm = 150
 edge_exclusion_mm = 3
 reflectance_unit = "fraction"   # or "percent"
-# layout = "wide"               # or "long", "transposed", "site-files", "jcamp"
+# layout = "wide"               # or {other_layouts}
 # site_map = "polar-49"         # site -> x_mm, y_mm: "polar-<n>", "cartesian-<n>" or a CSV
 #                               #   site,x_mm,y_mm (when the files have no coordinates)
 # slot_map = "slots.csv"        # CSV wafer,slot (when the files have no slot)
@@ -82,6 +83,10 @@ minutes = 40.0
 from_C = 1000.0
 to_C = 750.0
 '''
+# the layouts the registry knows, so a new layout needs no edit here
+TEMPLATE = TEMPLATE.replace("{other_layouts}",
+                            ", ".join(f'"{name}"' for name in LAYOUTS if name != "wide"))
+
 
 
 def write_template(path):

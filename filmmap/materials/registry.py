@@ -1,42 +1,32 @@
-"""Materials by name, so a lot file can say ``material = "SiO2"``."""
+"""Materials by name, so a lot file can say ``material = "SiO2"``.
+
+The built-in materials take their published constants from `filmmap.reference_data` (the
+shipped reference files); this module reads no file. A user material's n,k table is read
+by `filmmap.io.nktable.read_nk_table`.
+"""
 
 from __future__ import annotations
 
-import tomllib
 from functools import lru_cache
-from importlib import resources
-from pathlib import Path
 
 from filmmap.errors import FilmmapInputError
 from filmmap.materials.base import Material
 from filmmap.materials.cauchy import Cauchy
 from filmmap.materials.sellmeier import Sellmeier
 from filmmap.materials.tabulated import Tabulated
-
-
-def reference_file(name):
-    """Path of a file in ``reference/`` whether filmmap is installed or run from a checkout."""
-    try:
-        candidate = resources.files("filmmap.reference").joinpath(name)
-        if candidate.is_file():
-            return Path(str(candidate))
-    except ModuleNotFoundError:
-        pass
-    path = Path(__file__).resolve().parents[2] / "reference" / name
-    if not path.is_file():
-        raise FileNotFoundError(f"reference data file {name!r} not found")
-    return path
+from filmmap.reference_data import reference_table, reference_toml
 
 
 def _sio2(extrapolate=False):
-    data = tomllib.loads(reference_file("sio2_malitson1965.toml").read_text(encoding="utf-8"))
+    data = reference_toml("sio2_malitson1965.toml")
     return Sellmeier("SiO2", data["B"], data["C_um"], data["range_nm"], data["source"], extrapolate)
 
 
 def _si(extrapolate=False):
-    table = Tabulated.from_csv(reference_file("si_green2008.csv"), name="Si", extrapolate=extrapolate)
-    table.source = "M. A. Green, Sol. Energy Mater. Sol. Cells 92, 1305 (2008)"
-    return table
+    columns, _comments = reference_table("si_green2008.csv")
+    return Tabulated("Si", columns["wavelength_nm"], columns["n"], columns["k"],
+                     source="M. A. Green, Sol. Energy Mater. Sol. Cells 92, 1305 (2008)",
+                     extrapolate=extrapolate)
 
 
 def _air(extrapolate=True):

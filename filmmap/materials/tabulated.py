@@ -1,14 +1,11 @@
-"""Tabulated n, k data with shape-preserving interpolation."""
+"""Tabulated n, k data with shape-preserving interpolation (the table comes as arrays; a
+user's CSV table is read by `filmmap.io.nktable.read_nk_table`)."""
 
 from __future__ import annotations
-
-import csv
-from pathlib import Path
 
 import numpy as np
 from scipy.interpolate import PchipInterpolator
 
-from filmmap.errors import FilmmapInputError
 from filmmap.materials.base import Material
 
 
@@ -67,61 +64,3 @@ class Tabulated(Material):
                     n[side] = self._n(edge) + self._n.derivative()(edge) * dw
                     k[side] = self._k(edge) + self._k.derivative()(edge) * dw
         return n - 1j * np.clip(k, 0.0, None)
-
-    @classmethod
-    def from_csv(cls, path, name=None, extrapolate=False):
-        """Read a table: ``#`` comment lines, header ``wavelength_nm,n,k``, numeric rows.
-
-        Parameters
-        ----------
-        path : str or path-like
-            CSV file; the comment lines are kept as the source text.
-        name : str, optional
-            Registry name (default: the file stem).
-        extrapolate : bool
-            Allow evaluation outside the table.
-        """
-        path = Path(path)
-        comments, rows = [], []
-        try:
-            text = path.read_text(encoding="utf-8-sig")
-        except (OSError, UnicodeDecodeError) as exc:
-            raise FilmmapInputError(f"cannot read n,k table: {exc}", file=path) from None
-        header = None
-        for lineno, line in enumerate(text.splitlines(), start=1):
-            if not line.strip():
-                continue
-            if line.lstrip().startswith("#"):
-                comments.append(line.lstrip("# ").rstrip())
-                continue
-            cells = next(csv.reader([line]))
-            if header is None:
-                header = [c.strip() for c in cells]
-                if header[:3] != ["wavelength_nm", "n", "k"]:
-                    raise FilmmapInputError(
-                        f"expected header 'wavelength_nm,n,k', found {','.join(header)!r}",
-                        file=path, line=lineno)
-                continue
-            try:
-                rows.append([float(c) for c in cells[:3]])
-            except ValueError:
-                raise FilmmapInputError(f"expected three numbers, found {line.strip()!r}",
-                                        file=path, line=lineno) from None
-            if len(cells) < 3 or not all(np.isfinite(rows[-1])):
-                raise FilmmapInputError("expected three finite numbers wavelength_nm,n,k",
-                                        file=path, line=lineno)
-            if rows[-1][2] < 0:
-                raise FilmmapInputError(f"k = {rows[-1][2]:g} is negative: k must be >= 0 "
-                                        "(N = n - ik, k absorbs)", file=path, line=lineno)
-            if len(rows) > 1 and rows[-1][0] <= rows[-2][0]:
-                raise FilmmapInputError(
-                    f"wavelength {rows[-1][0]:g} nm does not follow {rows[-2][0]:g} nm; expected "
-                    "strictly increasing wavelengths", file=path, line=lineno)
-        if header is None or len(rows) < 2:
-            raise FilmmapInputError("n,k table needs a header and at least two rows", file=path)
-        data = np.array(rows)
-        try:
-            return cls(name or path.stem, data[:, 0], data[:, 1], data[:, 2],
-                       source=" ".join(comments) or str(path), extrapolate=extrapolate)
-        except ValueError as exc:
-            raise FilmmapInputError(str(exc), file=path) from None

@@ -26,7 +26,8 @@ from filmmap.materials import ScaledIndex
 from filmmap.io.lotfile import read_lot_file
 from filmmap.io.layouts import PARTIAL_WAFER_LAYOUTS, Maps, read_spectra
 from filmmap.io.layouts.maps import lot_maps
-from filmmap.io.spectra_csv import check_tables, read_spectrum_file
+from filmmap.io.intensity import intensity_to_reflectance, read_dark_and_reference
+from filmmap.io.lotchecks import check_tables
 from filmmap.optics import Layer, Stack
 from filmmap.workers import end_with_parent
 
@@ -132,28 +133,6 @@ def lot_systematics(config, n_wavelengths=None):
                               ("wavelength_shift_nm", m.wavelength_shift_sigma_nm),
                               ("angle_offset_deg", m.angle_offset_sigma_deg)) if v is not None}
     return replace(base, **over)
-
-
-def intensity_to_reflectance(counts, dark, reference, R_si_model):
-    """Absolute reflectance from raw detector counts.
-
-    R = (I - I_dark) / (I_ref - I_dark) * R_Si,model, with I_ref the counts on a
-    bare-silicon reference wafer and R_Si,model that wafer's modelled
-    reflectance (common practice of spectral reflectometry, no source).
-
-    Parameters
-    ----------
-    counts : numpy.ndarray (n, m)
-        Sample counts.
-    dark, reference : numpy.ndarray (m,)
-        Dark and bare-Si reference counts.
-    R_si_model : numpy.ndarray (m,)
-        Modelled reflectance of bare Si at the measurement angle (fraction).
-    """
-    span = reference - dark
-    with np.errstate(divide="ignore", invalid="ignore"):
-        R = (counts - dark) / span * R_si_model
-    return np.where(span > 0, R, np.nan)
 
 
 @dataclass(frozen=True)
@@ -274,38 +253,6 @@ def _batches(files, rows_hint=49):
     return [files[i:i + per] for i in range(0, len(files), per)]
 
 
-def _dark_and_reference(config):
-    """Dark and bare-Si reference spectra in raw-intensity mode (dark optional: zero counts)."""
-    m = config.measurement
-    if not m.raw_intensity:
-        return None, None, []
-    ref = read_spectrum_file(m.reference_file)
-    if m.dark_file is None:
-        _check_reference_above_dark(ref, np.zeros_like(ref.counts), None)
-        return np.zeros_like(ref.counts), ref, [ref]
-    dark = read_spectrum_file(m.dark_file)
-    if dark.wavelength_nm.size != ref.wavelength_nm.size or not np.allclose(
-            dark.wavelength_nm, ref.wavelength_nm, rtol=1e-9, atol=0):
-        raise FilmmapInputError(f"wavelengths differ from the dark spectrum {dark.path}",
-                                file=ref.path)
-    _check_reference_above_dark(ref, dark.counts, dark.path)
-    return dark.counts, ref, [dark, ref]
-
-
-def _check_reference_above_dark(ref, dark_counts, dark_path):
-    """R = (I - dark)/(ref - dark) x R_Si needs ref > dark at every wavelength (else no data)."""
-    span = ref.counts - dark_counts
-    if np.all(span > 0):
-        return
-    k = int(np.argmax(~(span > 0)))
-    what = f"the dark {dark_path}" if dark_path is not None else "zero (no dark_file)"
-    raise FilmmapInputError(
-        f"reference counts {ref.counts[k]:g} at {ref.wavelength_nm[k]:g} nm are not above "
-        f"{what} ({dark_counts[k]:g}) at {int(np.sum(~(span > 0)))} of {span.size} wavelengths; "
-        "expected a bare-Si reference brighter than the dark at every wavelength",
-        file=ref.path, line=ref.line, field="reference_file")
-
-
 def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=None):
     """Fit every spectrum of a lot.
 
@@ -330,7 +277,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
         config = read_lot_file(lot_file)
     stack, free, _names = build_stack(config)
     m = config.measurement
-    dark, ref, extra_inputs = _dark_and_reference(config)
+    dark, ref, extra_inputs = read_dark_and_reference(config.measurement)
     maps, map_inputs = lot_maps(m)   # site and slot maps, read (and hashed) once
     angle = float(m.angle_deg)
     files = list(m.files)

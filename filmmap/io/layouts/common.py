@@ -1,35 +1,34 @@
-"""What every input layout shares: the maps, the text reading, the checks and the table built.
+"""What every input layout shares: the maps, the line and cell parsing, the table built.
 
-A layout reader turns one file into a `filmmap.io.spectra_csv.SpectraTable` (rows are
+A layout reader turns one file into a `filmmap.io.spectra.SpectraTable` (rows are
 sites). What the file does not carry (slot, x_mm, y_mm, sometimes the wafer and the
 site) comes from the `Maps` of the lot file: a site map (site number -> x_mm, y_mm),
 a slot map (wafer id -> slot) and a file-name pattern (``{wafer}``, ``{site}``,
 ``{slot}`` fields).
 
-Common mistakes are named here for every layout (after common practice, no source):
-wavelengths in micrometres, reflectance in percent read as a fraction (and the
-reverse), ellipsometric angles in radians or Delta outside both conventions.
+Common mistakes are named for every layout (after common practice, no source):
+wavelengths in micrometres (here), reflectance in percent read as a fraction (and the
+reverse), ellipsometric angles in radians or Delta outside both conventions (the
+technique's checks, `filmmap.io.techniques.check_values`).
 """
 
 from __future__ import annotations
 
-import hashlib
 import re
 from dataclasses import dataclass
 
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.spectra_csv import (DEFAULT_MAX_BYTES, SpectraTable, _decode, _read_bytes)
+from filmmap.io.lotchecks import check_rows_consistent
+from filmmap.io.spectra import SpectraTable
+from filmmap.io.techniques import check_values
+from filmmap.io.textfile import read_text_file
 
 #: Largest wavelength (in the file's numbers) that is taken as micrometres, not nm:
 #: optical thickness metrology works at 190-2500 nm, i.e. 0.19-2.5 um, so a set of
 #: wavelengths all below 20 cannot be nm (common practice, no source).
 MICROMETRE_LIMIT = 20.0
-
-_MAX_FRACTION = 1.5
-_PSI_RANGE = (0.0, 90.0)
-_DELTA_RANGE = (-180.0, 360.0)
 
 
 @dataclass(frozen=True)
@@ -56,16 +55,17 @@ class Maps:
     slot_map_file: str | None = None
 
 
-def read_text(path, max_bytes=DEFAULT_MAX_BYTES):
-    """(text, sha256) of a UTF-8 text file, read-only, with the readers' checks."""
-    raw = _read_bytes(path, max_bytes)
-    return _decode(raw, path), hashlib.sha256(raw).hexdigest()
-
-
 def data_lines(text):
     """(line number, stripped text) of the lines that are neither blank nor ``#`` comments."""
     return [(i + 1, line.strip()) for i, line in enumerate(text.split("\n"))
             if line.strip() and not line.strip().startswith("#")]
+
+
+def read_data_lines(path):
+    """`data_lines` of a text file (read by `filmmap.io.textfile.read_text_file`) and its
+    SHA-256."""
+    source = read_text_file(path)
+    return data_lines(source.text), source.sha256
 
 
 def number(cell, path, line, field):
@@ -149,64 +149,6 @@ def check_wavelengths(wl, path, line, field="wavelength"):
                                 "wavelength once", file=path, line=line, field=field)
 
 
-def check_values(technique, unit, data, path, lines, wl_lines=None):
-    """Reflectance scale (fraction or percent) and ellipsometric ranges; returns data in
-    filmmap's units (reflectance as a fraction).
-
-    Parameters
-    ----------
-    technique : str
-    unit : {"fraction", "percent"}
-    data : dict {"R": array} or {"psi": array, "delta": array}, shape (rows, wavelengths)
-    path : pathlib.Path
-    lines : numpy.ndarray of int
-        Line of each row (site).
-    wl_lines : numpy.ndarray of int, optional
-        Line of each wavelength, for layouts with a wavelength per line (then an
-        offending value is located by its wavelength).
-    """
-    def where(mask):
-        r = np.argwhere(mask)[0]
-        if wl_lines is not None:
-            return int(wl_lines[r[1]])
-        return int(lines[min(r[0], lines.size - 1)])
-
-    if technique in ("reflectance", "intensity") and "R" in data:
-        R = data["R"]
-        if np.any(R < 0):
-            raise FilmmapInputError(f"negative reflectance {R[R < 0][0]:g}; expected >= 0",
-                                    file=path, line=where(R < 0), field="R")
-        if unit == "fraction" and np.any(R > _MAX_FRACTION):
-            raise FilmmapInputError(
-                f"reflectance {R.max():g} is above {_MAX_FRACTION:g}, too large for a fraction "
-                'and looks like percent; if so, set reflectance_unit = "percent" in the lot file',
-                file=path, line=where(R > _MAX_FRACTION), field="R")
-        if unit == "percent":
-            if R.max() <= _MAX_FRACTION:
-                raise FilmmapInputError(
-                    f"all reflectance values are <= {_MAX_FRACTION:g} although the lot says "
-                    'reflectance_unit = "percent"; the file looks like fractions 0-1 - set '
-                    'reflectance_unit = "fraction"', file=path, line=int(lines[0]), field="R")
-            return {"R": R / 100.0}
-        return data
-    psi, delta = data["psi"], data["delta"]
-    if psi.size and np.max(np.abs(psi)) <= np.pi / 2 and np.max(np.abs(delta)) <= 2 * np.pi:
-        raise FilmmapInputError(
-            f"psi within {np.max(np.abs(psi)):.3g} and delta within {np.max(np.abs(delta)):.3g} "
-            "look like radians; expected degrees", file=path, line=int(lines[0]), field="psi")
-    bad = (psi < _PSI_RANGE[0]) | (psi > _PSI_RANGE[1])
-    if bad.any():
-        raise FilmmapInputError(f"psi {psi[bad][0]:g} deg is outside [0, 90] deg", file=path,
-                                line=where(bad), field="psi")
-    bad = (delta < _DELTA_RANGE[0]) | (delta > _DELTA_RANGE[1])
-    if bad.any():
-        raise FilmmapInputError(
-            f"delta {delta[bad][0]:g} deg is outside both conventions, (-180, 180] and "
-            "[0, 360) deg; expected degrees in one of them", file=path, line=where(bad),
-            field="delta")
-    return data
-
-
 def build_table(path, sha, technique, unit, maps, *, wafer, site, wavelength, data, line,
                 slot=None, x_mm=None, y_mm=None, wl_lines=None):
     """A checked `SpectraTable` from a layout's columns, completed by the maps.
@@ -271,9 +213,7 @@ def build_table(path, sha, technique, unit, maps, *, wafer, site, wavelength, da
     if wl_lines is not None:
         wl_lines = np.asarray(wl_lines, dtype=np.int64)[order]
     data = check_values(technique, unit, data, path, line, wl_lines)
-    from filmmap.io.spectra_csv import _check_rows_consistent
-
-    _check_rows_consistent(zip(wafer.tolist(), slot.tolist(), site.tolist(),
+    check_rows_consistent(zip(wafer.tolist(), slot.tolist(), site.tolist(),
                                ((path, int(n)) for n in line)), "file")
     return SpectraTable(path=path, sha256=sha, technique=technique, wafer=wafer, slot=slot,
                         site=site, x_mm=np.ascontiguousarray(np.asarray(x_mm, dtype=float)),

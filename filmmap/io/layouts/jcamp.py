@@ -18,9 +18,12 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import build_table, fields_from_name, read_text
+from filmmap.io.layouts.common import build_table, fields_from_name
+from filmmap.io.textfile import read_text_file
 
 NAME = "jcamp"
+TECHNIQUES = ("reflectance",)
+WAFER_PER_FILE = False
 EXAMPLE = """\
 ##TITLE= W2-04 site 3
 ##JCAMP-DX= 4.24
@@ -36,15 +39,12 @@ EXAMPLE = """\
 def read(path, technique, unit, maps):
     """One JCAMP-DX file as a one-row `SpectraTable`."""
     path = Path(path)
-    if technique != "reflectance":
-        raise FilmmapInputError("the jcamp layout holds reflectance spectra only; expected "
-                                "technique 'reflectance'", file=path, field="measurement.layout")
     try:
         import jcamp
     except ImportError:
         raise FilmmapInputError("layout 'jcamp' needs the optional package: pip install "
                                 "'filmmap[jcamp]'", file=path, field="measurement.layout") from None
-    _text, sha = read_text(path)
+    sha = read_text_file(path).sha256
     try:
         d = jcamp.readfile(str(path))
     except Exception as exc:  # noqa: BLE001 - the package raises many kinds on bad files

@@ -14,10 +14,13 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import (build_table, data_lines, fields_from_name, integer,
-                                       number, read_text)
+from filmmap.io.layouts.common import (build_table, fields_from_name, integer, number,
+                                       read_data_lines)
+from filmmap.io.techniques import QUANTITIES
 
 NAME = "long"
+TECHNIQUES = ("reflectance", "ellipsometry")
+WAFER_PER_FILE = True
 EXAMPLE = """\
 wafer,site,wavelength_nm,R
 W2-04,1,400,0.2512
@@ -32,14 +35,13 @@ _OPTIONAL = ("wafer", "slot", "x_mm", "y_mm")
 def read(path, technique, unit, maps):
     """One long CSV file as a `SpectraTable`."""
     path = Path(path)
-    text, sha = read_text(path)
-    lines = data_lines(text)
+    lines, sha = read_data_lines(path)
     if not lines:
         raise FilmmapInputError("empty file; expected a header and one row per site and "
                                 "wavelength", file=path)
     hline, header = lines[0]
     cols = [c.strip() for c in header.split(",")]
-    quantities = ("R",) if technique in ("reflectance", "intensity") else ("psi", "delta")
+    quantities = QUANTITIES[technique]
     known = ("site", "wavelength_nm") + quantities + _OPTIONAL
     for c in cols:
         if c not in known:

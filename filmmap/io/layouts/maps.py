@@ -26,7 +26,7 @@ import re
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import Maps, data_lines, integer, number, read_text
+from filmmap.io.layouts.common import Maps, integer, number, read_data_lines
 
 CARTESIAN_COUNTS = tuple(k * k for k in range(1, 12))
 
@@ -69,8 +69,7 @@ def builtin_site_map(name, diameter_mm, edge_exclusion_mm):
 
 
 def _rows(path, columns):
-    text, sha = read_text(path)
-    lines = data_lines(text)
+    lines, sha = read_data_lines(path)
     if not lines:
         raise FilmmapInputError(f"empty map; expected a header {','.join(columns)}", file=path)
     hline, header = lines[0]

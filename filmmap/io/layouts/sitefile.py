@@ -15,10 +15,12 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import (build_table, data_lines, fields_from_name, number,
-                                       read_text)
+from filmmap.io.layouts.common import build_table, fields_from_name, number, read_data_lines
+from filmmap.io.techniques import QUANTITIES
 
 NAME = "site-files"
+TECHNIQUES = ("reflectance", "ellipsometry")
+WAFER_PER_FILE = False
 EXAMPLE = """\
 # W2-04_site3.txt
 wavelength_nm,R
@@ -33,9 +35,8 @@ _SPLIT = re.compile(r"\s*[,\t]\s*|\s+")
 def read(path, technique, unit, maps):
     """One site's file as a one-row `SpectraTable`."""
     path = Path(path)
-    text, sha = read_text(path)
-    lines = data_lines(text)
-    quantities = ("R",) if technique in ("reflectance", "intensity") else ("psi", "delta")
+    lines, sha = read_data_lines(path)
+    quantities = QUANTITIES[technique]
     ncol = 1 + len(quantities)
     if lines and not re.match(r"[+-]?[\d.]", lines[0][1]):
         lines = lines[1:]          # a header of names

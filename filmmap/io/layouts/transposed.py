@@ -15,10 +15,12 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import (build_table, data_lines, fields_from_name, number,
-                                       read_text)
+from filmmap.io.layouts.common import build_table, fields_from_name, number, read_data_lines
+from filmmap.io.techniques import QUANTITIES
 
 NAME = "transposed"
+TECHNIQUES = ("reflectance", "ellipsometry")
+WAFER_PER_FILE = True
 EXAMPLE = """\
 wavelength_nm,1,2,3
 400,0.2512,0.2498,0.2505
@@ -33,8 +35,7 @@ _COLUMN = re.compile(r"(?:(R|psi|delta):)?(\d+)\Z")
 def read(path, technique, unit, maps):
     """One transposed CSV file (one wafer) as a `SpectraTable`."""
     path = Path(path)
-    text, sha = read_text(path)
-    lines = data_lines(text)
+    lines, sha = read_data_lines(path)
     if len(lines) < 2:
         raise FilmmapInputError("expected a header and one row per wavelength", file=path)
     hline, header = lines[0]
@@ -43,7 +44,7 @@ def read(path, technique, unit, maps):
         raise FilmmapInputError(f"first column {cols[0]!r}; expected 'wavelength_nm' (a "
                                 "transposed layout: one row per wavelength)", file=path,
                                 line=hline, field=cols[0])
-    quantities = ("R",) if technique in ("reflectance", "intensity") else ("psi", "delta")
+    quantities = QUANTITIES[technique]
     where = {q: {} for q in quantities}   # quantity -> site -> column index
     for j, c in enumerate(cols[1:], start=1):
         m = _COLUMN.match(c)

@@ -1,7 +1,7 @@
 """The wide CSV (filmmap's own, pinned): one row per site, ``wafer, slot, site, x_mm, y_mm, R@..``.
 
 Format: `filmmap.io.spectra_csv`. A file with every one of those columns is read by
-that (strict, fast) reader; this module adds the micrometre check, which the wide
+that (strict, fast) parser; this module adds the micrometre check, which the wide
 reader alone turns into a less helpful material-range error later.
 
 With maps, rows need only what the instrument writes: ``site`` and the spectral
@@ -17,11 +17,14 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.layouts.common import (build_table, check_wavelengths, data_lines,
-                                       fields_from_name, integer, number, read_text)
+from filmmap.io.layouts.common import (build_table, check_wavelengths, fields_from_name,
+                                       integer, number, read_data_lines)
 from filmmap.io.spectra_csv import REQUIRED_COLUMNS, read_spectra_csv
+from filmmap.io.techniques import QUANTITIES
 
 NAME = "wide"
+TECHNIQUES = ("reflectance", "ellipsometry", "intensity")
+WAFER_PER_FILE = True
 EXAMPLE = """\
 wafer,slot,site,x_mm,y_mm,R@400,R@410,R@420
 W2-04,4,1,0.000,0.000,0.2512,0.2633,0.2741
@@ -43,8 +46,7 @@ def read(path, technique, unit, maps):
         table = read_spectra_csv(path, technique, unit)
         check_wavelengths(table.wavelength_nm, table.path, max(1, int(table.line[0]) - 1))
         return table
-    text, sha = read_text(path)
-    lines = data_lines(text)
+    lines, sha = read_data_lines(path)
     return _read_mapped(path, sha, technique, unit, maps, lines,
                         [c.strip() for c in lines[0][1].split(",")])
 
@@ -65,7 +67,7 @@ def _peek_header(path, limit=1 << 16):
 
 def _read_mapped(path, sha, technique, unit, maps, lines, header):
     hline = lines[0][0]
-    quantities = ("R",) if technique == "reflectance" else ("psi", "delta")
+    quantities = QUANTITIES[technique]
     fixed, spectral = {}, {q: {} for q in quantities}
     for j, c in enumerate(header):
         m = _SPECTRAL.match(c)
