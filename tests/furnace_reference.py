@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import numpy as np
 
-K_B = 8.617333e-5          # eV/K (CODATA)
+K_B = 8.617333262e-5       # eV/K (CODATA 2018)
 WET = dict(C1=386.0, E1=0.78, C2=1.63e8, E2=2.05)     # um^2/h, eV, um/h, eV
 DRY = dict(C1=772.0, E1=1.23, C2=6.23e6, E2=2.0)      # um^2/h, eV, um/h, eV
 ORIENTATION_100 = 1.68
