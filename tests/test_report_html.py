@@ -108,6 +108,7 @@ def test_html_contains_slot_profile_image(report):
     assert len(prof) == 1
     assert "slot profile" in prof[0]["alt"].lower()
     data = base64.b64decode(prof[0]["src"].split(",", 1)[1])
+    # a blank canvas of that size is 1 kB as PNG, this plot 4.8 kB at 40 dpi
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 2000
     # contact sheet, fit-quality histogram and 8 wafer maps are images too
     assert len(imgs) == 1 + 1 + 1 + 8
@@ -179,6 +180,7 @@ def test_streamed_file_equals_the_rendered_string(report):
     def stamp(s):
         return re.sub(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d[+\-]\d\d:\d\d", "T", s)
     assert stamp(text) == stamp(again)
+    # a whole page with its images (measured 130 kB), not a truncated head
     assert len(text) > 10000 and text.endswith("</html>\n")
 
 
