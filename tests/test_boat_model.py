@@ -57,7 +57,9 @@ def test_cold_zone_without_end_effect_gets_trims_not_dummies():
     adv, means = run_advice(T)
     assert adv["extra_dummies"] == {"load": 0, "source": 0}
     rel = relative_trims(adv)
-    assert rel["load"] - rel["center"] == pytest.approx(4.0, abs=0.3)
+    # the smallest-trim term makes each trim about 1 % small (0.04 K of 4 K; measured 3.97)
+    assert rel["load"] - rel["center"] == pytest.approx(4.0, abs=0.1)
+    # a pure step error, read with a step model: almost nothing is left (measured 0.7 %)
     assert next_run_spread(T, adv) < 0.1 * np.std(means)
     assert any("zone 'load'" in r["action"] and "zone error" in r["answers"]
                for r in adv["recommendations"])
@@ -67,7 +69,7 @@ def test_open_end_with_exact_zones_gets_dummies_not_a_zone_trim():
     # (b) the first product slots run cold from the open end (-9, -5, -2.5, -1 K on
     # slots 4-7), zones exact: extra dummies at the load end, no zone trim beyond 1 K
     T = door_effect(PRODUCT)
-    np.testing.assert_allclose(T[:4], [-9.0, -3.9, -1.7, -0.7], atol=0.1)
+    np.testing.assert_allclose(T[:4], [-9.0, -3.9, -1.7, -0.7], atol=0.05)   # to 1 decimal
     adv, _ = run_advice(T)
     assert adv["extra_dummies"]["load"] >= 1 and adv["extra_dummies"]["source"] == 0
     assert max(abs(v) for v in relative_trims(adv).values()) <= 1.0
@@ -91,6 +93,8 @@ def test_cold_zone_and_open_end_together_are_told_apart():
         assert errs[z] - errs["center"] == pytest.approx(true_rel[z] - true_rel["center"], rel=0.3)
     assert bm["end_effects"]["load"]["amplitude_C"] == pytest.approx(-9.0, rel=0.3)
     assert adv["extra_dummies"]["load"] >= 1
+    # trims answer the zones only; the door's slots stay in this spread until the extra
+    # dummies go in, so it only halves (measured 0.494: a tight but noise-free figure)
     assert next_run_spread(T, adv) < 0.5 * np.std(means)
 
 
@@ -125,5 +129,8 @@ def test_coupling_width_from_a_profiling_run():
     after = base + zone_profile(PRODUCT, ZONES, [0.0, 3.0, 0.0], width_slots=4.0)
     cal = [calibrate_slots(RECIPE, PRODUCT, measured_means(T)).offset_C for T in (base, after)]
     width, rms = coupling_width_from_profiling(PRODUCT, cal[0], cal[1], ZONES, "center", 3.0)
-    assert width == pytest.approx(4.0, abs=0.5)
-    assert rms < 0.1
+    # noise-free, and furnace_reference's logistic is the shape filmmap scans: the scan's
+    # own step (0.25 slots) is the resolution; the misfit is the calibration's tolerance
+    # (measured: width 4.0, rms 4e-8 K)
+    assert width == pytest.approx(4.0, abs=0.25)
+    assert rms < 1e-3

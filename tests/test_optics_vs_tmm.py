@@ -97,8 +97,9 @@ def _delta_gap(a, b):
 @pytest.mark.parametrize("substrate_name", list(SUBSTRATES))
 def test_random_stacks_match_tmm(substrate_name):
     # Byrnes 2016 (arXiv:1603.02720) / tmm.coh_tmm and tmm.ellips as the reference.
-    # Tolerances |dR| <= 1e-10 and |dPsi|, |dDelta| <= 1e-8 deg: both codes are exact
-    # formulas in double precision, so only rounding separates them.
+    # Tolerances |dR| <= 1e-12 and |dPsi|, |dDelta| <= 1e-10 deg: both codes are exact
+    # formulas in double precision, so only rounding separates them (measured 1.8e-14 in R,
+    # 5.6e-12 deg; the factor ~100 is room for another libm or BLAS).
     substrate = SUBSTRATES[substrate_name]
     seed = {"Si": 11, "made-up-table": 12, "made-up-urbach": 13}[substrate_name]
     worst = {"Rs": 0.0, "Rp": 0.0, "Ru": 0.0, "psi": 0.0, "delta": 0.0}
@@ -129,11 +130,11 @@ def test_random_stacks_match_tmm(substrate_name):
             worst["delta"] = max(worst["delta"], float(_delta_gap(delta[i], delta_mapped)))
             n_compared += 1
     assert n_compared == 3 * N_CASES
-    assert worst["Rs"] <= 1e-10, worst
-    assert worst["Rp"] <= 1e-10, worst
-    assert worst["Ru"] <= 1e-10, worst
-    assert worst["psi"] <= 1e-8, worst
-    assert worst["delta"] <= 1e-8, worst
+    assert worst["Rs"] <= 1e-12, worst
+    assert worst["Rp"] <= 1e-12, worst
+    assert worst["Ru"] <= 1e-12, worst
+    assert worst["psi"] <= 1e-10, worst
+    assert worst["delta"] <= 1e-10, worst
 
 
 def test_tmm_ellips_mapping_itself():
@@ -145,8 +146,9 @@ def test_tmm_ellips_mapping_itself():
         e = tmm.ellips([1.0, np.conj(N_ox[0]), np.conj(N_si[0])], [np.inf, 123.4, np.inf],
                        np.deg2rad(angle), 632.8)
         psi, delta = transfer.psi_delta(wl, 1.0, [N_ox], [123.4], N_si, angle)
-        assert abs(psi[0] - np.degrees(e["psi"])) <= 1e-8
-        assert _delta_gap(delta[0], np.mod(180.0 - np.degrees(e["Delta"]), 360.0)) <= 1e-8
+        # rounding only, as in test_random_stacks_match_tmm
+        assert abs(psi[0] - np.degrees(e["psi"])) <= 1e-10
+        assert _delta_gap(delta[0], np.mod(180.0 - np.degrees(e["Delta"]), 360.0)) <= 1e-10
 
 
 def test_batched_call_matches_tmm_per_point():
@@ -162,7 +164,7 @@ def test_batched_call_matches_tmm_per_point():
         for b in range(wl.size):
             ref = tmm.coh_tmm("s", [1.0, np.conj(N_ox[b]), np.conj(N_si[b])],
                               [np.inf, d[a], np.inf], 0.0, wl[b])["R"]
-            assert abs(R[a, b] - ref) <= 1e-10
+            assert abs(R[a, b] - ref) <= 1e-12           # rounding only, as above
 
 
 def test_stack_object_matches_tmm():
@@ -179,9 +181,10 @@ def test_stack_object_matches_tmm():
         d_list = [np.inf, 80.0, 500.0, np.inf]
         ru = tmm.unpolarized_RT(n_list, d_list, np.deg2rad(55.0), lam)["R"]
         e = tmm.ellips(n_list, d_list, np.deg2rad(65.0), lam)
-        assert abs(R[i] - ru) <= 1e-10
-        assert abs(psi[i] - np.degrees(e["psi"])) <= 1e-8
-        assert _delta_gap(delta[i], np.mod(180.0 - np.degrees(e["Delta"]), 360.0)) <= 1e-8
+        # rounding only, as in test_random_stacks_match_tmm
+        assert abs(R[i] - ru) <= 1e-12
+        assert abs(psi[i] - np.degrees(e["psi"])) <= 1e-10
+        assert _delta_gap(delta[i], np.mod(180.0 - np.degrees(e["Delta"]), 360.0)) <= 1e-10
 
 
 @pytest.mark.parametrize("layer_names", [
@@ -201,4 +204,4 @@ def test_batched_substrate_indices_match_tmm(layer_names):
         for b, lam in enumerate(wl):
             n_list = [1.0] + [np.conj(N[b]) for N in N_l] + [np.conj(N_sub[a, b])]
             ref = tmm.unpolarized_RT(n_list, [np.inf] + d + [np.inf], np.deg2rad(50.0), lam)["R"]
-            assert abs(R[a, b] - ref) <= 1e-10
+            assert abs(R[a, b] - ref) <= 1e-12           # rounding only, as above

@@ -120,6 +120,7 @@ def test_reflectance_lot_round_trip_through_cli(tmp_path):
     for name in ("mean_nm", "sigma_nm", "nu_pct", "range_nm", "halfrange_pct", "sites_used"):
         assert ds[name].dims == ("wafer",), name
     assert int(ds["sites_used"].sel(wafer="A01")) == 9
+    # the mean of 9 sites each within the noise-free 0.01 nm
     np.testing.assert_allclose(float(ds["mean_nm"].sel(wafer="A01")),
                                np.mean(wafers["A01"][1]), atol=0.01)
     assert ds["zernike_nm"].dims == ("wafer", "zernike") and ds["zernike"].values[0] == 1
@@ -182,6 +183,8 @@ def test_workers_give_identical_results(tmp_path):
         r = run_cli("reduce", lot, "-o", out, "--no-figures", "--quiet", "--workers", w)
         assert r.returncode == 0, r.stderr
         outs.append(xr.open_dataset(out / "lot.nc"))
+    # other batches start the local fit from other grid scores: equal to well inside the
+    # fit's convergence (see test_fitting's batch-size test), 1e-3 nm
     np.testing.assert_allclose(outs[0]["thickness"], outs[1]["thickness"], atol=1e-3, rtol=0)
 
 
@@ -207,6 +210,7 @@ def test_reflectance_offset_on_thin_films(tmp_path, extra, offset_prior):
     off = ds["reflectance_offset"].values
     off_sigma = ds["reflectance_offset_sigma"].values
     # the posterior offset lies between the prior mean and the truth, within its sigma
+    # (1e-4 of slack above the truth for the fit's convergence; measured 0.0025-0.0037)
     assert np.all((off > 0) & (off <= 0.004 + 1e-4)), off
     assert np.all(np.abs(off - 0.004) <= 3 * off_sigma), (off, off_sigma)
     assert np.all(off_sigma < offset_prior)   # the data do say something
@@ -355,8 +359,11 @@ def test_reversed_delta_convention_is_named_once_and_can_be_declared(tmp_path):
     assert r.returncode == 0, r.stderr
     ds = xr.open_dataset(tmp_path / "out2" / "lot.nc")
     assert ds["fit_ok"].values.all()
+    # noise-free tmm spectra once the convention is declared: the fitting issue's 0.01 nm
+    # (measured 9e-4 nm)
+    assert len(truth) == 9
     for (wid, site), d in truth.items():
-        assert abs(float(ds["thickness"].sel(wafer=wid, site=site)) - d) < 0.5
+        assert abs(float(ds["thickness"].sel(wafer=wid, site=site)) - d) < 0.01
 
 
 def test_lot_nc_carries_total_and_statistical_sigma_unchecked_values_and_suspects(tmp_path):
@@ -384,7 +391,7 @@ def test_lot_nc_carries_total_and_statistical_sigma_unchecked_values_and_suspect
     assert np.all(ds["thickness_sigma_stat"].values[ok] <= ds["thickness_sigma"].values[ok])
     np.testing.assert_allclose(ds["thickness_unchecked"].values[ok], ds["thickness"].values[ok])
     corr = ds["parameter_correlation"].values[ok]
-    np.testing.assert_allclose(np.einsum("nii->ni", corr), 1.0, atol=1e-9)
+    np.testing.assert_allclose(np.einsum("nii->ni", corr), 1.0, atol=1e-12)   # rounding
     suspect = ds["suspect"].values.astype(bool)
     assert suspect.sum() == 1 and ok[suspect].all()
     assert str(ds["fit_note"].values[suspect][0]).startswith("suspect:")

@@ -160,14 +160,16 @@ def test_page_images_are_written_as_pages_complete(tmp_path):
     colours = [(255, 0, 0), (0, 160, 0), (0, 0, 255)]
     path = tmp_path / "pages.pdf"
     with PdfPages(path) as pdf:
-        for c in colours:
+        for page, c in enumerate(colours, start=1):
             fig = Figure(figsize=(2, 2))
             ax = fig.add_axes((0, 0, 1, 1))
             ax.imshow(np.full((20, 20, 3), c, dtype=np.uint8), interpolation="none")
             ax.set_axis_off()
             pdf.savefig(fig)
             _write_page_images_now(pdf)
-            assert all(isinstance(k, tuple) for k in pdf._file._images)   # none held back
+            # one written entry per page so far, none held back as a live image
+            keys = list(pdf._file._images)
+            assert len(keys) == page and all(isinstance(k, tuple) for k in keys), keys
     data = path.read_bytes()
     assert data.count(b"/Subtype /Image") == len(colours)
     if shutil.which("pdftoppm") is None:

@@ -91,7 +91,7 @@ def test_slot_profile_colours_viridis_or_grey():
     _, view = _view()
     fig = slot_profile_figure(view, dpi=40)
     cols = _colours(fig)
-    assert len(cols) > 10
+    assert len(cols) > 10          # points, bars, band and lines were really collected
     bad = [c for c in cols if not _allowed(c)]
     assert not bad
 

@@ -39,7 +39,8 @@ def test_single_wafer_png(tmp_path):
     t[5] = np.nan
     path = render_wafer_png(tmp_path / "w.png", t, None, SITES.x_mm, SITES.y_mm, D, EE,
                             wafer_id="W07", slot=7, figsize_in=(6.4, 5.6), dpi=50)
-    assert path.stat().st_size > 1000
+    # a blank 320 x 280 canvas is 1.1 kB as PNG, this map 11 kB: 5 kB tells them apart
+    assert path.stat().st_size > 5000
     img = mpimg.imread(path)
     assert img.shape[:2] == (280, 320)
     assert img[..., :3].std() > 0.05                 # not a blank canvas
@@ -232,10 +233,13 @@ def test_contact_sheet_png_matches_the_figure_layout_and_bounds_its_pixels():
     fig = lot_contact_sheet(t, None, SITES.x_mm, SITES.y_mm, D, EE, **kw)
     img = Image.open(io.BytesIO(contact_sheet_png(t, None, SITES.x_mm, SITES.y_mm, D, EE, **kw)))
     w_in, h_in = fig.get_size_inches()
+    # each cell and band is rounded to whole pixels: a few pixels either way (measured 0)
     assert abs(img.size[0] - w_in * 40) <= 3 and abs(img.size[1] - h_in * 40) <= 3
     rgb = np.asarray(img.convert("RGB")).reshape(-1, 3).astype(int)
     yellow = np.array([253, 231, 37])                              # viridis(1.0)
+    # anti-aliasing and PNG colours round it slightly (measured 12 in summed RGB units)
     assert np.min(np.abs(rgb - yellow).sum(axis=1)) < 40
     small = Image.open(io.BytesIO(contact_sheet_png(np.tile(t, (8, 1)), None, SITES.x_mm,
                                                     SITES.y_mm, D, EE, max_pixels=2e5)))
-    assert small.size[0] * small.size[1] <= 2e5 * 1.05
+    # cells rounded to whole pixels may overshoot the budget a little (measured 0.1 %)
+    assert small.size[0] * small.size[1] <= 2e5 * 1.02

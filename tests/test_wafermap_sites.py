@@ -31,7 +31,7 @@ def test_inside_edge_exclusion_outer_ring_on_it(n):
     assert np.all(inside_edge_exclusion(s.x_mm, s.y_mm, D, EE))
     r = np.hypot(s.x_mm, s.y_mm)
     if n > 1:
-        assert r.max() == pytest.approx(D / 2 - EE, abs=1e-9)
+        assert r.max() == pytest.approx(D / 2 - EE, abs=1e-9)   # cos/sin rounding at 147 mm
         # a slightly larger exclusion drops exactly the outer ring
         outer = LAYOUTS[n][-1][1]
         assert (~inside_edge_exclusion(s.x_mm, s.y_mm, D, EE + 0.01)).sum() == outer
@@ -45,7 +45,7 @@ def test_mirror_symmetric(n):
     for flip in ([-1, 1], [1, -1], [-1, -1]):
         mirrored = pts * flip
         dist = np.linalg.norm(mirrored[:, None, :] - pts[None, :, :], axis=-1)
-        assert np.all(dist.min(axis=1) < 1e-9)
+        assert np.all(dist.min(axis=1) < 1e-9)       # mm; cos/sin rounding only
 
 
 def test_49_site_rings_and_order():
@@ -58,6 +58,7 @@ def test_49_site_rings_and_order():
     np.testing.assert_allclose(r[9:25], 2 * rm / 3)
     np.testing.assert_allclose(r[25:], rm)
     ang = np.degrees(np.arctan2(s.y_mm, s.x_mm)) % 360
+    # degrees back from rounded coordinates: rounding only
     np.testing.assert_allclose(ang[1:9], 45.0 * np.arange(8), atol=1e-9)
     np.testing.assert_allclose(ang[25:], 15.0 * np.arange(24), atol=1e-9)
 
@@ -66,7 +67,7 @@ def test_ring_sites_custom():
     # common practice, no source
     s = ring_sites([50.0], [3], start_deg=[90.0], centre=False)
     c210, c330 = 50 * np.cos(np.radians(210)), 50 * np.cos(np.radians(330))
-    np.testing.assert_allclose(s.x_mm, [0.0, c210, c330], atol=1e-12)
+    np.testing.assert_allclose(s.x_mm, [0.0, c210, c330], atol=1e-12)   # rounding (mm)
     np.testing.assert_allclose(s.y_mm, [50.0, -25.0, -25.0], atol=1e-12)
 
 

@@ -23,6 +23,7 @@ def test_hand_worked_five_sites():
     #   min 98, max 102, range 4 nm ; half-range % = 100 * 4 / (2 * 100) = 2 %
     s = polar_sites(5, D, EE)
     st = within_wafer_stats([100.0, 102.0, 98.0, 101.0, 99.0], None, s.x_mm, s.y_mm, D, EE)
+    # abs 1e-12: sums of five numbers near 100, rounding only
     assert st.sites_used == 5
     assert st.mean_nm == pytest.approx(100.0, abs=1e-12)
     assert st.sigma_nm == pytest.approx(np.sqrt(2.5), abs=1e-12)
@@ -56,6 +57,7 @@ def test_against_numpy_and_scipy():
     st = within_wafer_stats(t, ok, s.x_mm, s.y_mm, D, EE)
     for w in range(t.shape[0]):
         v = t[w][ok[w] & np.isfinite(t[w])]
+        # rounding: sums in another order (1e-13), the variance's cancellation (1e-11)
         assert st.sites_used[w] == v.size
         assert st.mean_nm[w] == pytest.approx(np.mean(v), rel=1e-13)
         assert st.sigma_nm[w] == pytest.approx(np.std(v, ddof=1), rel=1e-11)
@@ -69,6 +71,7 @@ def test_large_offset_two_pass_accuracy():
     s = polar_sites(5, D, EE)
     st = within_wafer_stats(1e9 + np.array([100.0, 102.0, 98.0, 101.0, 99.0]), None,
                             s.x_mm, s.y_mm, D, EE)
+    # each value carries eps x 1e9 = 2e-7 nm of rounding; sigma 1.58 nm keeps ~1e-7 of it
     assert st.sigma_nm == pytest.approx(np.sqrt(2.5), rel=1e-6)
 
 

@@ -1,4 +1,9 @@
-"""Thin-plate-spline maps: interpolation at the sites, masking, and leave-one-out error."""
+"""Thin-plate-spline maps: interpolation at the sites, masking, and leave-one-out error.
+
+Where two exact computations meet (the spline at its own sites, Rippa's formula against a
+refit, filmmap's spline against scipy's RBFInterpolator), the tolerance 1e-10 nm is the
+rounding of solving the spline's linear system (measured 1e-13 to 5e-13 nm).
+"""
 
 import numpy as np
 import pytest
@@ -28,7 +33,7 @@ def test_polar_map_passes_through_sites():
     ang = np.degrees(np.arctan2(s.y_mm, s.x_mm)) % 360
     ir = np.rint(r / RM * 36).astype(int)
     it = np.rint(ang / 2.5).astype(int)
-    np.testing.assert_allclose(p.thickness_nm[:, it, ir], t, atol=1e-8)
+    np.testing.assert_allclose(p.thickness_nm[:, it, ir], t, atol=1e-10)
     X, Y, Z = p.mesh(0)
     np.testing.assert_allclose(np.hypot(X, Y).max(), RM)   # the mesh ends on the measured circle
 
@@ -43,7 +48,7 @@ def test_cartesian_map_passes_through_sites_on_nodes():
     x, y = GX.ravel()[pick], GY.ravel()[pick]
     t = _bowl_tilt(x, y) + rng.normal(0, 0.2, x.size)
     s = tps_surface(t, None, x, y, D, EE, n_grid=101)
-    np.testing.assert_allclose(s.thickness_nm.ravel()[pick], t, atol=1e-8)
+    np.testing.assert_allclose(s.thickness_nm.ravel()[pick], t, atol=1e-10)
 
 
 def test_nan_beyond_measured_radius():
@@ -87,7 +92,7 @@ def test_rippa_loo_equals_brute_force():
             spline = RBFInterpolator(np.column_stack([s.x_mm[keep], s.y_mm[keep]]), t[w, keep],
                                      kernel="thin_plate_spline")
             pred = spline(np.array([[s.x_mm[i], s.y_mm[i]]]))[0]
-            assert loo.error_nm[w, i] == pytest.approx(t[w, i] - pred, abs=1e-8)
+            assert loo.error_nm[w, i] == pytest.approx(t[w, i] - pred, abs=1e-10)
     assert np.isnan(loo.error_nm[1, 7])
     used = np.isfinite(t)
     np.testing.assert_allclose(loo.rms_nm, [np.sqrt(np.mean(loo.error_nm[w, used[w]] ** 2))
@@ -105,8 +110,11 @@ def test_loo_small_for_smooth_large_for_rough(n_sites):
     smooth = _bowl_tilt(x, y)
     rough = 100 + np.random.default_rng(0).normal(0, 1.0, n_sites)
     loo = tps_loo(np.vstack([plane, smooth, rough]), None, x, y, D, EE)
-    assert loo.rms_nm[0] < 1e-9
-    assert loo.rms_nm[1] < 0.02 * np.ptp(smooth)
+    assert loo.rms_nm[0] < 1e-9                       # rounding (measured 1e-12)
+    assert loo.rms_nm[1] < 0.02 * np.ptp(smooth)      # measured 0.2-0.6 %
+    # white noise: a prediction from the neighbours adds its own error, so the expected
+    # LOO rms exceeds 1 nm; an rms from 49 values scatters by ~10 %, hence 0.9 (measured
+    # 1.00 and 1.21)
     assert loo.rms_nm[2] > 0.9
 
 
@@ -140,7 +148,7 @@ def test_lot_spline_equals_each_wafers_own_spline():
         z = surf.thickness_nm[w]
         have = np.isfinite(z)
         np.testing.assert_allclose(z[have], spline(np.column_stack([GX[have], GY[have]])),
-                                   atol=1e-8)
+                                   atol=1e-10)
     assert np.isfinite(surf.thickness_nm[3]).sum() < np.isfinite(surf.thickness_nm[0]).sum()
 
 
@@ -161,8 +169,9 @@ def test_dense_map_leave_one_out_estimate_matches_the_exact_one(monkeypatch):
     monkeypatch.setattr(surface, "DENSE_MAP_SITES", 10**6)
     exact = tps_loo(t, None, x, y, 150.0, 3.0)
     assert np.isfinite(exact.error_nm).all()
-    # the same errors at the sampled sites (the far sites barely move a dense spline) ...
+    # the same errors at the sampled sites (the far sites barely move a dense spline):
+    # within a sixth of the 0.3 nm noise or 10 % (measured 0.02 nm at most) ...
     np.testing.assert_allclose(estimate.error_nm[sampled], exact.error_nm[sampled],
                                rtol=0.1, atol=0.05)
-    # ... so the same trust figure for the map
-    assert abs(estimate.rms_nm / exact.rms_nm - 1) < 0.1
+    # ... so the same trust figure for the map, to 5 % (measured 1.8 %)
+    assert abs(estimate.rms_nm / exact.rms_nm - 1) < 0.05
