@@ -187,5 +187,11 @@ def test_limits_hold_and_are_said_when_the_furnace_is_far_off():
     # that mean really is outside the spec band it warns about
     assert a["predicted_mean_nm_next"] == pytest.approx(np.mean(x_next), rel=1e-3)
     assert abs(np.mean(x_next) / TARGET_NM - 1) > TOLERANCE_PCT / 100
-    # even clipped, the trims flatten the true boat (measured 0.55 of the spread)
-    assert np.std(x_next, ddof=1) < 0.7 * np.std(slow, ddof=1)
+    # even clipped, the trims flatten the true boat (measured 0.66 of the spread)
+    assert np.std(x_next, ddof=1) < 0.75 * np.std(slow, ddof=1)
+    # ... but never at the mean's expense: with the time on its bound and the lot short,
+    # trims that cool the boat on average would widen the miss (they did, by -0.9 K, until
+    # the advice held the mean). The true mean with the trims is not further from target
+    # than without them, at the same time (measured +0.006 nm; 0.05 nm = model mismatch)
+    x_untrimmed = wet_oxide_nm(a["minutes_next"], 1000.0 + T, rate_factor=0.90)
+    assert np.mean(x_next) >= np.mean(x_untrimmed) - 0.05

@@ -149,8 +149,15 @@ class _Model:
             dtype=float)
 
 
-def _optimise_trims(model, base, G, free, t, minutes, max_offset_C, reg, n_iterations):
-    """Bounded least-squares trims (K) minimising the relative spread of ``model.x``."""
+def _optimise_trims(model, base, G, free, t, minutes, max_offset_C, reg, n_iterations,
+                    hold_mean=None):
+    """Bounded least-squares trims (K) minimising the relative spread of ``model.x``.
+
+    With ``hold_mean = (mean_nm, full_base)`` the trims must also leave the product mean
+    (computed with the slots' full offsets ``full_base``) at ``mean_nm``: a heavily
+    weighted residual, so their common part cannot trade the mean for flatness. Used when
+    the time sits on its bound and the mean already misses the target.
+    """
     t = t.copy()
     if not free.any():
         return t
@@ -163,7 +170,15 @@ def _optimise_trims(model, base, G, free, t, minutes, max_offset_C, reg, n_itera
         J = S[:, None] * Gf / mu
         J = J - J.mean(axis=0)                # centred: the spread, not the mean
         r = (x - mu) / mu
-        c2 = float(np.sum(J * J)) / Gf.shape[1]
+        if hold_mean is not None:
+            mean_nm, full_base = hold_mean
+            off_full = full_base + G @ t
+            # 1e3 x sqrt(n): the mean holds to about 1e-3 of the spread's weight
+            w = 1e3 * math.sqrt(x.size)
+            J_mean = (model.dx_dT(off_full, minutes)[:, None] * Gf).mean(axis=0) / mean_nm
+            J = np.vstack([J, w * J_mean])
+            r = np.append(r, w * (float(np.mean(model.x(off_full, minutes))) / mean_nm - 1.0))
+        c2 = float(np.sum(J[:x.size] * J[:x.size])) / Gf.shape[1]
         lam = math.sqrt(reg * c2) if c2 > 0 else 1.0
         tf = t[free]
         A = np.vstack([J, lam * np.eye(tf.size)])
@@ -493,6 +508,18 @@ def advise(steps, adjust_step, target_nm, zones, slot, mean_nm, role, *, orienta
             trims = _optimise_trims(model, bz, Gp, free, trims, minutes, max_off,
                                     float(trim_regularisation), int(n_iterations))
         minutes, clip = _solve_time(model, bp + Gp @ trims, target, m_lo, m_hi)
+    if clip and zs:
+        mean_untrimmed = float(np.mean(model.x(bp, minutes)))
+        mean_trimmed = float(np.mean(model.x(bp + Gp @ trims, minutes)))
+        if abs(mean_trimmed - target) > abs(mean_untrimmed - target):
+            # the time sits on its bound and the flattening trims moved the mean further
+            # from target (a bound made them cool or heat the whole boat): flatten again
+            # with the mean held where the time alone puts it - trims answer the zone
+            # part, never at the mean's expense
+            trims = _optimise_trims(model, bz, Gp, free, np.zeros(len(zs)), minutes, max_off,
+                                    float(trim_regularisation), 2 * int(n_iterations),
+                                    hold_mean=(mean_untrimmed, bp))
+            minutes, clip = _solve_time(model, bp + Gp @ trims, target, m_lo, m_hi)
 
     for n, v, e in zip(names, trims, (boat.zone_error_C if boat is not None else [])):
         if abs(v) >= max_off * (1.0 - _AT_BOUND):
