@@ -20,12 +20,11 @@ from __future__ import annotations
 
 import numpy as np
 
+from filmmap.bridge import site_grid, site_values
 from filmmap.io.results import write_csv_atomic
 
 SITES_CSV_COLUMNS = ("lot_id", "wafer", "slot", "role", "site", "x_mm", "y_mm", "thickness_nm",
                      "sigma_nm", "fit_ok", "suspect", "reason")
-
-NOT_MEASURED = "not measured"
 
 
 def _num(v, digits=4):
@@ -48,23 +47,16 @@ def site_rows(ds):
     (list of str, list of list of str)
     """
     lot_id = str(ds.attrs.get("lot_id", ""))
-    t = ds["thickness"].values
-    u = ds["thickness_sigma"].values
-    # lot.nc stores fit_ok as int8 0/1 (CF flags); in memory it is bool
-    ok = np.asarray(ds["fit_ok"].values).astype(bool)
-    suspect = (np.asarray(ds["suspect"].values).astype(bool) if "suspect" in ds
-               else np.zeros_like(ok))
-    note = np.asarray(ds["fit_note"].values).astype(str)
-    x, y = ds["x_mm"].values, ds["y_mm"].values
-    wafers = [str(w) for w in ds["wafer"].values]
-    slots = [int(s) for s in ds["slot"].values]
-    roles = ([str(r) for r in ds["role"].values] if "role" in ds.coords
-             else ["product"] * len(wafers))
-    sites = [int(v) for v in ds["site"].values]
+    g = site_grid(ds)   # lot.nc stores fit_ok as int8 0/1 (CF flags): the bridge decodes it
+    t, ok, suspect, note, x, y = (g.thickness_nm, g.fit_ok, g.suspect, g.fit_note, g.x_mm,
+                                  g.y_mm)
+    u = site_values(ds, "thickness_sigma")
+    wafers, slots, sites = [str(w) for w in g.wafer], g.slot.tolist(), g.site.tolist()
+    roles = g.role.tolist() if g.role is not None else ["product"] * len(wafers)
     rows = []
     for i, w in enumerate(wafers):
         for j, site in enumerate(sites):
-            if note[i, j] == NOT_MEASURED:
+            if not g.measured[i, j]:
                 continue
             rows.append([lot_id, w, str(slots[i]), roles[i], str(site), _num(x[i, j], 3),
                          _num(y[i, j], 3), _num(t[i, j]) if ok[i, j] else "",

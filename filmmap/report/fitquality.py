@@ -18,7 +18,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter
 
-from filmmap.bridge import NOT_MEASURED
+from filmmap.bridge import site_grid
 
 X_LABEL = "Fit quality: reduced χ² (log scale)"
 Y_LABEL = "Sites"
@@ -49,12 +49,8 @@ def fit_quality_values(ds):
         ``no_value``: measured sites without a finite positive value;
         ``measured``: measured sites.
     """
-    if "fit_quality" not in ds.variables:
-        q = np.full(ds["fit_ok"].shape, math.nan)
-    else:
-        q = np.asarray(ds["fit_quality"].values, dtype=float)
-    ok = np.asarray(ds["fit_ok"].values, dtype=bool)
-    measured = np.asarray(ds["fit_note"].values).astype(str) != NOT_MEASURED
+    g = site_grid(ds)
+    q, ok, measured = g.fit_quality, g.fit_ok, g.measured
     good = measured & np.isfinite(q) & (q > 0)
     return {"ok": q[good & ok], "failed": q[good & ~ok],
             "no_value": int(np.count_nonzero(measured & ~good)),
