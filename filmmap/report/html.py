@@ -30,7 +30,7 @@ from filmmap.report.formatting import (MISSING, compact_dict_text, flag_text, fm
 from filmmap.report.images import ReportImages
 from filmmap.report.markup import e
 from filmmap.report.markup import img_tag as _img
-from filmmap.report.provenance import provenance
+from filmmap.report.provenance import provenance, provenance_rows
 
 #: id and alt text of the slot-profile image.
 SLOT_PROFILE_IMG_ID = "slot-profile"
@@ -505,14 +505,7 @@ def _render(emit, view, ds, images, outdir, advice, dpi):
 
     # provenance
     p.append('<section id="provenance"><h2>Provenance</h2>')
-    p.append(_kv_table([("software (reduction)", prov["software"]),
-                        ("software (report)", prov["report_software"]),
-                        ("results created", prov["created"] or "not recorded"),
-                        ("report created", prov["report_created"]),
-                        ("technique", prov["technique"] + (f", angle {prov['angle_deg']} deg"
-                                                           if prov["angle_deg"] else "")),
-                        ("wavelength range", prov["wavelength_range_nm"] or "not recorded"),
-                        ("fitted parameters", prov["fitted_parameters"] or "not recorded")]))
+    p.append(_kv_table(provenance_rows(prov)))
     p.append(f"<h3>Input files ({len(prov['inputs'])})</h3>")
     if prov["inputs_problem"]:
         p.append(f'<p class="missing">{e(prov["inputs_problem"])}</p>')

@@ -61,7 +61,7 @@ from filmmap.report.formatting import (MISSING, compact_dict_text, flag_text, fm
                                        is_long_scalar_dict, is_number, missing_reason,
                                        scalar_text, wtw_rows)
 from filmmap.report.images import ReportImages
-from filmmap.report.provenance import provenance
+from filmmap.report.provenance import provenance, provenance_rows
 from filmmap.report.slotplot import draw_slot_profile
 
 #: Lot pages when every section fits its page (cover, slot profile, tables,
@@ -379,14 +379,7 @@ def _advice_lines(advice, view=None):
 
 def _provenance_lines(prov):
     lines = []
-    for k, v in (("software (reduction)", prov["software"]),
-                 ("software (report)", prov["report_software"]),
-                 ("results created", prov["created"] or "not recorded"),
-                 ("report created", prov["report_created"]),
-                 ("technique", prov["technique"] + (f", angle {prov['angle_deg']} deg"
-                                                    if prov["angle_deg"] else "")),
-                 ("wavelength range", prov["wavelength_range_nm"] or "not recorded"),
-                 ("fitted parameters", prov["fitted_parameters"] or "not recorded")):
+    for k, v in provenance_rows(prov):
         lines += _wrap("m", f"{k:<24s}{v}", indent=" " * 24)
     lines += [("gap", "")] + _wrap("h", f"Input files ({len(prov['inputs'])}): SHA-256, file")
     if prov["inputs_problem"]:

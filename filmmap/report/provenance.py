@@ -84,3 +84,25 @@ def provenance(ds, advice=None):
         "fitted_parameters": fitted_text,
         "models": models,
     }
+
+
+def provenance_rows(prov):
+    """The provenance table as ``(label, text)`` rows, shared by report.html and report.pdf.
+
+    Parameters
+    ----------
+    prov : dict
+        As `provenance` returns it.
+
+    Returns
+    -------
+    list of (str, str)
+    """
+    return [("software (reduction)", prov["software"]),
+            ("software (report)", prov["report_software"]),
+            ("results created", prov["created"] or "not recorded"),
+            ("report created", prov["report_created"]),
+            ("technique", prov["technique"] + (f", angle {prov['angle_deg']} deg"
+                                               if prov["angle_deg"] else "")),
+            ("wavelength range", prov["wavelength_range_nm"] or "not recorded"),
+            ("fitted parameters", prov["fitted_parameters"] or "not recorded")]
