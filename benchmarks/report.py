@@ -147,6 +147,7 @@ def main(argv=None):
 
         # 2. growth of each part
         ds = xr.load_dataset(tmp / "full" / "lot.nc")
+        ds["fit_ok"] = ds["fit_ok"].astype(bool)   # int8 0/1 in lot.nc (CF flags)
         small = ds.isel(wafer=slice(0, 75))
         rows = {}
         for n in SIZES:

@@ -173,24 +173,33 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
             view, stage, created=written.dataset.attrs.get("created"))
         written.advice = advice
         written.view = view
-        if figures:
-            from filmmap.figures_out import write_figures
-
-            written.figure_notes = []
-            written.files.update(write_figures(
-                written.dataset, reduction.config, stage,
-                workers=figure_workers or max(2, workers),
-                out_of_spec=view.wtw.out_of_spec_ids if view.target_nm is not None else (),
-                progress=lambda n: _bar(progress, n, "maps"), notes=written.figure_notes))
         if report:
             from filmmap.report import ReportImages, write_html_report, write_pdf_report
 
             images = ReportImages(view, written.dataset, stage, render_missing=False,
                                   no_map_reason=None if figures else
                                   "maps not drawn (reduce --no-figures)")
-            written.files["report.pdf"] = write_pdf_report(
-                view, written.dataset, stage, images=images, advice=advice,
-                wafer_pages=pdf_wafer_pages, progress=lambda n: _bar(progress, n, "report.pdf"))
+
+            def write_pdf(between_pages=None):
+                written.files["report.pdf"] = write_pdf_report(
+                    view, written.dataset, stage, images=images, advice=advice,
+                    wafer_pages=pdf_wafer_pages, between_pages=between_pages,
+                    progress=lambda n: _bar(progress, n, "report.pdf"))
+        if figures:
+            from filmmap.figures_out import write_figures
+
+            written.figure_notes = []
+            # report.pdf needs the contact sheet and no map (unless it has a page per
+            # wafer): it is written while the worker processes draw the maps
+            written.files.update(write_figures(
+                written.dataset, reduction.config, stage,
+                workers=figure_workers or max(2, workers),
+                out_of_spec=view.wtw.out_of_spec_ids if view.target_nm is not None else (),
+                progress=lambda n: _bar(progress, n, "maps"), notes=written.figure_notes,
+                while_maps=write_pdf if report and not pdf_wafer_pages else None))
+        if report:
+            if "report.pdf" not in written.files:
+                write_pdf()
             written.files["report.html"] = write_html_report(view, written.dataset, stage,
                                                              images=images, advice=advice)
             written.files.update(_write_evidence_pdf(view, written.dataset, images, stage))

@@ -33,6 +33,12 @@ def _cmaps(fig):
     return names
 
 
+def _maps(ax):
+    """The colour-mapped artists of an axes (map images, or filled contours and scatters)."""
+    return [c for c in list(ax.collections) + list(ax.images)
+            if hasattr(c, "norm") and c.get_array() is not None]
+
+
 def test_single_wafer_png(tmp_path):
     # common practice, no source: a readable PNG of figsize * dpi pixels
     t = _lot(1)[0]
@@ -83,7 +89,7 @@ def test_contact_sheet_common_scale(tmp_path):
     # every wafer on one axes (one axes per wafer costs more than the wafer): 5 maps, 5 labels
     panels = [ax for ax in fig.axes if ax not in bars]
     assert len(panels) == 1
-    maps = [c for c in panels[0].collections if hasattr(c, "norm") and c.get_array() is not None]
+    maps = _maps(panels[0])
     assert len(maps) == 5
     assert sorted(t.get_text().split(" ")[0] for t in panels[0].texts) == [f"W{i}" for i in range(5)]
     limits = {(round(c.norm.vmin, 9), round(c.norm.vmax, 9)) for c in maps}
@@ -211,8 +217,7 @@ def test_contact_sheet_with_uneven_layouts_draws_every_wafer():
     # wafer C is drawn at its own coordinates
     assert (round(0.9 * x[30], 6), round(0.9 * y[30], 6)) in points_of("C")
     # one common scale: every wafer's map has the same colour limits
-    lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6)) for c in sheet.collections
-            if hasattr(c, "norm") and c.get_array() is not None}
+    lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6)) for c in _maps(sheet)}
     assert len(lims) == 1
 
 

@@ -644,7 +644,7 @@ def _render_page(page, view, ds, images, number, total, advice=None):
 
 
 def write_pdf_report(view, ds, outdir, *, images=None, advice=None, dpi=100, wafer_pages=False,
-                     progress=None):
+                     progress=None, between_pages=None):
     """Write ``OUTDIR/report.pdf`` atomically (temporary file in OUTDIR, then os.replace).
 
     Parameters
@@ -663,6 +663,9 @@ def write_pdf_report(view, ds, outdir, *, images=None, advice=None, dpi=100, waf
         Add one page per wafer (default: an index of the wafers).
     progress : callable(n_pages) -> object with update(n) and close(), optional
         Progress display factory.
+    between_pages : callable(), optional
+        Called after each page (work interleaved with the PDF, such as keeping the map
+        workers supplied: `filmmap.wafermap.figures.MapRendering.pump`).
 
     Returns
     -------
@@ -687,6 +690,8 @@ def write_pdf_report(view, ds, outdir, *, images=None, advice=None, dpi=100, waf
                     fig.clear()     # free the page's artists now, not at the next collection
                     if bar is not None:
                         bar.update(1)
+                    if between_pages is not None:
+                        between_pages()
             finally:
                 if bar is not None:
                     bar.close()
