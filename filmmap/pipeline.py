@@ -178,7 +178,8 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
 
             images = ReportImages(view, written.dataset, stage, render_missing=False,
                                   no_map_reason=None if figures else
-                                  "maps not drawn (reduce --no-figures)")
+                                  "maps not drawn (reduce --no-figures)",
+                                  spectra=_kept_spectra(reduction))
 
             def write_pdf(between_pages=None):
                 written.files["report.pdf"] = write_pdf_report(
@@ -218,15 +219,24 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
 
 
 
+def _kept_spectra(reduction):
+    """The evidence spectra the reduction kept, for the report (None without any)."""
+    from filmmap.report.evidence import kept_spectra
+
+    ev, sites = reduction.evidence, reduction.sites
+    if ev is None or not len(ev.rows):
+        return None
+    return kept_spectra(sites.wafer[ev.rows], sites.site[ev.rows], reduction.wavelength_nm,
+                        ev.measured, ev.model)
+
+
 def _write_evidence_pdf(view, ds, images, folder):
-    """evidence.pdf with every failed and suspect site when the report page shows only some."""
-    from filmmap.report.evidence import MAX_ON_PAGE, all_bad_sites, write_evidence_pdf
+    """evidence.pdf with the failed and suspect sites when the report page shows only some."""
+    from filmmap.report.evidence import evidence_pdf_sites, write_evidence_pdf
 
     spectra = images.spectra()
-    if spectra is None:
-        return {}
-    sites = all_bad_sites(view, ds)
-    if len(sites) <= MAX_ON_PAGE:
+    sites, _ = evidence_pdf_sites(view, ds, spectra)
+    if not sites:
         return {}
     return {"evidence.pdf": write_evidence_pdf(sites, spectra, folder / "evidence.pdf",
                                                lot_id=view.lot_id)}

@@ -244,3 +244,79 @@ def test_contact_sheet_png_matches_the_figure_layout_and_bounds_its_pixels():
     small = Image.open(io.BytesIO(contact_sheet_png(np.tile(t, (8, 1)), None, SITES.x_mm,
                                                     SITES.y_mm, D, EE, max_pixels=2e5)))
     assert small.size[0] * small.size[1] <= 2e5 * 1.05
+
+
+def _boxes_overlap(a, b):
+    """Whether boxes (x0, y0, x1, y1) overlap (touching is not)."""
+    return a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]
+
+
+def _dense_layout(n=300, d=150.0, seed=2):
+    """``n`` sites spread at random over a wafer: far denser than the labels can all fit."""
+    rng = np.random.default_rng(seed)
+    r = 0.47 * d * np.sqrt(rng.uniform(size=n))
+    a = rng.uniform(0, 2 * np.pi, n)
+    return r * np.cos(a), r * np.sin(a)
+
+
+@pytest.mark.parametrize("layout", ["dense", "49 sites"])
+def test_site_labels_never_overlap_each_other_nor_cross_the_outline(layout):
+    # the drawn texts' own bounding boxes (matplotlib's extents at draw time) must not
+    # intersect one another, and must lie inside the wafer outline (common practice)
+    if layout == "dense":
+        x, y = _dense_layout()
+        d, ee = 150.0, 3.0
+    else:
+        x, y, d, ee = SITES.x_mm, SITES.y_mm, D, EE
+    t = 1000 + 0.05 * x + np.random.default_rng(0).normal(0, 2, x.size)
+    fig = wafer_map_figure(t, None, x, y, d, ee, wafer_id="W1", lot_id="L")
+    fig.canvas.draw()
+    renderer = fig.canvas.get_renderer()
+    ax = fig.axes[0]
+    labels = [tx for tx in ax.texts if tx.get_visible() and tx.get_text().replace(".", "", 1)
+              .isdigit()]
+    boxes = [tx.get_window_extent(renderer).extents for tx in labels]
+    assert all(not _boxes_overlap(a, b) for i, a in enumerate(boxes) for b in boxes[i + 1:])
+    cx, cy = ax.transData.transform((0.0, 0.0))
+    radius = ax.transData.transform((d / 2, 0.0))[0] - cx
+    corners = np.array([(b[i], b[j]) for b in boxes for i in (0, 2) for j in (1, 3)])
+    assert np.all(np.hypot(corners[:, 0] - cx, corners[:, 1] - cy) <= radius)
+    if layout == "dense":
+        assert 0.2 * x.size < len(labels) < x.size     # thinned, not emptied
+    else:
+        assert len(labels) == x.size                     # a usual map keeps every value
+
+
+def test_stamped_site_labels_do_not_overlap_and_keep_clear_of_site_marks():
+    # the PNG path stamps the labels into the pixels: its boxes follow the same rule, and
+    # no label covers a site's mark
+    from filmmap.wafermap.figures import MapCanvas, _prepare_map
+
+    x, y = _dense_layout(200)
+    t = 1000 + 0.05 * x
+    canvas = MapCanvas(150.0, 3.0, stamp_labels=True)
+    prepared = _prepare_map(t, None, x, y, 150.0, 3.0, wafer_id="W1")
+    canvas.draw(*prepared)
+    boxes = canvas.label_boxes
+    assert 20 < len(boxes) < x.size
+    assert all(not _boxes_overlap(a, b) for i, a in enumerate(boxes) for b in boxes[i + 1:])
+    sites_px = canvas.ax.transData.transform(np.column_stack([x, y]))
+    inside = [(b[0] < px < b[2]) and (b[1] < py < b[3]) for b in boxes for px, py in sites_px]
+    assert not any(inside)
+    png = canvas.png()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_place_site_labels_tries_the_other_sides_before_leaving_a_label_out():
+    from filmmap.wafermap.figures import place_site_labels
+
+    # two sites 10 px apart side by side, labels 30 x 10 px: the first label goes above
+    # its site, the second cannot (it would overlap the first) and goes below its own
+    boxes = place_site_labels([(100, 100), (110, 100)], [(30, 10), (30, 10)], 2.0,
+                              (100, 100), 80.0)
+    assert np.all(np.isfinite(boxes))
+    assert not _boxes_overlap(boxes[0], boxes[1])
+    assert boxes[0][1] == 102 and boxes[1][3] == 98
+    # no room anywhere (a site at the outline, a label wider than the wafer): left out
+    out = place_site_labels([(100, 100)], [(200, 10)], 2.0, (100, 100), 50.0)
+    assert np.all(np.isnan(out))

@@ -9,9 +9,11 @@ kind of failure is seen, at most `MAX_ON_PAGE` on the report page. `evidence_fig
 draws them as small multiples (spectrum above, residual below); `shape_hint` puts the
 overlay into words.
 
-The spectra come from spectra.nc (``reduce --keep-spectra``): measured, model at the
-unchecked best fit, residual, dims (wafer, site, point). Without it the report lists the
-sites and says how to get the overlays.
+The spectra come from spectra.nc (``reduce --keep-spectra``: every site's measured and
+model spectra, model at the unchecked best fit) or, without it, from the few a reduction
+keeps for the evidence (`kept_spectra`; `filmmap.fitting.evidence.evidence_rows`: the
+failed, suspect and worst-fitting sites). Without either the report lists the sites and
+says how to get the overlays.
 """
 
 from __future__ import annotations
@@ -23,6 +25,8 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
+from filmmap.fitting.evidence import note_cause as _cause
+from filmmap.fitting.evidence import take_in_turn
 from filmmap.report.slotplot import COLOURS
 
 #: Most evidence panels on the report page (the rest go to evidence.pdf).
@@ -64,10 +68,6 @@ class EvidenceSite:
     note: str
     fit_quality: float
     thickness_nm: float
-
-
-def _cause(note):
-    return (note.split(":")[0].strip() or "no reason recorded") if note else "no reason recorded"
 
 
 def candidate_sites(view, ds, n_worst_accepted=4):
@@ -139,12 +139,7 @@ def evidence_sites(view, ds, max_sites=MAX_ON_PAGE):
     kinds = sorted((k for k in groups if k not in ("suspect", WORST_ACCEPTED)),
                    key=lambda k: -len(groups[k]))
     kinds += ["suspect"] if "suspect" in groups else []
-    chosen, depth = [], 0
-    while len(chosen) < max_sites and any(depth < len(groups[k]) for k in kinds):
-        for k in kinds:
-            if depth < len(groups[k]) and len(chosen) < max_sites:
-                chosen.append(groups[k][depth])
-        depth += 1
+    chosen = take_in_turn([groups[k] for k in kinds], max_sites)
     # the worst-fitting accepted sites fill what room is left: what a good fit looks like
     chosen += groups.get(WORST_ACCEPTED, [])[:max(0, max_sites - len(chosen))]
     n_bad = sum(len(v) for k, v in groups.items() if k != WORST_ACCEPTED)
@@ -157,12 +152,79 @@ def all_bad_sites(view, ds):
     return [s for k in groups for s in groups[k]]
 
 
+def evidence_pdf_sites(view, ds, spectra):
+    """The sites of evidence.pdf and a sentence on them for the report, or ([], "").
+
+    evidence.pdf is written when the lot has more failed and suspect sites than the report
+    page shows: all of them with spectra.nc, the ones whose spectra the reduction kept
+    otherwise (`kept_spectra`).
+    """
+    sites = all_bad_sites(view, ds)
+    if spectra is None or len(sites) <= MAX_ON_PAGE:
+        return [], ""
+    if "evidence" not in spectra.dims:
+        return sites, "All failed and suspect sites are drawn in evidence.pdf."
+    kept = [s for s in sites if site_spectra(spectra, s.wafer, s.site) is not None]
+    if len(kept) == len(sites):
+        return kept, "All failed and suspect sites are drawn in evidence.pdf."
+    return kept, (f"evidence.pdf draws {len(kept)} of the {len(sites)} failed and suspect "
+                  "sites (the worst of each cause in turn); reduce --keep-spectra keeps the "
+                  "spectra of every site (spectra.nc) and draws them all.")
+
+
+def kept_spectra(wafer, site, wavelength_nm, measured, model):
+    """The spectra of a few sites as a dataset `site_spectra` reads (dimension ``evidence``).
+
+    What a reduction keeps without --keep-spectra (`filmmap.reduce.EvidenceSpectra`):
+    measured and model spectra of the failed, suspect and worst-fitting sites only.
+
+    Parameters
+    ----------
+    wafer, site : array_like, shape (k,)
+        Wafer id and site number of each row.
+    wavelength_nm : array_like, shape (n_wavelengths,)
+        Wavelengths, nm.
+    measured, model : array_like, shape (k, n_points)
+        Reflectance (fraction), or psi then delta (degree): n_points is n_wavelengths or
+        twice that.
+
+    Returns
+    -------
+    xarray.Dataset
+        ``measured`` and ``model`` (evidence, point), coordinates ``wafer`` and ``site``
+        (evidence), ``wavelength_nm`` and ``quantity`` (point), as in spectra.nc.
+    """
+    import xarray as xr
+
+    wl = np.asarray(wavelength_nm, dtype=float)
+    measured = np.asarray(measured, dtype=float).reshape(len(wafer), -1)
+    n = measured.shape[1]
+    quantity = ["R"] * wl.size if n == wl.size else ["psi"] * wl.size + ["delta"] * wl.size
+    return xr.Dataset(
+        {"measured": (("evidence", "point"), measured),
+         "model": (("evidence", "point"), np.asarray(model, dtype=float).reshape(measured.shape))},
+        coords={"wafer": ("evidence", np.asarray(wafer).astype(str)),
+                "site": ("evidence", np.asarray(site)),
+                "wavelength_nm": ("point", np.tile(wl, n // max(wl.size, 1))),
+                "quantity": ("point", np.array(quantity))})
+
+
 def site_spectra(spectra, wafer, site):
-    """(wavelength nm, quantity, measured, model) of one site from spectra.nc, or None."""
-    try:
-        sel = spectra.sel(wafer=wafer, site=site)
-    except (KeyError, ValueError):
-        return None
+    """(wavelength nm, quantity, measured, model) of one site, or None.
+
+    ``spectra``: spectra.nc (dimensions wafer, site, point) or `kept_spectra`.
+    """
+    if "evidence" in spectra.dims:
+        hit = np.flatnonzero((spectra["wafer"].values == str(wafer))
+                             & (spectra["site"].values == site))
+        if not hit.size:
+            return None
+        sel = spectra.isel(evidence=int(hit[0]))
+    else:
+        try:
+            sel = spectra.sel(wafer=wafer, site=site)
+        except (KeyError, ValueError):
+            return None
     meas = np.asarray(sel["measured"].values, dtype=float)
     model = np.asarray(sel["model"].values, dtype=float)
     if not np.any(np.isfinite(meas)):
@@ -305,5 +367,6 @@ def write_evidence_pdf(sites, spectra, path, *, lot_id=""):
 
 
 __all__ = ["EvidenceSite", "MAX_ON_PAGE", "PER_PAGE", "WORST_ACCEPTED", "all_bad_sites",
-           "candidate_sites", "evidence_figure", "evidence_sites", "shape_hint",
-           "site_spectra", "write_evidence_pdf"]
+           "candidate_sites", "evidence_figure", "evidence_pdf_sites", "evidence_sites",
+           "kept_spectra",
+           "shape_hint", "site_spectra", "write_evidence_pdf"]

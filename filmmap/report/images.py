@@ -43,11 +43,15 @@ class ReportImages:
     no_map_reason : str, optional
         Why there are no maps (e.g. "maps not drawn (reduce --no-figures)"): then no map
         and no contact sheet is looked for or drawn, and the reports say this reason.
+    spectra : xarray.Dataset, optional
+        The evidence spectra a reduction kept (`filmmap.report.evidence.kept_spectra`),
+        used when the output folder has no spectra.nc.
     """
 
     def __init__(self, view, ds, outdir=None, *, dpi=100, render_missing=True,
-                 no_map_reason=None):
+                 no_map_reason=None, spectra=None):
         self.view, self.ds, self.dpi = view, ds, float(dpi)
+        self.kept_spectra = spectra
         self.outdir = None if outdir is None else Path(outdir)
         self.render_missing = bool(render_missing)
         self.no_map_reason = no_map_reason
@@ -78,11 +82,12 @@ class ReportImages:
             advice_profile_figure(self.view, advice, dpi=self.dpi)))
 
     def spectra(self):
-        """spectra.nc of the output folder as a dataset (None when spectra were not kept)."""
+        """spectra.nc of the output folder as a dataset, else the kept evidence spectra
+        (None when neither is there)."""
         def load():
             path = None if self.outdir is None else self.outdir / "spectra.nc"
             if path is None or not path.is_file():
-                return None
+                return self.kept_spectra
             import xarray as xr
 
             return xr.open_dataset(path, engine="h5netcdf")
@@ -93,7 +98,7 @@ class ReportImages:
 
         ``sites`` are the chosen `filmmap.report.evidence.EvidenceSite`, ``hints`` their
         overlays in words, ``n_bad`` the failed plus suspect sites in all; the PNG is None
-        when the spectra were not kept (or no site needs evidence).
+        when no spectra are there (or no site needs evidence).
         """
         def make():
             from filmmap.report.evidence import evidence_figure, evidence_sites
@@ -109,7 +114,7 @@ class ReportImages:
     def close(self):
         """Close spectra.nc if it was opened."""
         sp = self._cache.pop("spectra", None)
-        if sp is not None:
+        if sp is not None and sp is not self.kept_spectra:
             sp.close()
 
     def _on_disk(self, relpath):
