@@ -281,12 +281,15 @@ def _pixels_of(ax, extent):
     return max(2, int(round(abs(p[1, 0] - p[0, 0])))), max(2, int(round(abs(p[1, 1] - p[0, 1]))))
 
 
-def _shade(ax, gx, gy, z, norm, cmap, levels, radius_mm, offset=(0.0, 0.0), image=None):
+def _shade(ax, gx, gy, z, norm, cmap, levels, radius_mm, offset=(0.0, 0.0), image=None,
+           pixels_only=False):
     """The map field in fine bands (`_fine_levels` of the tick boundaries ``levels``).
 
     Drawn as one image sampled at the axes' own pixels (one image is a fraction of the
     drawing time of the contour paths of 40-odd bands); a mesh form that cannot be sampled
-    so falls back to filled contours. ``image``: an AxesImage to reuse (`MapCanvas`).
+    so falls back to filled contours. ``image``: an AxesImage to reuse (`MapCanvas`);
+    with ``pixels_only`` its data are left as they are (the caller draws the pixels itself
+    with `_paint_field`, and does not draw the image).
     A fresh Normalize per panel: a shared one makes matplotlib re-run a callback of every
     earlier panel for each new one (contact-sheet time growing with the square of the
     wafers).
@@ -309,6 +312,9 @@ def _shade(ax, gx, gy, z, norm, cmap, levels, radius_mm, offset=(0.0, 0.0), imag
     if bands is None:
         return ax.contourf(gx_ + ox, gy_ + oy, np.ma.masked_invalid(z), levels=fine, cmap=cmap,
                            norm=own_norm, extend="both"), None
+    if image is not None and pixels_only:
+        image.set_extent(extent)
+        return image, bands
     values = np.append(_band_values(fine), np.nan)[bands]      # band -1: the appended NaN
     if image is None:
         image = ax.imshow(values, extent=extent, origin="lower", cmap=cmap, norm=own_norm,
@@ -518,25 +524,36 @@ def place_site_labels(anchor_px, size_px, gap_px, centre_px, radius_px, keep_out
     """
     anchor = np.asarray(anchor_px, dtype=float).reshape(-1, 2)
     size = np.asarray(size_px, dtype=float).reshape(-1, 2)
-    gap = np.broadcast_to(np.asarray(gap_px, dtype=float), (anchor.shape[0],))
+    n = anchor.shape[0]
+    gap = np.broadcast_to(np.asarray(gap_px, dtype=float), (n,))
+    keep_out = np.asarray(keep_out_px if keep_out_px is not None else np.zeros((0, 4)),
+                          dtype=float).reshape(-1, 4)
+    # every label's 8 candidate boxes (n, 8, 4), in the order tried
+    ax_, ay_, w, h, g = anchor[:, 0:1], anchor[:, 1:2], size[:, 0:1], size[:, 1:2], gap[:, None]
+    d = g / math.sqrt(2.0)
+    x0 = np.hstack([ax_ - w / 2, ax_ - w / 2, ax_ + g, ax_ - g - w,
+                    ax_ + d, ax_ - d - w, ax_ + d, ax_ - d - w])
+    y0 = np.hstack([ay_ + g, ay_ - g - h, ay_ - h / 2, ay_ - h / 2,
+                    ay_ + d, ay_ + d, ay_ - d - h, ay_ - d - h])
+    cand = np.stack([x0, y0, x0 + w, y0 + h], axis=-1)
+    # what does not depend on the other labels: inside the circle, clear of every mark
     cx, cy = float(centre_px[0]), float(centre_px[1])
-    taken = np.asarray(keep_out_px if keep_out_px is not None else np.zeros((0, 4)),
-                       dtype=float).reshape(-1, 4)
-    taken = np.concatenate([taken, np.full((anchor.shape[0], 4), np.nan)])
-    n_keep = taken.shape[0] - anchor.shape[0]
-    boxes = np.full((anchor.shape[0], 4), np.nan)
-    for k, ((ax_, ay_), (w, h), g) in enumerate(zip(anchor, size, gap)):
-        d = g / math.sqrt(2.0)
-        for x0, y0 in ((ax_ - w / 2, ay_ + g), (ax_ - w / 2, ay_ - g - h),
-                       (ax_ + g, ay_ - h / 2), (ax_ - g - w, ay_ - h / 2),
-                       (ax_ + d, ay_ + d), (ax_ - d - w, ay_ + d),
-                       (ax_ + d, ay_ - d - h), (ax_ - d - w, ay_ - d - h)):
-            box = np.array([x0, y0, x0 + w, y0 + h])
-            corners_r = np.hypot(box[[0, 2, 0, 2]] - cx, box[[1, 1, 3, 3]] - cy)
-            if corners_r.max() > radius_px or _overlaps(box, taken[:n_keep + k]).any():
-                continue
-            boxes[k] = taken[n_keep + k] = box
-            break
+    far_x = np.maximum(np.abs(cand[..., 0] - cx), np.abs(cand[..., 2] - cx))
+    far_y = np.maximum(np.abs(cand[..., 1] - cy), np.abs(cand[..., 3] - cy))
+    free = np.hypot(far_x, far_y) <= radius_px          # the box's farthest corner
+    if keep_out.size:
+        c, k = cand[:, :, None, :], keep_out[None, None, :, :]
+        free &= ~np.any((c[..., 0] < k[..., 2]) & (k[..., 0] < c[..., 2])
+                        & (c[..., 1] < k[..., 3]) & (k[..., 1] < c[..., 3]), axis=-1)
+    boxes = np.full((n, 4), np.nan)
+    placed = np.zeros((0, 4))
+    for i in range(n):
+        options = np.flatnonzero(free[i])
+        for j in options:
+            if not _overlaps(cand[i, j], placed).any():
+                boxes[i] = cand[i, j]
+                placed = np.vstack([placed, cand[i, j]])
+                break
     return boxes
 
 
@@ -706,7 +723,8 @@ class MapCanvas:
         norm = Normalize(lo, hi)
         shaded, self._paint = None, None
         if z is not None and np.isfinite(z).sum() >= 4:
-            shaded, bands = _shade(ax, gx, gy, z, norm, self.cmap, bounds, r, image=self.field)
+            shaded, bands = _shade(ax, gx, gy, z, norm, self.cmap, bounds, r, image=self.field,
+                                   pixels_only=self.stamp_labels)
             if bands is not None:
                 colours = _band_colours(_fine_levels(bounds), norm, self.cmap)
                 extent = self.field.get_extent()
@@ -828,7 +846,7 @@ class MapCanvas:
             [*self._scratch, self.outline, *extra, self.used, self.outside, self.failed,
              self.legend, self.tick_marks],
             hidden=[self.field, self.title, *self.labels, *self.tick_labels], paint=self._paint)
-        return encode_png(_stamp_all(rgb, self._stamped))
+        return encode_png(_stamp_all(rgb, self._stamped), MAP_PNG_COMPRESS_LEVEL)
 
 
 def _tick_texts(ticks, lo, hi):
@@ -1042,9 +1060,11 @@ class _SheetPanel:
         self.failed = ax.plot([], [], zorder=5, **FAILED_MARKER)[0]
         self.out_of_spec = ax.add_patch(Circle((0.0, 0.0), 0.518 * d, fill=False, lw=2.2,
                                                ec="black", clip_on=False, zorder=6))
-        self.caption = ax.text(0.5, 1.0, "", transform=ax.transAxes, ha="center",
-                               va="bottom", fontsize=7, parse_math=False)
-        self.caption.set_y(1.0 + 2.0 / 72.0 * dpi / ax.bbox.height)     # 2 pt above the axes
+        # the caption (wafer, slot, NU), stamped: centred, its last line's box 2 pt above
+        # the map's axes
+        self.caption_fonts = {False: _TextStamps(7.0, dpi, cache=False),
+                              True: _TextStamps(7.0, dpi, cache=False, weight="bold")}
+        self.caption_at = (ax.bbox.x0 + ax.bbox.width / 2, ax.bbox.y1 + 2.0 / 72.0 * dpi)
         self.ax, self.fig = ax, fig
         self._scratch = []
         self._blit = _Blitter(fig)
@@ -1060,7 +1080,7 @@ class _SheetPanel:
         shaded, paint = None, None
         if z is not None and np.isfinite(z).sum() >= 4:
             shaded, bands = _shade(self.ax, gx, gy, z, norm, self.cmap, bounds, self.d / 2,
-                                   image=self.field)
+                                   image=self.field, pixels_only=True)
             if bands is not None:
                 extent = self.field.get_extent()
                 paint = lambda buf: _paint_field(buf, self.ax, extent, bands, colours)  # noqa: E731
@@ -1076,12 +1096,19 @@ class _SheetPanel:
         self.outside.set_data(x[outside], y[outside])
         self.failed.set_data(x[failed], y[failed])
         self.out_of_spec.set_visible(bool(out_of_spec))
-        self.caption.set_text(caption)
-        self.caption.set_fontweight("bold" if out_of_spec else "normal")
         extra = [self.ring] if self.ring is not None else []
-        return self._blit.pixels([*self._scratch, self.outline, *extra, self.used,
-                                  self.outside, self.failed, self.out_of_spec, self.caption],
-                                 hidden=[self.field], paint=paint)
+        rgb = self._blit.pixels([*self._scratch, self.outline, *extra, self.used,
+                                 self.outside, self.failed, self.out_of_spec],
+                                hidden=[self.field], paint=paint)
+        font = self.caption_fonts[bool(out_of_spec)]
+        x, bottom = self.caption_at
+        lines = caption.split("\n")
+        baseline = bottom + font.line_descent_px
+        items = [(line, x, baseline + (len(lines) - 1 - k) * 1.2 * font.line_px, 0.0, True)
+                 for k, line in enumerate(lines)]
+        out = np.array(rgb, dtype=np.uint8, copy=True)
+        font.stamp_into(out, items)
+        return out
 
 
 def contact_sheet_png(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm, *,
@@ -1205,15 +1232,31 @@ def png_bytes(fig, dpi=None):
     return encode_png(np.asarray(canvas.buffer_rgba())[..., :3].copy())
 
 
-def encode_png(rgb):
-    """An (H, W, 3) uint8 image as palette PNG bytes (see `png_bytes`)."""
+#: zlib level of the wafer-map PNGs: a third less encoding time than the default 6 for
+#: a quarter more bytes (about 40 kB a map; measured on 40 maps of benchmarks/report.py).
+MAP_PNG_COMPRESS_LEVEL = 2
+
+
+def encode_png(rgb, compress_level=6):
+    """An (H, W, 3) uint8 image as palette PNG bytes (see `png_bytes`).
+
+    Parameters
+    ----------
+    rgb : numpy.ndarray, shape (H, W, 3), uint8
+    compress_level : int
+        zlib level 0-9 (Pillow's PNG writer): higher is smaller and slower.
+
+    Returns
+    -------
+    bytes
+    """
     import io
 
     from PIL import Image
 
     image = Image.fromarray(rgb, "RGB").quantize(PNG_COLOURS, method=Image.Quantize.FASTOCTREE)
     buf = io.BytesIO()
-    image.save(buf, format="png", compress_level=6)
+    image.save(buf, format="png", compress_level=int(compress_level))
     return buf.getvalue()
 
 
@@ -1239,6 +1282,8 @@ class _TextStamps:
         Keep each text's bitmap (texts that repeat: labels, ticks; not titles).
     halo : bool
         A white halo one pixel wide around the glyphs (texts over the map).
+    weight : str
+        Font weight ("normal", "bold").
     """
 
     #: Margin around a label's glyphs, px.
@@ -1247,16 +1292,17 @@ class _TextStamps:
     #: Most texts kept per font (bounded memory on a pathological lot).
     MAX_CACHED = 20000
 
-    def __init__(self, fontsize_pt, dpi, cache=True, halo=False):
+    def __init__(self, fontsize_pt, dpi, cache=True, halo=False, weight="normal"):
         from matplotlib.font_manager import FontProperties, findfont, get_font
 
-        self.font = get_font(findfont(FontProperties(family=["sans-serif"])))
+        self.font = get_font(findfont(FontProperties(family=["sans-serif"], weight=weight)))
         self.size, self.dpi, self.keep = float(fontsize_pt), float(dpi), bool(cache)
         self.halo = bool(halo)
         self.cache = {}
         self.font.set_size(self.size, self.dpi)
         self.font.set_text("lp", 0.0)
         self.line_px = self.font.get_width_height()[1] / 64.0      # as matplotlib's line height
+        self.line_descent_px = self.font.get_descent() / 64.0
 
     def glyphs(self, text):
         """(glyph alpha (h, w) float32 0-1, its white halo's alpha, layout width px, descent
@@ -1269,10 +1315,14 @@ class _TextStamps:
             width, descent = font.get_width_height()[0] / 64.0, font.get_descent() / 64.0
             font.draw_glyphs_to_bitmap(antialiased=True)
             glyph = np.pad(np.asarray(font.get_image(), dtype=np.float32) / 255.0, 1)
-            # a white halo one pixel wide keeps the text legible on dark and light map colours
+            # a white halo one pixel wide keeps the text legible on dark and light map
+            # colours: the glyphs grown by one pixel (the largest of each 3 x 3 block)
+            h, w = glyph.shape
+            grown = np.pad(glyph, 1)
             halo = glyph.copy()
-            for dy, dx in ((0, 1), (0, -1), (1, 0), (-1, 0), (1, 1), (1, -1), (-1, 1), (-1, -1)):
-                np.maximum(halo, np.roll(glyph, (dy, dx), axis=(0, 1)), out=halo)
+            for dy in range(3):
+                for dx in range(3):
+                    np.maximum(halo, grown[dy:dy + h, dx:dx + w], out=halo)
             got = (glyph, halo, width, descent)
             if self.keep:
                 if len(self.cache) >= self.MAX_CACHED:
