@@ -18,7 +18,8 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
     Wafers with different site layouts (a missing site, another pattern) are each mapped
     from their own sites; a missing site is never drawn, a failed site is a white X.
     The worker processes draw the maps while this process draws the contact sheet and
-    then runs ``while_maps``.
+    then runs ``while_maps``. `FigureWork` does the same in two steps (the maps can start
+    before the caller knows which wafers are out of spec).
 
     Parameters
     ----------
@@ -45,58 +46,107 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
     -------
     dict {name: path}
     """
-    outdir = Path(outdir)
-    m = config.measurement
-    lot_id = str(config.lot.id)
-    t, ok = ds["thickness"].values, ds["fit_ok"].values
-    wafers, slots = ds.wafer.values, ds.slot.values
-    notes = [] if notes is None else notes
-    written = {}
-    fig_dir = outdir / "figures"
-    groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
-    if len(groups) > 1:
-        notes.append(f"the wafers have {len(groups)} different site layouts (missing sites): "
-                     "each wafer is mapped from its own sites")
-    # the thickness surface of each site layout is computed once, for the maps and the sheet
-    # (before any worker starts: no numerical work runs while the pool forks)
-    surfaces = []
-    for rows, x, y, present in groups:
-        surfaces.append((rows, tps_polar_surface(np.where(present, t[rows], np.nan),
-                                                 ok[rows] & present, x, y, m.wafer_diameter_mm,
-                                                 m.edge_exclusion_mm)))
-    bar = progress(len(wafers)) if progress is not None else None
-    try:
-        with MapRendering(workers, bar.update if bar is not None else None) as maps:
-            group_paths = []
-            for (rows, x, y, present), (_, surface) in zip(groups, surfaces):
-                group_paths.append(maps.add(
-                    fig_dir, np.where(present, t[rows], np.nan), ok[rows] & present, x, y,
-                    m.wafer_diameter_mm, m.edge_exclusion_mm,
+    with FigureWork(ds, config, outdir, workers, progress=progress, notes=notes) as work:
+        return work.finish(out_of_spec=out_of_spec, while_maps=while_maps)
+
+
+class FigureWork:
+    """The figures of a lot in two steps: the maps start at once, the rest follows.
+
+    Creating it computes the thickness surface of each site layout and sets the worker
+    processes drawing the wafer maps; while they draw, this process can write other
+    outputs (lot.nc, the summaries) and then call `finish` for the contact sheet (which
+    needs the out-of-spec wafers). Use as a context manager: leaving it ends the workers.
+
+    Parameters
+    ----------
+    ds, config, outdir, workers, progress, notes
+        As for `write_figures`.
+    """
+
+    def __init__(self, ds, config, outdir, workers=1, *, progress=None, notes=None):
+        self.ds, self.outdir = ds, Path(outdir)
+        m = config.measurement
+        self.diameter_mm, self.edge_exclusion_mm = m.wafer_diameter_mm, m.edge_exclusion_mm
+        self.lot_id = str(config.lot.id)
+        t, ok = ds["thickness"].values, ds["fit_ok"].values
+        wafers, slots = ds.wafer.values, ds.slot.values
+        self.notes = [] if notes is None else notes
+        groups = list(coordinate_groups(ds["x_mm"].values, ds["y_mm"].values))
+        if len(groups) > 1:
+            self.notes.append(f"the wafers have {len(groups)} different site layouts (missing "
+                              "sites): each wafer is mapped from its own sites")
+        # the thickness surface of each site layout is computed once, for the maps and the
+        # sheet (before any worker starts: no numerical work runs while the pool forks)
+        self.surfaces = []
+        for rows, x, y, present in groups:
+            self.surfaces.append((rows, tps_polar_surface(
+                np.where(present, t[rows], np.nan), ok[rows] & present, x, y,
+                self.diameter_mm, self.edge_exclusion_mm)))
+        self.bar = progress(len(wafers)) if progress is not None else None
+        self.maps = MapRendering(workers, self.bar.update if self.bar is not None else None)
+        self.group_paths = []
+        try:
+            for (rows, x, y, present), (_, surface) in zip(groups, self.surfaces):
+                self.group_paths.append(self.maps.add(
+                    self.outdir / "figures", np.where(present, t[rows], np.nan),
+                    ok[rows] & present, x, y, self.diameter_mm, self.edge_exclusion_mm,
                     wafer_ids=[str(w) for w in wafers[rows]],
-                    slots=[int(s) for s in slots[rows]], present=present, lot_id=lot_id,
+                    slots=[int(s) for s in slots[rows]], present=present, lot_id=self.lot_id,
                     surface=surface))
-            maps.pump()                 # the workers start on the maps now
-            oos = set(map(str, out_of_spec))
-            png = contact_sheet_png(t, ok, ds["x_mm"].values, ds["y_mm"].values,
-                                    m.wafer_diameter_mm, m.edge_exclusion_mm,
-                                    wafer_ids=[str(w) for w in wafers],
-                                    slots=[int(s) for s in slots],
-                                    out_of_spec=[str(w) in oos for w in wafers], lot_id=lot_id,
-                                    surfaces=surfaces, between_panels=maps.pump)
-            sheet = write_bytes_atomic(png, outdir / "contact_sheet.png")
-            del png
-            if while_maps is not None:
-                while_maps(maps.pump)
-            maps.finish()
-            for paths in group_paths:
-                for path in paths:
-                    written[f"figures/{Path(path).name}"] = path
-            written["contact_sheet.png"] = sheet
-    finally:
-        if bar is not None:
-            bar.close()
-    no_fit = [str(w) for w, okw in zip(wafers, ok) if not np.any(okw)]
-    if no_fit:
-        notes.append(f"{len(no_fit)} wafer map(s) show no thickness (no accepted fit): "
-                     + ", ".join(no_fit[:8]) + (" ..." if len(no_fit) > 8 else ""))
-    return written
+            self.maps.pump()            # the workers start on the maps now
+        except BaseException:
+            self.close()
+            raise
+
+    def pump(self):
+        """Keep the map workers supplied (call now and then during other work)."""
+        self.maps.pump()
+
+    def finish(self, out_of_spec=(), while_maps=None):
+        """The contact sheet, then ``while_maps(pump)``, then the remaining maps.
+
+        Returns
+        -------
+        dict {name: path}
+        """
+        ds, written = self.ds, {}
+        t, ok = ds["thickness"].values, ds["fit_ok"].values
+        wafers, slots = ds.wafer.values, ds.slot.values
+        oos = set(map(str, out_of_spec))
+        png = contact_sheet_png(t, ok, ds["x_mm"].values, ds["y_mm"].values,
+                                self.diameter_mm, self.edge_exclusion_mm,
+                                wafer_ids=[str(w) for w in wafers],
+                                slots=[int(s) for s in slots],
+                                out_of_spec=[str(w) in oos for w in wafers], lot_id=self.lot_id,
+                                surfaces=self.surfaces, between_panels=self.maps.pump)
+        sheet = write_bytes_atomic(png, self.outdir / "contact_sheet.png")
+        del png
+        if while_maps is not None:
+            while_maps(self.maps.pump)
+        self.maps.finish()
+        for paths in self.group_paths:
+            for path in paths:
+                written[f"figures/{Path(path).name}"] = path
+        written["contact_sheet.png"] = sheet
+        no_fit = [str(w) for w, okw in zip(wafers, ok) if not np.any(okw)]
+        if no_fit:
+            self.notes.append(f"{len(no_fit)} wafer map(s) show no thickness (no accepted "
+                              "fit): " + ", ".join(no_fit[:8]) + (" ..." if len(no_fit) > 8
+                                                                  else ""))
+        return written
+
+    def close(self):
+        """End the map workers and the progress display."""
+        try:
+            self.maps.close()
+        finally:
+            if self.bar is not None:
+                self.bar.close()
+                self.bar = None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()

@@ -159,8 +159,23 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
                                                         len(sites.wafer), n_values, figures,
                                                         keep_spectra))
     # every output goes to a staging folder that replaces OUTDIR only once complete
-    with _late_write_errors(outdir), staged_output(outdir) as stage:
-        written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+    with _late_write_errors(outdir), staged_output(outdir) as stage, \
+            contextlib.ExitStack() as figure_work:
+        maps, figure_notes = [], []
+
+        def start_maps(ds):
+            # the map workers start as soon as the lot dataset exists: they draw while
+            # lot.nc, the summaries, the contact sheet and report.pdf are written
+            from filmmap.figures_out import FigureWork
+
+            maps.append(figure_work.enter_context(FigureWork(
+                ds, reduction.config, stage, workers=figure_workers or max(2, workers),
+                progress=lambda n: _bar(progress, n, "maps"), notes=figure_notes)))
+
+        written = write_lot(reduction, stage, keep_spectra=keep_spectra,
+                            dataset_ready=start_maps if figures else None)
+        for work in maps:
+            work.pump()
         advice = write_advice(reduction.config, written, stage, rate_factors,
                               **(advice_options or {}))
         if advice is not None:
@@ -186,17 +201,14 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
                     view, written.dataset, stage, images=images, advice=advice,
                     wafer_pages=pdf_wafer_pages, between_pages=between_pages,
                     progress=lambda n: _bar(progress, n, "report.pdf"))
+                # report.html's figures too, while the map workers are still busy
+                images.render_figures(advice, between=between_pages)
         if figures:
-            from filmmap.figures_out import write_figures
-
-            written.figure_notes = []
+            written.figure_notes = figure_notes
             # report.pdf needs the contact sheet and no map (unless it has a page per
             # wafer): it is written while the worker processes draw the maps
-            written.files.update(write_figures(
-                written.dataset, reduction.config, stage,
-                workers=figure_workers or max(2, workers),
+            written.files.update(maps[0].finish(
                 out_of_spec=view.wtw.out_of_spec_ids if view.target_nm is not None else (),
-                progress=lambda n: _bar(progress, n, "maps"), notes=written.figure_notes,
                 while_maps=write_pdf if report and not pdf_wafer_pages else None))
         if report:
             if "report.pdf" not in written.files:

@@ -328,18 +328,30 @@ def evidence_figure(sites, spectra, *, ncols=3, panel_in=(3.3, 2.8), dpi=100, ti
     n = max(1, len(sites))
     ncols = max(1, min(ncols, n))
     nrows = int(math.ceil(n / ncols))
-    fig = Figure(figsize=(panel_in[0] * ncols, panel_in[1] * nrows + (0.4 if title else 0)),
-                 dpi=dpi, layout="constrained")
+    head = 0.4 if title else 0.0
+    pw, ph = panel_in
+    width, height = pw * ncols, ph * nrows + head
+    fig = Figure(figsize=(width, height), dpi=dpi)
     FigureCanvasAgg(fig)
-    outer = fig.add_gridspec(nrows, ncols)
+    # fixed margins (inches, for the font size): room for the tick labels, the axis labels
+    # and the three-line title; a layout engine finding them costs more than the drawing
+    em = fontsize / 72.0
+    left, right, top, bottom = 6.2 * em, 1.2 * em, 5.2 * em, 4.0 * em
     hints = []
     for k, site in enumerate(sites):
-        inner = outer[k // ncols, k % ncols].subgridspec(2, 1, height_ratios=(2.2, 1), hspace=0)
-        ax = fig.add_subplot(inner[0])
-        rax = fig.add_subplot(inner[1], sharex=ax)
+        row, col = divmod(k, ncols)
+        x0 = col * pw + left
+        w = max(pw - left - right, 0.1)
+        y0 = height - head - (row + 1) * ph + bottom
+        h = max(ph - top - bottom, 0.1)
+        h_resid = h / 3.2                               # spectrum : residual = 2.2 : 1
+        ax = fig.add_axes((x0 / width, (y0 + h_resid) / height, w / width,
+                           (h - h_resid) / height))
+        rax = fig.add_axes((x0 / width, y0 / height, w / width, h_resid / height), sharex=ax)
         hints.append(_panel(ax, rax, site, spectra, fontsize))
     if title:
-        fig.suptitle(title, fontsize=fontsize + 2.5, parse_math=False)
+        fig.suptitle(title, fontsize=fontsize + 2.5, y=1 - 0.08 / height, va="top",
+                     parse_math=False)
     return fig, hints
 
 

@@ -111,6 +111,18 @@ class ReportImages:
             return figure_png(fig), sites, hints, n_bad
         return self._cached("evidence", make)
 
+    def render_figures(self, advice=None, between=None):
+        """Render now the figures report.html embeds (not the maps, read from disk).
+
+        Lets them be drawn while other processes work (the map workers), not after.
+        ``between``: called after each figure.
+        """
+        for make in (self.slot_profile, self.fit_quality, lambda: self.advice_profile(advice),
+                     self.evidence):
+            make()
+            if between is not None:
+                between()
+
     def close(self):
         """Close spectra.nc if it was opened."""
         sp = self._cache.pop("spectra", None)
