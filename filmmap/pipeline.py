@@ -146,9 +146,18 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     if workers < 1:
         raise FilmmapInputError(f"--workers must be >= 1, got {workers}", field="--workers")
     bar = _bar(progress, n_files, "fitting")
+
+    def batch_fitted(n):
+        if bar is not None:
+            bar.update(n)
+        if (figures or report) and workers > 1:
+            # the figure and report modules (matplotlib, about 0.4 s) are imported while
+            # the fitting workers still work, not after them
+            _import_figure_modules()
+
     try:
         reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra, config=config,
-                               progress=(bar.update if bar is not None else None))
+                               progress=batch_fitted)
     finally:
         if bar is not None:
             bar.close()
@@ -229,6 +238,15 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     return reduction, written, time.perf_counter() - t0
 
 
+
+
+def _import_figure_modules():
+    """Import what the maps and the reports need (once; cheap when already imported)."""
+    from importlib import import_module
+
+    for name in ("filmmap.figures_out", "filmmap.report.html", "filmmap.report.pdf",
+                 "filmmap.report.images", "filmmap.report.evidence", "PIL.PngImagePlugin"):
+        import_module(name)
 
 
 def _kept_spectra(reduction):
