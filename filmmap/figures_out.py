@@ -17,9 +17,9 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
 
     Wafers with different site layouts (a missing site, another pattern) are each mapped
     from their own sites; a missing site is never drawn, a failed site is a white X.
-    The worker processes draw the maps while this process draws the contact sheet and
-    then runs ``while_maps``. `FigureWork` does the same in two steps (the maps can start
-    before the caller knows which wafers are out of spec).
+    The worker processes draw the maps and the contact sheet while this process runs
+    ``while_maps``. `FigureWork` does the same in two steps (the maps can start before the
+    caller knows which wafers are out of spec).
 
     Parameters
     ----------
@@ -46,25 +46,27 @@ def write_figures(ds, config, outdir, workers=1, *, out_of_spec=(), progress=Non
     -------
     dict {name: path}
     """
-    with FigureWork(ds, config, outdir, workers, progress=progress, notes=notes) as work:
-        return work.finish(out_of_spec=out_of_spec, while_maps=while_maps)
+    with FigureWork(ds, config, outdir, workers, out_of_spec=out_of_spec, progress=progress,
+                    notes=notes) as work:
+        return work.finish(while_maps=while_maps)
 
 
 class FigureWork:
-    """The figures of a lot in two steps: the maps start at once, the rest follows.
+    """The figures of a lot in two steps: the workers start at once, the rest follows.
 
     Creating it computes the thickness surface of each site layout and sets the worker
-    processes drawing the wafer maps; while they draw, this process can write other
-    outputs (lot.nc, the summaries) and then call `finish` for the contact sheet (which
-    needs the out-of-spec wafers). Use as a context manager: leaving it ends the workers.
+    processes drawing the contact sheet and the wafer maps; while they draw, this process
+    can write other outputs (lot.nc, the summaries, the reports) and then call `finish`.
+    Use as a context manager: leaving it ends the workers.
 
     Parameters
     ----------
-    ds, config, outdir, workers, progress, notes
+    ds, config, outdir, workers, out_of_spec, progress, notes
         As for `write_figures`.
     """
 
-    def __init__(self, ds, config, outdir, workers=1, *, progress=None, notes=None):
+    def __init__(self, ds, config, outdir, workers=1, *, out_of_spec=(), progress=None,
+                 notes=None):
         self.ds, self.outdir = ds, Path(outdir)
         m = config.measurement
         self.diameter_mm, self.edge_exclusion_mm = m.wafer_diameter_mm, m.edge_exclusion_mm
@@ -87,6 +89,13 @@ class FigureWork:
         self.maps = MapRendering(workers, self.bar.update if self.bar is not None else None)
         self.group_paths = []
         try:
+            # the contact sheet first: report.pdf waits for it, for no map
+            oos = set(map(str, out_of_spec))
+            self.sheet = self.maps.submit(
+                contact_sheet_png, t, ok, ds["x_mm"].values, ds["y_mm"].values,
+                self.diameter_mm, self.edge_exclusion_mm, wafer_ids=[str(w) for w in wafers],
+                slots=[int(s) for s in slots], out_of_spec=[str(w) in oos for w in wafers],
+                lot_id=self.lot_id, surfaces=self.surfaces)
             for (rows, x, y, present), (_, surface) in zip(groups, self.surfaces):
                 self.group_paths.append(self.maps.add(
                     self.outdir / "figures", np.where(present, t[rows], np.nan),
@@ -103,25 +112,24 @@ class FigureWork:
         """Keep the map workers supplied (call now and then during other work)."""
         self.maps.pump()
 
-    def finish(self, out_of_spec=(), while_maps=None):
-        """The contact sheet, then ``while_maps(pump)``, then the remaining maps.
+    def finish(self, while_maps=None, before_sheet=None):
+        """``before_sheet(pump)``, the contact sheet, ``while_maps(pump)``, the other maps.
+
+        ``before_sheet`` runs while a worker may still draw the contact sheet (work that
+        needs no figure of this module, such as the report's plots), ``while_maps`` once the
+        sheet is written while the workers may still draw maps (report.pdf); both call
+        ``pump()`` now and then to keep the workers supplied.
 
         Returns
         -------
         dict {name: path}
         """
         ds, written = self.ds, {}
-        t, ok = ds["thickness"].values, ds["fit_ok"].values
-        wafers, slots = ds.wafer.values, ds.slot.values
-        oos = set(map(str, out_of_spec))
-        png = contact_sheet_png(t, ok, ds["x_mm"].values, ds["y_mm"].values,
-                                self.diameter_mm, self.edge_exclusion_mm,
-                                wafer_ids=[str(w) for w in wafers],
-                                slots=[int(s) for s in slots],
-                                out_of_spec=[str(w) in oos for w in wafers], lot_id=self.lot_id,
-                                surfaces=self.surfaces, between_panels=self.maps.pump)
-        sheet = write_bytes_atomic(png, self.outdir / "contact_sheet.png")
-        del png
+        ok, wafers = ds["fit_ok"].values, ds.wafer.values
+        if before_sheet is not None:
+            before_sheet(self.maps.pump)
+        sheet = write_bytes_atomic(self.maps.result(self.sheet), self.outdir / "contact_sheet.png")
+        self.sheet = None
         if while_maps is not None:
             while_maps(self.maps.pump)
         self.maps.finish()

@@ -170,16 +170,18 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     # every output goes to a staging folder that replaces OUTDIR only once complete
     with _late_write_errors(outdir), staged_output(outdir) as stage, \
             contextlib.ExitStack() as figure_work:
-        maps, figure_notes = [], []
+        maps, figure_notes, views = [], [], []
 
         def start_maps(ds):
-            # the map workers start as soon as the lot dataset exists: they draw while
-            # lot.nc, the summaries, the contact sheet and report.pdf are written
+            # the workers start drawing the contact sheet and the maps as soon as the lot
+            # dataset exists, while lot.nc, the summaries and the reports are written
             from filmmap.figures_out import FigureWork
 
+            views.append(lot_view(ds, reduction.config, min_sites=MIN_SITES_FOR_LOT))
             maps.append(figure_work.enter_context(FigureWork(
                 ds, reduction.config, stage, workers=figure_workers or max(2, workers),
-                progress=lambda n: _bar(progress, n, "maps"), notes=figure_notes)))
+                out_of_spec=views[0].wtw.out_of_spec_ids if views[0].target_nm is not None
+                else (), progress=lambda n: _bar(progress, n, "maps"), notes=figure_notes)))
 
         written = write_lot(reduction, stage, keep_spectra=keep_spectra,
                             dataset_ready=start_maps if figures else None)
@@ -190,8 +192,8 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         if advice is not None:
             written.files["advice.json"] = stage / "advice.json"
         # the boat-end verdicts follow the advice's one model of the boat when there is one
-        view = with_boat_model(lot_view(written.dataset, reduction.config,
-                                        min_sites=MIN_SITES_FOR_LOT), advice)
+        view = with_boat_model(views[0] if views else lot_view(
+            written.dataset, reduction.config, min_sites=MIN_SITES_FOR_LOT), advice)
         written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
         written.files["summary.json"] = write_summary_json(
             view, stage, created=written.dataset.attrs.get("created"))
@@ -210,14 +212,16 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
                     view, written.dataset, stage, images=images, advice=advice,
                     wafer_pages=pdf_wafer_pages, between_pages=between_pages,
                     progress=lambda n: _bar(progress, n, "report.pdf"))
-                # report.html's figures too, while the map workers are still busy
-                images.render_figures(advice, between=between_pages)
+
+            def render_report_figures(pump):
+                # the reports' plots are drawn here while a worker draws the contact sheet
+                images.render_figures(advice, between=pump)
         if figures:
             written.figure_notes = figure_notes
             # report.pdf needs the contact sheet and no map (unless it has a page per
             # wafer): it is written while the worker processes draw the maps
             written.files.update(maps[0].finish(
-                out_of_spec=view.wtw.out_of_spec_ids if view.target_nm is not None else (),
+                before_sheet=render_report_figures if report else None,
                 while_maps=write_pdf if report and not pdf_wafer_pages else None))
         if report:
             if "report.pdf" not in written.files:

@@ -39,3 +39,29 @@ def end_with_parent(poll_s=PARENT_POLL_S):
     """
     threading.Thread(target=_watch_parent, args=(os.getppid(), poll_s),
                      name="filmmap-parent-watch", daemon=True).start()
+
+
+BACKGROUND_NICE = 5
+"""How much lower the scheduling priority of a background worker is (``os.nice``): when
+the cores are short, the process whose work everything waits for runs first (common
+practice, no source)."""
+
+
+def background_worker(poll_s=PARENT_POLL_S, nice=BACKGROUND_NICE):
+    """Pool initializer: `end_with_parent`, and a lower scheduling priority.
+
+    For workers whose results are needed only at the end (the wafer maps), while their
+    parent does the work the caller waits for (the reports).
+
+    Parameters
+    ----------
+    poll_s : float
+        As for `end_with_parent`, s.
+    nice : int
+        Added to the worker's niceness (``os.nice``; where the platform has none, ignored).
+    """
+    end_with_parent(poll_s)
+    try:
+        os.nice(int(nice))
+    except (AttributeError, OSError):
+        pass    # no nice on this platform, or not allowed: the same priority then

@@ -40,7 +40,7 @@ from filmmap.errors import FilmmapInputError
 from filmmap.wafermap.sites import check_wafer, inside_edge_exclusion, lot_arrays
 from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_polar_surface
-from filmmap.workers import end_with_parent
+from filmmap.workers import background_worker
 
 #: Colour maps accepted by the figure functions (perceptually uniform).
 ALLOWED_CMAPS = ("viridis", "cividis", "viridis_r", "cividis_r")
@@ -651,6 +651,7 @@ class MapCanvas:
         d, ee = float(diameter_mm), float(edge_exclusion_mm)
         self.key = (d, ee, cmap, tuple(figsize_in), float(dpi))
         self.d, self.ee, self.cmap, self.dpi = d, ee, _colormap(cmap), float(dpi)
+        self.palette = map_palette(cmap)
         self.font = _TextStamps(LABEL_FONTSIZE, dpi, halo=True)
         self.tick_font = _TextStamps(TICK_FONTSIZE, dpi)
         self.title_font = _TextStamps(TITLE_FONTSIZE, dpi, cache=False)
@@ -846,7 +847,8 @@ class MapCanvas:
             [*self._scratch, self.outline, *extra, self.used, self.outside, self.failed,
              self.legend, self.tick_marks],
             hidden=[self.field, self.title, *self.labels, *self.tick_labels], paint=self._paint)
-        return encode_png(_stamp_all(rgb, self._stamped), MAP_PNG_COMPRESS_LEVEL)
+        return encode_png(_stamp_all(rgb, self._stamped), MAP_PNG_COMPRESS_LEVEL,
+                          palette=self.palette)
 
 
 def _tick_texts(ticks, lo, hi):
@@ -1183,7 +1185,7 @@ def contact_sheet_png(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
         img = pixels(tfig)
         h, w = min(img.shape[0], head_px), min(img.shape[1], sheet.shape[1])
         sheet[:h, :w] = img[:h, :w]
-    return encode_png(sheet)
+    return encode_png(sheet, palette=map_palette(cmap))
 
 
 def write_bytes_atomic(data, path):
@@ -1237,7 +1239,7 @@ def png_bytes(fig, dpi=None):
 MAP_PNG_COMPRESS_LEVEL = 2
 
 
-def encode_png(rgb, compress_level=6):
+def encode_png(rgb, compress_level=6, palette=None):
     """An (H, W, 3) uint8 image as palette PNG bytes (see `png_bytes`).
 
     Parameters
@@ -1245,6 +1247,9 @@ def encode_png(rgb, compress_level=6):
     rgb : numpy.ndarray, shape (H, W, 3), uint8
     compress_level : int
         zlib level 0-9 (Pillow's PNG writer): higher is smaller and slower.
+    palette : PIL.Image.Image, optional
+        A fixed palette (`map_palette`) each pixel takes its nearest colour from, without
+        dithering; default a palette of `PNG_COLOURS` made for this image.
 
     Returns
     -------
@@ -1254,10 +1259,53 @@ def encode_png(rgb, compress_level=6):
 
     from PIL import Image
 
-    image = Image.fromarray(rgb, "RGB").quantize(PNG_COLOURS, method=Image.Quantize.FASTOCTREE)
+    image = Image.fromarray(rgb, "RGB")
+    if palette is None:
+        image = image.quantize(PNG_COLOURS, method=Image.Quantize.FASTOCTREE)
+    else:
+        image = image.quantize(palette=palette, dither=Image.Dither.NONE)
     buf = io.BytesIO()
     image.save(buf, format="png", compress_level=int(compress_level))
     return buf.getvalue()
+
+
+#: Colours of a map's fixed palette taken along its colour map (`map_palette`); the rest
+#: of the 256 are greys.
+PALETTE_MAP_COLOURS = 160
+
+_PALETTES = {}
+
+
+def map_palette(cmap):
+    """The fixed palette of map images: `PALETTE_MAP_COLOURS` colours along ``cmap`` and
+    greys from black to white.
+
+    A map figure is made of its colour map's colours (field, colour bar) and greys (texts,
+    outline, marks); mapping each pixel to the nearest of these is a quarter of the time
+    of finding a palette for every image (octree), with the colour map's steps below one
+    256-level colour-map step and only the blends at edges moved to a neighbour colour.
+
+    Parameters
+    ----------
+    cmap : str
+        One of `ALLOWED_CMAPS`.
+
+    Returns
+    -------
+    PIL.Image.Image
+        A "P" image holding the palette (as `encode_png` takes it).
+    """
+    from PIL import Image
+
+    if cmap not in _PALETTES:
+        along = (_colormap(cmap)(np.linspace(0.0, 1.0, PALETTE_MAP_COLOURS))[:, :3] * 255)
+        greys = np.repeat(np.linspace(0.0, 255.0, 256 - PALETTE_MAP_COLOURS)[:, None], 3,
+                          axis=1)
+        image = Image.new("P", (1, 1))
+        image.putpalette(np.concatenate([along, greys]).round().astype(np.uint8).ravel()
+                         .tolist())
+        _PALETTES[cmap] = image
+    return _PALETTES[cmap]
 
 
 class _TextStamps:
@@ -1586,15 +1634,38 @@ class MapRendering:
             chunk = self._next_chunk()
             if not chunk:
                 break
-            if self._pool is None:
-                # the workers end with this process (a watchdog on the parent), never
-                # left as orphans
-                self._pool = ProcessPoolExecutor(max_workers=self.workers,
-                                                 mp_context=self.mp_context,
-                                                 initializer=end_with_parent)
-            future = self._pool.submit(_render_chunk, [task for _, _, task in chunk])
+            future = self._executor().submit(_render_chunk, [task for _, _, task in chunk])
             self._pending[future] = (chunk[0][0], chunk[0][1], len(chunk))
             self._in_flight += len(chunk)
+
+    def _executor(self):
+        if self._pool is None:
+            # the workers end with this process (a watchdog on the parent), never left as
+            # orphans, and yield the cores to it when they are short
+            self._pool = ProcessPoolExecutor(max_workers=self.workers,
+                                             mp_context=self.mp_context,
+                                             initializer=background_worker)
+        return self._pool
+
+    def submit(self, fn, *args, **kwargs):
+        """Run ``fn(*args, **kwargs)`` in a worker (here, at once, with one worker), queued
+        after the maps already sent; returns a future (see `result`)."""
+        from concurrent.futures import Future
+
+        if self.workers == 1:
+            future = Future()
+            future.set_result(fn(*args, **kwargs))
+            return future
+        return self._executor().submit(fn, *args, **kwargs)
+
+    def result(self, future):
+        """The result of a `submit`, collecting finished maps and sending more meanwhile."""
+        from concurrent.futures import FIRST_COMPLETED, wait
+
+        while not future.done():
+            wait([future, *self._pending], return_when=FIRST_COMPLETED)
+            self.pump()
+        return future.result()
 
     def finish(self):
         """Render or wait for every queued map."""
