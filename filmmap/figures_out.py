@@ -88,6 +88,7 @@ class FigureWork:
         self.bar = progress(len(wafers)) if progress is not None else None
         self.maps = MapRendering(workers, self.bar.update if self.bar is not None else None)
         self.group_paths = []
+        self.sheet_png = self.sheet_path = None
         try:
             # the contact sheet first: report.pdf waits for it, for no map
             oos = set(map(str, out_of_spec))
@@ -112,13 +113,21 @@ class FigureWork:
         """Keep the map workers supplied (call now and then during other work)."""
         self.maps.pump()
 
-    def finish(self, while_maps=None, before_sheet=None):
-        """``before_sheet(pump)``, the contact sheet, ``while_maps(pump)``, the other maps.
+    def contact_sheet(self):
+        """The contact sheet's PNG bytes, written to contact_sheet.png (waits for the worker
+        drawing it, keeping the map workers supplied meanwhile)."""
+        if self.sheet_path is None:
+            self.sheet_png = self.maps.result(self.sheet)
+            self.sheet_path = write_bytes_atomic(self.sheet_png, self.outdir / "contact_sheet.png")
+            self.sheet = None
+        return self.sheet_png
 
-        ``before_sheet`` runs while a worker may still draw the contact sheet (work that
-        needs no figure of this module, such as the report's plots), ``while_maps`` once the
-        sheet is written while the workers may still draw maps (report.pdf); both call
-        ``pump()`` now and then to keep the workers supplied.
+    def finish(self, while_maps=None):
+        """``while_maps(pump)``, then the contact sheet and the other maps.
+
+        ``while_maps`` runs while the workers draw (report.pdf, which calls `contact_sheet`
+        when it reaches that page); it calls ``pump()`` now and then to keep the workers
+        supplied.
 
         Returns
         -------
@@ -126,17 +135,14 @@ class FigureWork:
         """
         ds, written = self.ds, {}
         ok, wafers = ds["fit_ok"].values, ds.wafer.values
-        if before_sheet is not None:
-            before_sheet(self.maps.pump)
-        sheet = write_bytes_atomic(self.maps.result(self.sheet), self.outdir / "contact_sheet.png")
-        self.sheet = None
         if while_maps is not None:
             while_maps(self.maps.pump)
+        self.contact_sheet()
         self.maps.finish()
         for paths in self.group_paths:
             for path in paths:
                 written[f"figures/{Path(path).name}"] = path
-        written["contact_sheet.png"] = sheet
+        written["contact_sheet.png"] = self.sheet_path
         no_fit = [str(w) for w, okw in zip(wafers, ok) if not np.any(okw)]
         if no_fit:
             self.notes.append(f"{len(no_fit)} wafer map(s) show no thickness (no accepted "

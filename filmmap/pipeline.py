@@ -202,26 +202,25 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         if report:
             from filmmap.report import ReportImages, write_html_report, write_pdf_report
 
+            # the contact sheet comes from the worker drawing it when a report needs it
             images = ReportImages(view, written.dataset, stage, render_missing=False,
                                   no_map_reason=None if figures else
                                   "maps not drawn (reduce --no-figures)",
-                                  spectra=_kept_spectra(reduction))
+                                  spectra=_kept_spectra(reduction),
+                                  contact_sheet=maps[0].contact_sheet if maps else None)
 
             def write_pdf(between_pages=None):
                 written.files["report.pdf"] = write_pdf_report(
                     view, written.dataset, stage, images=images, advice=advice,
                     wafer_pages=pdf_wafer_pages, between_pages=between_pages,
                     progress=lambda n: _bar(progress, n, "report.pdf"))
-
-            def render_report_figures(pump):
-                # the reports' plots are drawn here while a worker draws the contact sheet
-                images.render_figures(advice, between=pump)
+                # and report.html's plots, while the workers still draw
+                images.render_figures(advice, between=between_pages)
         if figures:
             written.figure_notes = figure_notes
             # report.pdf needs the contact sheet and no map (unless it has a page per
             # wafer): it is written while the worker processes draw the maps
             written.files.update(maps[0].finish(
-                before_sheet=render_report_figures if report else None,
                 while_maps=write_pdf if report and not pdf_wafer_pages else None))
         if report:
             if "report.pdf" not in written.files:

@@ -46,12 +46,16 @@ class ReportImages:
     spectra : xarray.Dataset, optional
         The evidence spectra a reduction kept (`filmmap.report.evidence.kept_spectra`),
         used when the output folder has no spectra.nc.
+    contact_sheet : callable() -> bytes, optional
+        Gives the contact sheet's PNG when it is first needed (another process may still
+        be drawing it); default: contact_sheet.png of the output folder.
     """
 
     def __init__(self, view, ds, outdir=None, *, dpi=100, render_missing=True,
-                 no_map_reason=None, spectra=None):
+                 no_map_reason=None, spectra=None, contact_sheet=None):
         self.view, self.ds, self.dpi = view, ds, float(dpi)
         self.kept_spectra = spectra
+        self.sheet_source = contact_sheet
         self.outdir = None if outdir is None else Path(outdir)
         self.render_missing = bool(render_missing)
         self.no_map_reason = no_map_reason
@@ -142,6 +146,8 @@ class ReportImages:
     def _make_contact_sheet(self):
         if self.no_map_reason:
             return None, self.no_map_reason
+        if self.sheet_source is not None:
+            return self.sheet_source(), ""
         data = self._on_disk("contact_sheet.png")
         if data is not None:
             return data, ""
