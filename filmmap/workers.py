@@ -42,25 +42,30 @@ def end_with_parent(poll_s=PARENT_POLL_S):
 
 
 BACKGROUND_NICE = 5
-"""How much lower the scheduling priority of a background worker is (``os.nice``): when
-the cores are short, the process whose work everything waits for runs first (common
-practice, no source)."""
+"""How much lower the scheduling priority of background work is (``os.nice``): when the
+cores are short, the process whose work everything waits for runs first (common practice,
+no source)."""
+
+_lowered = False
 
 
-def background_worker(poll_s=PARENT_POLL_S, nice=BACKGROUND_NICE):
-    """Pool initializer: `end_with_parent`, and a lower scheduling priority.
+def lower_priority(nice=BACKGROUND_NICE):
+    """Lower this process's scheduling priority once (later calls do nothing).
 
-    For workers whose results are needed only at the end (the wafer maps), while their
-    parent does the work the caller waits for (the reports).
+    Called by a worker when it starts work whose results are needed only at the end (the
+    wafer maps) while other processes do the work the caller waits for (the reports, the
+    contact sheet they show).
 
     Parameters
     ----------
-    poll_s : float
-        As for `end_with_parent`, s.
     nice : int
-        Added to the worker's niceness (``os.nice``; where the platform has none, ignored).
+        Added to the process's niceness (``os.nice``; where the platform has none, or it is
+        not allowed, ignored).
     """
-    end_with_parent(poll_s)
+    global _lowered
+    if _lowered:
+        return
+    _lowered = True
     try:
         os.nice(int(nice))
     except (AttributeError, OSError):

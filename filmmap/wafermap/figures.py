@@ -40,7 +40,7 @@ from filmmap.errors import FilmmapInputError
 from filmmap.wafermap.sites import check_wafer, inside_edge_exclusion, lot_arrays
 from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_polar_surface
-from filmmap.workers import background_worker
+from filmmap.workers import end_with_parent, lower_priority
 
 #: Colour maps accepted by the figure functions (perceptually uniform).
 ALLOWED_CMAPS = ("viridis", "cividis", "viridis_r", "cividis_r")
@@ -1499,7 +1499,9 @@ def _render_task(task):
 
 
 def _render_chunk(tasks):
-    """Several map PNGs in one worker call (fewer round trips to the pool)."""
+    """Several map PNGs in one worker call (fewer round trips to the pool), at a lower
+    priority than the process waiting for other work (`filmmap.workers.lower_priority`)."""
+    lower_priority()
     return [_render_task(task) for task in tasks]
 
 
@@ -1646,10 +1648,10 @@ class MapRendering:
     def _executor(self):
         if self._pool is None:
             # the workers end with this process (a watchdog on the parent), never left as
-            # orphans, and yield the cores to it when they are short
+            # orphans
             self._pool = ProcessPoolExecutor(max_workers=self.workers,
                                              mp_context=self.mp_context,
-                                             initializer=background_worker)
+                                             initializer=end_with_parent)
         return self._pool
 
     def submit(self, fn, *args, **kwargs):
