@@ -151,9 +151,9 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
         if bar is not None:
             bar.update(n)
         if (figures or report) and workers > 1:
-            # the figure and report modules (matplotlib, about 0.4 s) are imported while
-            # the fitting workers still work, not after them
-            _import_figure_modules()
+            # the figure and report modules (matplotlib, about 0.4 s) are imported, and the
+            # map figure made, while the fitting workers still work, not after them
+            _prepare_figures(config, figures)
 
     try:
         reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra, config=config,
@@ -243,13 +243,18 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
 
 
 
-def _import_figure_modules():
-    """Import what the maps and the reports need (once; cheap when already imported)."""
+def _prepare_figures(config, figures):
+    """Import what the maps and the reports need, and make this process's map figure (the
+    map workers inherit it); cheap when done already."""
     from importlib import import_module
 
     for name in ("filmmap.figures_out", "filmmap.report.html", "filmmap.report.pdf",
                  "filmmap.report.images", "filmmap.report.evidence", "PIL.PngImagePlugin"):
         import_module(name)
+    if figures:
+        from filmmap.wafermap.figures import map_canvas
+
+        map_canvas(config.measurement.wafer_diameter_mm, config.measurement.edge_exclusion_mm)
 
 
 def _kept_spectra(reduction):

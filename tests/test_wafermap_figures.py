@@ -320,3 +320,18 @@ def test_place_site_labels_tries_the_other_sides_before_leaving_a_label_out():
     # no room anywhere (a site at the outline, a label wider than the wafer): left out
     out = place_site_labels([(100, 100)], [(200, 10)], 2.0, (100, 100), 50.0)
     assert np.all(np.isnan(out))
+
+
+@pytest.mark.parametrize("size_pt", [6.0, 7.0])
+def test_stamped_numbers_are_freetypes_own_pixels(size_pt):
+    # the site values and ticks are put together from single glyphs (no rasterising of
+    # each new number); the result must be the pixels FreeType gives the whole string
+    # (matplotlib's own text rendering), number after number
+    from filmmap.wafermap.figures import _TextStamps
+
+    stamps = _TextStamps(size_pt, 100)
+    assert stamps.composes_exactly()
+    values = np.random.default_rng(4).uniform(-60, 2500, 200)
+    for text in [f"{v:.1f}" for v in values] + [f"{v:.0f}" for v in values] + ["\u22120.5"]:
+        assert np.array_equal(stamps._ink(stamps._raster(text)[0]),
+                              stamps._ink(stamps._compose(text)[0])), text

@@ -845,15 +845,25 @@ class MapCanvas:
             label.set_color(str(grey) if grey else "black")
             label.set_visible(True)
 
+    def _layers(self):
+        """(artists `png` draws, artists it stamps or paints instead) for `_Blitter`."""
+        extra = [self.ring] if self.ring is not None else []
+        return ([*self._scratch, self.outline, *extra, self.used, self.outside, self.failed,
+                 self.legend, self.tick_marks],
+                [self.field, self.title, *self.labels, *self.tick_labels])
+
+    def prepare(self):
+        """Draw the static part of the figure now (with ``stamp_labels``), so that worker
+        processes forked afterwards start with it drawn."""
+        if self.stamp_labels and self._blit.background is None:
+            self._blit.pixels(*self._layers())
+
     def png(self):
         """The current wafer as palette PNG bytes (`png_bytes`), labels stamped in."""
         if not self.stamp_labels:
             return png_bytes(self.fig)
-        extra = [self.ring] if self.ring is not None else []
-        rgb = self._blit.pixels(
-            [*self._scratch, self.outline, *extra, self.used, self.outside, self.failed,
-             self.legend, self.tick_marks],
-            hidden=[self.field, self.title, *self.labels, *self.tick_labels], paint=self._paint)
+        changing, hidden = self._layers()
+        rgb = self._blit.pixels(changing, hidden=hidden, paint=self._paint)
         return encode_png(_stamp_all(rgb, self._stamped), MAP_PNG_COMPRESS_LEVEL,
                           palette=self.palette)
 
@@ -1320,8 +1330,9 @@ class _TextStamps:
     drawing time when drawn as matplotlib texts (layout and glyph rendering of every text of
     every map). Rasterised here in one FreeType call per text and alpha-blended into the
     image, they take a fraction of that: the same glyphs. The values of a lot repeat
-    ("591.2" appears on many wafers), so with ``cache`` each distinct text is rasterised once
-    per process. `box_size` gives the box a label needs (the one matplotlib gives the text:
+    ("591.2" appears on many wafers), so with ``cache`` each distinct text is made once per
+    process, and a number from its characters' glyphs (`_compose`: FreeType's pixels,
+    without rasterising each new number). `box_size` gives the box a label needs (the one matplotlib gives the text:
     its width, and the height of a line with ascenders and descenders), for
     `place_site_labels`.
 
@@ -1346,28 +1357,110 @@ class _TextStamps:
     MAX_CACHED = 20000
 
     def __init__(self, fontsize_pt, dpi, cache=True, halo=False, weight="normal"):
-        from matplotlib.font_manager import FontProperties, findfont, get_font
+        from matplotlib.font_manager import FontProperties, findfont
 
-        self.font = get_font(findfont(FontProperties(family=["sans-serif"], weight=weight)))
+        self.font_path = findfont(FontProperties(family=["sans-serif"], weight=weight))
         self.size, self.dpi, self.keep = float(fontsize_pt), float(dpi), bool(cache)
         self.halo = bool(halo)
-        self.cache = {}
-        self.font.set_size(self.size, self.dpi)
-        self.font.set_text("lp", 0.0)
-        self.line_px = self.font.get_width_height()[1] / 64.0      # as matplotlib's line height
-        self.line_descent_px = self.font.get_descent() / 64.0
+        self.cache, self.chars, self._exact = {}, {}, None
+        font = self.font
+        font.set_size(self.size, self.dpi)
+        font.set_text("lp", 0.0)
+        self.line_px = font.get_width_height()[1] / 64.0      # as matplotlib's line height
+        self.line_descent_px = font.get_descent() / 64.0
+
+    @property
+    def font(self):
+        """matplotlib's FreeType font object of this process (and thread): never one made
+        before a fork, whose file position the forked processes would share (matplotlib
+        empties its font cache in a forked child)."""
+        from matplotlib.font_manager import get_font
+
+        return get_font(self.font_path)
+
+    #: Characters of numbers, which `_compose` puts together from their single glyphs.
+    NUMBER_CHARS = frozenset("0123456789.-\u2212+")
+
+    def _raster(self, text):
+        """(FreeType's image of ``text``, uint8; its advance px; its descent px)."""
+        font = self.font                # shared with matplotlib: set the size every time
+        font.set_size(self.size, self.dpi)
+        font.set_text(text, 0.0)
+        width, descent = font.get_width_height()[0] / 64.0, font.get_descent() / 64.0
+        font.draw_glyphs_to_bitmap(antialiased=True)
+        return np.asarray(font.get_image(), dtype=np.uint8), width, descent
+
+    def _char(self, ch):
+        """One character's glyph bitmap and metrics (26.6 units), rasterised once."""
+        got = self.chars.get(ch)
+        if got is None:
+            font = self.font
+            font.set_size(self.size, self.dpi)
+            font.set_text(ch, 0.0)
+            advance, height = font.get_width_height()
+            descent, x_min = font.get_descent(), font.get_bitmap_offset()[0]
+            font.draw_glyphs_to_bitmap(antialiased=True)
+            image = np.asarray(font.get_image(), dtype=np.uint8)
+            y_max = height - descent
+            left, top = math.floor(x_min / 64), math.ceil(y_max / 64)
+            # where FreeType's image of one glyph holds it (its +2 margin, matplotlib's
+            # FT2Font::draw_glyphs_to_bitmap)
+            col, row = int(left - x_min / 64.0), int(y_max / 64.0 - top + 1)
+            got = self.chars[ch] = (image[row:, col:].copy(), advance, x_min, y_max, -descent,
+                                    left, top)
+        return got
+
+    def _compose(self, text):
+        """(image, advance px, descent px) of a number put together from its characters'
+        glyphs as FreeType's ``set_text`` places them (hinted whole-pixel advances, no
+        kerning between these characters; glyphs or-ed together, as matplotlib does): the
+        same pixels without rasterising the string (`composes_exactly` checks this)."""
+        parts, pen = [], 0
+        for ch in text:
+            got = self._char(ch)
+            parts.append((pen, got))
+            pen += got[1]
+        x_min = min(p + g[2] for p, g in parts)
+        y_max = max(g[3] for _, g in parts)
+        y_min = min(g[4] for _, g in parts)
+        image = np.zeros(((y_max - y_min) // 64 + 4, (pen - x_min) // 64 + 4), np.uint8)
+        for p, (bitmap, _, _, _, _, left, top) in parts:
+            col, row = int(left + p / 64 - x_min / 64.0), int(y_max / 64.0 - top + 1)
+            region = image[row:row + bitmap.shape[0], col:col + bitmap.shape[1]]
+            np.bitwise_or(region, bitmap[:region.shape[0], :region.shape[1]], out=region)
+        return image, pen / 64.0, -y_min / 64.0
+
+    @staticmethod
+    def _ink(image):
+        """``image`` cut to its ink with one blank pixel around (nothing for no ink)."""
+        rows, cols = np.flatnonzero(image.any(axis=1)), np.flatnonzero(image.any(axis=0))
+        if not rows.size:
+            return np.zeros((2, 2), image.dtype)
+        return np.pad(image[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1], 1)
+
+    def composes_exactly(self, probes=("0123456789", "-1.5", "\u22120.25", "1000.0", "98.7",
+                                        "+7")):
+        """Whether `_compose` gives FreeType's own pixels for ``probes`` (with this font,
+        size and matplotlib's hinting); numbers are composed only then."""
+        if self._exact is None:
+            self._exact = all(np.array_equal(self._ink(self._raster(t)[0]),
+                                             self._ink(self._compose(t)[0])) for t in probes)
+        return self._exact
 
     def glyphs(self, text):
         """(glyph alpha (h, w) float32 0-1, its white halo's alpha, layout width px, descent
-        px) of ``text``; the bitmaps have a one-pixel margin."""
+        px) of ``text``; the bitmaps have a one-pixel margin (centred texts: around their
+        ink)."""
         got = self.cache.get(text)
         if got is None:
-            font = self.font            # shared with matplotlib: set the size every time
-            font.set_size(self.size, self.dpi)
-            font.set_text(text, 0.0)
-            width, descent = font.get_width_height()[0] / 64.0, font.get_descent() / 64.0
-            font.draw_glyphs_to_bitmap(antialiased=True)
-            glyph = np.pad(np.asarray(font.get_image(), dtype=np.float32) / 255.0, 1)
+            if self.keep and set(text) <= self.NUMBER_CHARS and self.composes_exactly():
+                image, width, descent = self._compose(text)
+            else:
+                image, width, descent = self._raster(text)
+            # texts stamped centred (cached ones) are centred on their ink, whichever way
+            # they were made
+            image = self._ink(image) if self.keep else np.pad(image, 1)
+            glyph = image.astype(np.float32) / 255.0
             # a white halo one pixel wide keeps the text legible on dark and light map
             # colours: the glyphs grown by one pixel (the largest of each 3 x 3 block)
             h, w = glyph.shape
@@ -1481,18 +1574,41 @@ def render_wafer_png(path, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclu
 _CANVAS = {}
 
 
+def map_canvas(diameter_mm, edge_exclusion_mm, cmap="viridis", figsize_in=(6.4, 5.6),
+               dpi=100):
+    """This process's `MapCanvas` for map PNGs of this geometry (made and kept on first use).
+
+    Called before the map workers are forked (while the fitting workers still work), it
+    spares each worker making and drawing its figure: they inherit it.
+
+    Parameters
+    ----------
+    diameter_mm, edge_exclusion_mm : float
+        Wafer diameter and edge exclusion in mm.
+    cmap, figsize_in, dpi
+        As for `wafer_map_figure`.
+
+    Returns
+    -------
+    MapCanvas
+    """
+    key = (float(diameter_mm), float(edge_exclusion_mm), cmap, tuple(figsize_in), float(dpi))
+    canvas = _CANVAS.get(key)
+    if canvas is None:
+        _CANVAS.clear()                       # one geometry at a time: bounded memory
+        canvas = _CANVAS[key] = MapCanvas(diameter_mm, edge_exclusion_mm, cmap, figsize_in,
+                                          dpi, stamp_labels=True)
+        canvas.prepare()
+    return canvas
+
+
 def _render_task(task):
     """Render one map PNG, reusing this process's `MapCanvas` of the same geometry."""
     path, args, kwargs = task
     t, ok, x, y, d, ee = args
     kw = dict(kwargs)
-    cmap = kw.pop("cmap", "viridis")
-    figsize_in, dpi = tuple(kw.pop("figsize_in", (6.4, 5.6))), float(kw.pop("dpi", 100))
-    key = (float(d), float(ee), cmap, figsize_in, dpi)
-    canvas = _CANVAS.get(key)
-    if canvas is None:
-        _CANVAS.clear()                       # one geometry at a time: bounded memory
-        canvas = _CANVAS[key] = MapCanvas(d, ee, cmap, figsize_in, dpi, stamp_labels=True)
+    canvas = map_canvas(d, ee, kw.pop("cmap", "viridis"), tuple(kw.pop("figsize_in", (6.4, 5.6))),
+                        float(kw.pop("dpi", 100)))
     prepared = _prepare_map(t, ok, x, y, d, ee, **kw)
     canvas.draw(*prepared)
     return str(write_bytes_atomic(canvas.png(), path))
