@@ -522,8 +522,13 @@ class _CourierText(Text):
     DejaVu Sans Mono, so the columns stay where they were."""
 
     def draw(self, renderer):
-        with mpl.rc_context({"pdf.use14corefonts": True}):
+        # set and reset the one setting (an rc_context copies all of them, twice a line)
+        before = mpl.rcParams["pdf.use14corefonts"]
+        mpl.rcParams["pdf.use14corefonts"] = True
+        try:
             super().draw(renderer)
+        finally:
+            mpl.rcParams["pdf.use14corefonts"] = before
 
 
 def _courier_can_write(text):
