@@ -335,3 +335,16 @@ def test_stamped_numbers_are_freetypes_own_pixels(size_pt):
     for text in [f"{v:.1f}" for v in values] + [f"{v:.0f}" for v in values] + ["\u22120.5"]:
         assert np.array_equal(stamps._ink(stamps._raster(text)[0]),
                               stamps._ink(stamps._compose(text)[0])), text
+
+
+def test_map_pngs_keep_white_white_and_black_black(tmp_path):
+    # the map PNGs take a fixed palette (colour map and greys): the figure's white must stay
+    # white and the text black, not a near grey (Pillow maps through coarse colour steps)
+    from PIL import Image
+
+    t = _lot(2)
+    paths = render_wafer_pngs(tmp_path, t, None, SITES.x_mm, SITES.y_mm, D, EE,
+                              wafer_ids=["A", "B"], workers=1)
+    rgb = np.asarray(Image.open(paths[0]).convert("RGB")).reshape(-1, 3)
+    assert tuple(rgb[0]) == (255, 255, 255)                      # the top-left corner
+    assert np.any(np.all(rgb == 0, axis=1))                      # black text

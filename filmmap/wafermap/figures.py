@@ -1284,16 +1284,22 @@ def encode_png(rgb, compress_level=6, palette=None):
     return buf.getvalue()
 
 
-#: Colours of a map's fixed palette taken along its colour map (`map_palette`); the rest
-#: of the 256 are greys.
-PALETTE_MAP_COLOURS = 160
+#: Greys of a map's fixed palette (`map_palette`): black, white and one grey in each
+#: 8-level step between them. Pillow maps a colour to a palette through a cache of such
+#: steps (5 bits of red and blue): with a single grey in each step, white stays white (with
+#: greys closer together, white came out as 252) and black black.
+PALETTE_GREYS = (0, *range(12, 248, 8), 255)
+
+#: Colours of a map's fixed palette taken along its colour map (the rest of the 256 are
+#: `PALETTE_GREYS`).
+PALETTE_MAP_COLOURS = 256 - len(PALETTE_GREYS)
 
 _PALETTES = {}
 
 
 def map_palette(cmap):
     """The fixed palette of map images: `PALETTE_MAP_COLOURS` colours along ``cmap`` and
-    greys from black to white.
+    the `PALETTE_GREYS` from black to white.
 
     A map figure is made of its colour map's colours (field, colour bar) and greys (texts,
     outline, marks); mapping each pixel to the nearest of these is a quarter of the time
@@ -1314,8 +1320,7 @@ def map_palette(cmap):
 
     if cmap not in _PALETTES:
         along = (_colormap(cmap)(np.linspace(0.0, 1.0, PALETTE_MAP_COLOURS))[:, :3] * 255)
-        greys = np.repeat(np.linspace(0.0, 255.0, 256 - PALETTE_MAP_COLOURS)[:, None], 3,
-                          axis=1)
+        greys = np.repeat(np.asarray(PALETTE_GREYS, dtype=float)[:, None], 3, axis=1)
         image = Image.new("P", (1, 1))
         image.putpalette(np.concatenate([along, greys]).round().astype(np.uint8).ravel()
                          .tolist())
@@ -1362,7 +1367,7 @@ class _TextStamps:
         self.font_path = findfont(FontProperties(family=["sans-serif"], weight=weight))
         self.size, self.dpi, self.keep = float(fontsize_pt), float(dpi), bool(cache)
         self.halo = bool(halo)
-        self.cache, self.chars, self._exact = {}, {}, None
+        self.cache, self.chars, self.words, self._exact = {}, {}, {}, None
         font = self.font
         font.set_size(self.size, self.dpi)
         font.set_text("lp", 0.0)
@@ -1430,6 +1435,49 @@ class _TextStamps:
             np.bitwise_or(region, bitmap[:region.shape[0], :region.shape[1]], out=region)
         return image, pen / 64.0, -y_min / 64.0
 
+    def _word(self, word):
+        """FreeType's image of one word and its metrics (26.6 units), kept per process."""
+        got = self.words.get(word)
+        if got is None:
+            font = self.font
+            font.set_size(self.size, self.dpi)
+            font.set_text(word, 0.0)
+            advance, height = font.get_width_height()
+            descent, x_min = font.get_descent(), font.get_bitmap_offset()[0]
+            font.draw_glyphs_to_bitmap(antialiased=True)
+            if len(self.words) >= self.MAX_CACHED:
+                self.words.clear()
+            got = self.words[word] = (np.asarray(font.get_image(), dtype=np.uint8), advance,
+                                      x_min, height - descent)
+        return got
+
+    def _line(self, text):
+        """(image, advance px, descent px) of a line of words set on one baseline, each word
+        rasterised once per process (the words of titles and captions repeat: "Wafer",
+        "mean", "nm"); within a word FreeType's pixels, words at whole-pixel positions."""
+        space = self._word(" ")[1] if " " in text else 0
+        placed, pen = [], 0
+        for word in text.split(" "):
+            if word:
+                image, advance, x_min, y_max = self._word(word)
+                # FreeType's image: column 0 at x_min, the baseline on row y_max + 1 (px)
+                placed.append((image, (pen + x_min) / 64.0, round(y_max / 64.0) + 1))
+                pen += advance
+            pen += space
+        pen -= space
+        if not placed:
+            return np.zeros((3, 3), np.uint8), 0.0, 1.0
+        x0 = min(x for _, x, _ in placed)
+        base = max(b for _, _, b in placed)
+        below = max(image.shape[0] - b for image, _, b in placed)
+        width = max(int(round(x - x0)) + image.shape[1] for image, x, _ in placed)
+        line = np.zeros((base + below, width), np.uint8)
+        for image, x, b in placed:
+            col, row = int(round(x - x0)), base - b
+            region = line[row:row + image.shape[0], col:col + image.shape[1]]
+            np.bitwise_or(region, image, out=region)
+        return line, pen / 64.0, float(below - 1)
+
     @staticmethod
     def _ink(image):
         """``image`` cut to its ink with one blank pixel around (nothing for no ink)."""
@@ -1455,6 +1503,8 @@ class _TextStamps:
         if got is None:
             if self.keep and set(text) <= self.NUMBER_CHARS and self.composes_exactly():
                 image, width, descent = self._compose(text)
+            elif not self.keep:                 # a title or caption line: by words
+                image, width, descent = self._line(text)
             else:
                 image, width, descent = self._raster(text)
             # texts stamped centred (cached ones) are centred on their ink, whichever way
