@@ -502,8 +502,9 @@ def place_site_labels(anchor_px, size_px, gap_px, centre_px, radius_px, keep_out
     none crosses the wafer outline; labels with no free place are left out.
 
     Greedy, in the order given: each label takes the first free place of above its site,
-    below it, right of it, left of it, then the four diagonal places. A lot's usual maps keep every label; a dense map is
-    thinned to the labels that fit (the values of all sites are in lot.nc and sites.csv).
+    below it, right of it, left of it, then the four diagonal places. A lot's usual maps
+    keep every label; a dense map is thinned to the labels that fit (the values of all
+    sites are in lot.nc and sites.csv).
 
     Parameters
     ----------
@@ -578,7 +579,7 @@ class _Blitter:
         self.fig, self.background = fig, None
 
     def pixels(self, changing, hidden=(), paint=None):
-        """(H, W, 3) uint8 view of the canvas, valid until the next drawing.
+        """(H, W, 4) uint8 RGBA view of the canvas, valid until the next drawing.
 
         Parameters
         ----------
@@ -610,7 +611,7 @@ class _Blitter:
         for artist in changing:
             if artist.get_visible():
                 artist.draw(renderer)
-        return np.asarray(renderer.buffer_rgba())[..., :3]
+        return np.asarray(renderer.buffer_rgba())
 
 
 def _marker_px(style, dpi):
@@ -863,9 +864,9 @@ class MapCanvas:
         if not self.stamp_labels:
             return png_bytes(self.fig)
         changing, hidden = self._layers()
-        rgb = self._blit.pixels(changing, hidden=hidden, paint=self._paint)
-        return encode_png(_stamp_all(rgb, self._stamped), MAP_PNG_COMPRESS_LEVEL,
-                          palette=self.palette)
+        rgba = self._blit.pixels(changing, hidden=hidden, paint=self._paint)
+        _stamp_all(rgba[..., :3], self._stamped)
+        return encode_png(rgba, MAP_PNG_COMPRESS_LEVEL, palette=self.palette)
 
 
 def _tick_texts(ticks, lo, hi):
@@ -1089,8 +1090,8 @@ class _SheetPanel:
 
     def pixels(self, mesh, x, y, t, use, present, failed, norm, colours, bounds, caption,
                out_of_spec):
-        """(H, W, 3) pixels of one wafer's panel (valid until the next call); ``colours``:
-        the band colours of the common scale (`_band_colours`)."""
+        """(H, W, 3) view of one wafer's panel (valid until the next call); ``colours``: the
+        band colours of the common scale (`_band_colours`)."""
         for artist in self._scratch:
             artist.remove()
         self._scratch = []
@@ -1100,8 +1101,8 @@ class _SheetPanel:
             shaded, bands = _shade(self.ax, gx, gy, z, norm, self.cmap, bounds, self.d / 2,
                                    image=self.field, pixels_only=True)
             if bands is not None:
-                extent = self.field.get_extent()
-                paint = lambda buf: _paint_field(buf, self.ax, extent, bands, colours)  # noqa: E731
+                def paint(buf, extent=self.field.get_extent()):
+                    _paint_field(buf, self.ax, extent, bands, colours)
         self.field.set_visible(shaded is self.field)
         if shaded is not None and shaded is not self.field:
             self._scratch.append(shaded)
@@ -1117,7 +1118,7 @@ class _SheetPanel:
         extra = [self.ring] if self.ring is not None else []
         rgb = self._blit.pixels([*self._scratch, self.outline, *extra, self.used,
                                  self.outside, self.failed, self.out_of_spec],
-                                hidden=[self.field], paint=paint)
+                                hidden=[self.field], paint=paint)[..., :3]
         font = self.caption_fonts[bool(out_of_spec)]
         x, bottom = self.caption_at
         lines = caption.split("\n")
@@ -1246,7 +1247,7 @@ def png_bytes(fig, dpi=None):
         fig.set_dpi(dpi)
     canvas = fig.canvas if isinstance(fig.canvas, FigureCanvasAgg) else FigureCanvasAgg(fig)
     canvas.draw()
-    return encode_png(np.asarray(canvas.buffer_rgba())[..., :3].copy())
+    return encode_png(np.asarray(canvas.buffer_rgba()))
 
 
 #: zlib level of the wafer-map PNGs: a third less encoding time than the default 6 for
@@ -1259,11 +1260,12 @@ SHEET_PNG_COMPRESS_LEVEL = 4
 
 
 def encode_png(rgb, compress_level=6, palette=None):
-    """An (H, W, 3) uint8 image as palette PNG bytes (see `png_bytes`).
+    """An (H, W, 3) RGB or (H, W, 4) RGBA uint8 image as palette PNG bytes (`png_bytes`).
 
     Parameters
     ----------
-    rgb : numpy.ndarray, shape (H, W, 3), uint8
+    rgb : numpy.ndarray, shape (H, W, 3) or (H, W, 4), uint8
+        An RGBA canvas buffer is read in place (its alpha is left out).
     compress_level : int
         zlib level 0-9 (Pillow's PNG writer): higher is smaller and slower.
     palette : PIL.Image.Image, optional
@@ -1278,7 +1280,13 @@ def encode_png(rgb, compress_level=6, palette=None):
 
     from PIL import Image
 
-    image = Image.fromarray(rgb, "RGB")
+    if rgb.ndim == 3 and rgb.shape[2] == 4:
+        # read in place and dropped to RGB in C: a fraction of copying a strided RGB view
+        rgba = np.ascontiguousarray(rgb)
+        image = Image.frombuffer("RGBA", (rgba.shape[1], rgba.shape[0]), rgba, "raw", "RGBA",
+                                 0, 1).convert("RGB")
+    else:
+        image = Image.fromarray(rgb, "RGB")
     if palette is None:
         image = image.quantize(PNG_COLOURS, method=Image.Quantize.FASTOCTREE)
     else:
@@ -1341,9 +1349,9 @@ class _TextStamps:
     image, they take a fraction of that: the same glyphs. The values of a lot repeat
     ("591.2" appears on many wafers), so with ``cache`` each distinct text is made once per
     process, and a number from its characters' glyphs (`_compose`: FreeType's pixels,
-    without rasterising each new number). `box_size` gives the box a label needs (the one matplotlib gives the text:
-    its width, and the height of a line with ascenders and descenders), for
-    `place_site_labels`.
+    without rasterising each new number). `box_size` gives the box a label needs (the one
+    matplotlib gives the text: its width, and the height of a line with ascenders and
+    descenders), for `place_site_labels`.
 
     Parameters
     ----------
