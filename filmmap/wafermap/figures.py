@@ -1340,6 +1340,13 @@ def map_palette(cmap):
     return _PALETTES[cmap]
 
 
+def _margin(image):
+    """A 2-D ``image`` with a one-pixel blank margin (np.pad, at a tenth of its cost)."""
+    out = np.zeros((image.shape[0] + 2, image.shape[1] + 2), image.dtype)
+    out[1:-1, 1:-1] = image
+    return out
+
+
 class _TextStamps:
     """Texts stamped into rendered pixels with matplotlib's own FreeType font object.
 
@@ -1496,7 +1503,7 @@ class _TextStamps:
         rows, cols = np.flatnonzero(image.any(axis=1)), np.flatnonzero(image.any(axis=0))
         if not rows.size:
             return np.zeros((2, 2), image.dtype)
-        return np.pad(image[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1], 1)
+        return _margin(image[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1])
 
     def composes_exactly(self, probes=("0123456789", "-1.5", "\u22120.25", "1000.0", "98.7",
                                         "+7")):
@@ -1521,12 +1528,12 @@ class _TextStamps:
                 image, width, descent = self._raster(text)
             # texts stamped centred (cached ones) are centred on their ink, whichever way
             # they were made
-            image = self._ink(image) if self.keep else np.pad(image, 1)
+            image = self._ink(image) if self.keep else _margin(image)
             glyph = image.astype(np.float32) / 255.0
             # a white halo one pixel wide keeps the text legible on dark and light map
             # colours: the glyphs grown by one pixel (the largest of each 3 x 3 block)
             h, w = glyph.shape
-            grown = np.pad(glyph, 1)
+            grown = _margin(glyph)
             halo = glyph.copy()
             for dy in range(3):
                 for dx in range(3):
