@@ -6,7 +6,7 @@
    alternated, ``repeats`` runs each, best wall time; ratio printed (issue goal <= 2).
    Also the sizes of report.html and report.pdf.
 2. Growth: the report parts timed in this process (CPU seconds: maps on one process,
-   contact sheet, report.html, report.pdf) for 75 / 150 / 300 / 600 wafers made by
+   the contact sheet as `filmmap reduce` draws it, report.html, report.pdf) for 75 / 150 / 300 / 600 wafers made by
    repeating the wafers of one reduced 75-wafer lot; the exponent of each part between
    successive sizes, log(t2 / t1) / log(n2 / n1) (1 = linear).
 3. Memory: peak resident memory of the largest process of the default `filmmap reduce` at
@@ -88,7 +88,7 @@ def time_parts(ds, n, folder):
     """CPU seconds of maps (1 process), contact sheet, report.html, report.pdf for n wafers."""
     from filmmap.lotstats import lot_view
     from filmmap.report import ReportImages, write_html_report, write_pdf_report
-    from filmmap.wafermap.figures import lot_contact_sheet, save_figure
+    from filmmap.wafermap.figures import contact_sheet_png, write_bytes_atomic
 
     big = repeated(ds, n)
     cfg = config_for(n, f"BENCH-{n}")
@@ -104,12 +104,12 @@ def time_parts(ds, n, folder):
                       slots=[int(s) for s in big["slot"].values], workers=1, lot_id=cfg.lot.id)
     out["maps"] = cpu() - c0
     c0 = cpu()
-    fig = lot_contact_sheet(big["thickness"].values, big["fit_ok"].values, big["x_mm"].values,
+    png = contact_sheet_png(big["thickness"].values, big["fit_ok"].values, big["x_mm"].values,
                             big["y_mm"].values, 150.0, 4.0,
                             wafer_ids=[str(w) for w in big["wafer"].values],
                             slots=[int(s) for s in big["slot"].values], lot_id=cfg.lot.id)
-    save_figure(fig, folder / "contact_sheet.png")
-    del fig
+    write_bytes_atomic(png, folder / "contact_sheet.png")
+    del png
     out["contact sheet"] = cpu() - c0
     images = ReportImages(view, big, folder, render_missing=False)
     c0 = cpu()
@@ -148,6 +148,7 @@ def main(argv=None):
 
         # 2. growth of each part
         ds = xr.load_dataset(tmp / "full" / "lot.nc")
+        ds["fit_ok"] = ds["fit_ok"].astype(bool)   # int8 0/1 in lot.nc (CF flags)
         small = ds.isel(wafer=slice(0, 75))
         rows = {}
         for n in SIZES:

@@ -39,3 +39,34 @@ def end_with_parent(poll_s=PARENT_POLL_S):
     """
     threading.Thread(target=_watch_parent, args=(os.getppid(), poll_s),
                      name="filmmap-parent-watch", daemon=True).start()
+
+
+BACKGROUND_NICE = 5
+"""How much lower the scheduling priority of background work is (``os.nice``): when the
+cores are short, the process whose work everything waits for runs first (common practice,
+no source)."""
+
+_lowered = False
+
+
+def lower_priority(nice=BACKGROUND_NICE):
+    """Lower this process's scheduling priority once (later calls do nothing).
+
+    Called by a worker when it starts work whose results are needed only at the end (the
+    wafer maps) while other processes do the work the caller waits for (the reports, the
+    contact sheet they show).
+
+    Parameters
+    ----------
+    nice : int
+        Added to the process's niceness (``os.nice``; where the platform has none, or it is
+        not allowed, ignored).
+    """
+    global _lowered
+    if _lowered:
+        return
+    _lowered = True
+    try:
+        os.nice(int(nice))
+    except (AttributeError, OSError):
+        pass    # no nice on this platform, or not allowed: the same priority then

@@ -5,7 +5,6 @@ product wafer mean is outside target ± tolerance; held for review when the lot 
 judged whole; otherwise in spec (release). See `filmmap.report.decision`.
 """
 
-import numpy as np
 import pytest
 
 from filmmap.report.decision import (IN_SPEC, OUT_OF_SPEC, REVIEW, REVIEW_SITE_FRACTION,

@@ -140,3 +140,118 @@ def test_evidence_pdf_holds_every_bad_site(lot, tmp_path):
     import re
     pages = len(re.findall(rb"/Type\s*/Page(?!s)", data))    # ISO 32000-1, 7.7.3.3
     assert pages == -(-len(sites) // PER_PAGE)
+
+
+# ------------------------------------------------- evidence without --keep-spectra
+
+def test_evidence_rows_take_each_cause_in_turn_then_suspects_then_worst_accepted():
+    from filmmap.fitting.evidence import evidence_rows
+
+    rng = np.random.default_rng(3)
+    n = 400
+    ok = np.ones(n, bool)
+    note = np.full(n, "", dtype=object)
+    quality = rng.uniform(0.5, 1.5, n)
+    causes = {"wrong stack": np.arange(0, 30), "no film signal": np.arange(30, 50),
+              "ambiguous": np.arange(50, 53)}
+    for cause, rows in causes.items():
+        ok[rows] = False
+        note[rows] = [f"{cause}: invented {k}" for k in rows]
+        quality[rows] = rng.uniform(20, 90, rows.size)
+    suspect = np.zeros(n, bool)
+    suspect[[100, 101]] = True
+    quality[[100, 101]] = [15.0, 12.0]
+    rows = evidence_rows(ok, suspect, note, quality, limit=12, n_worst_accepted=3)
+    assert len(rows) == len(set(rows.tolist())) == 15
+    # causes with more sites first, each worst first, then the suspect sites, in turn
+    first_round = rows[:4]
+    assert [note[k].split(":")[0] for k in first_round[:3]] == list(causes)
+    assert first_round[3] == 100                      # the worse suspect site
+    for cause, members in causes.items():
+        taken = [k for k in rows if k in members]
+        assert taken == sorted(members, key=lambda k: -quality[k])[:len(taken)]
+    good = np.flatnonzero(ok & ~suspect)
+    assert list(rows[-3:]) == list(good[np.argsort(-quality[good])][:3])
+
+
+def test_batches_keep_the_spectra_the_lot_chooses():
+    # the lot's evidence is chosen after its batches are fitted (suspect flags need the
+    # lot's median): what each batch keeps must hold the lot's choice
+    from filmmap.fitting.evidence import batch_evidence_rows, evidence_rows
+    from filmmap.fitting.suspect import flag_suspects
+
+    rng = np.random.default_rng(11)
+    n = 3 * 49 * 50
+    ok = rng.uniform(size=n) > 0.02
+    causes = np.array(["wrong stack", "no film signal", "ambiguous", "did not converge"])
+    note = np.where(ok, "", np.char.add(rng.choice(causes, n), ": invented"))
+    quality = np.where(ok, rng.lognormal(0.0, 0.4, n), rng.uniform(5, 500, n))
+    quality[rng.choice(np.flatnonzero(ok), 30, replace=False)] = 40.0 + np.arange(30)
+    suspect, _ = flag_suspects(quality, ok)
+    assert suspect.sum() == 30
+    batches = np.array_split(np.arange(n), 3)
+    kept = np.concatenate([b[batch_evidence_rows(ok[b], note[b], quality[b])] for b in batches])
+    chosen = evidence_rows(ok, suspect, note, quality)
+    assert set(chosen.tolist()) <= set(kept.tolist())
+    assert len(kept) < n / 10                          # a few, never every spectrum
+
+
+def _lot_on_disk(folder, n_wafers=3):
+    """An invented lot (CSV spectra of 1 um oxide on Si): wafer 0 site 5 flat near zero
+    (the probe off the wafer), wafer 1 site 9 with its fringes halved (a particle)."""
+    from filmmap.optics import Layer, Stack
+    from filmmap.wafermap.sites import polar_sites
+
+    wl = np.arange(400.0, 1000.5, 2.0)
+    stack = Stack("Si", [Layer("SiO2", 1000.0)])
+    pat = polar_sites(49, 150.0, 4.0)
+    rng = np.random.default_rng(5)
+    header = ",".join(["wafer", "slot", "site", "x_mm", "y_mm"] + [f"R@{w:g}" for w in wl])
+    folder.mkdir(parents=True)
+    for i in range(n_wafers):
+        d = rng.uniform(980, 1020, 49)
+        R = stack.reflectance(wl, thickness_nm=[d[:, None]])
+        R = R * (1 + 0.003 * rng.standard_normal(R.shape))
+        if i == 0:
+            R[5] = 0.002 + 0.0005 * rng.standard_normal(wl.size)
+        if i == 1:
+            R[9] = R[9].mean() + 0.5 * (R[9] - R[9].mean())
+        rows = [f"W{i},{i + 1},{pat.site[k]},{pat.x_mm[k]:.2f},{pat.y_mm[k]:.2f},"
+                + ",".join(f"{v:.5f}" for v in R[k]) for k in range(49)]
+        (folder / f"W{i}.csv").write_text(header + "\n" + "\n".join(rows) + "\n")
+    (folder / "lot.toml").write_text('[lot]\nid = "EVID-1"\n[measurement]\n'
+                                     'technique = "reflectance"\nfiles = ["*.csv"]\n'
+                                     '[stack]\nsubstrate = "Si"\n[[stack.layer]]\n'
+                                     'material = "SiO2"\nsearch_nm = [5, 3000]\n'
+                                     f'[boat]\nslots = {n_wafers}\n')
+    return folder / "lot.toml"
+
+
+def test_overlays_are_drawn_without_keep_spectra(tmp_path):
+    # issue 14 item 3: the evidence works without --keep-spectra; only the evidence
+    # sites' spectra are kept, not the lot's
+    from filmmap.fitting.evidence import EVIDENCE_SITES, N_WORST_ACCEPTED
+    from filmmap.pipeline import reduce_to_folder
+    from filmmap.wafermap.sites import polar_sites
+
+    lot = _lot_on_disk(tmp_path / "lot")
+    reduction, _, _ = reduce_to_folder(lot, tmp_path / "out", workers=1, figures=False,
+                                       keep_spectra=False)
+    out = tmp_path / "out"
+    assert not (out / "spectra.nc").exists()
+    assert reduction.sites.measured_spectra is None
+    ev = reduction.evidence
+    assert 0 < len(ev.rows) <= EVIDENCE_SITES + N_WORST_ACCEPTED
+    s = reduction.sites
+    bad = np.flatnonzero(~s.ok | s.suspect)
+    flat_site = int(polar_sites(49, 150.0, 4.0).site[5])
+    flat = int(np.flatnonzero((s.wafer == "W0") & (s.site == flat_site))[0])
+    assert flat in bad                                 # the probe-off site did not fit
+    assert set(bad.tolist()) <= set(ev.rows.tolist())  # every bad site's spectra kept
+    # the kept measured spectrum is the file's flat one
+    assert np.all(ev.measured[list(ev.rows).index(flat)] < 0.01)
+    html = (out / "report.html").read_text(encoding="utf-8")
+    section = html[html.index('id="evidence"'):]
+    section = section[:section.index("</section>")]
+    assert "evidence-spectra" in section and "--keep-spectra" not in section
+    assert "flat measured spectrum" in section

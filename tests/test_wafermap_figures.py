@@ -33,6 +33,12 @@ def _cmaps(fig):
     return names
 
 
+def _maps(ax):
+    """The colour-mapped artists of an axes (map images, or filled contours and scatters)."""
+    return [c for c in list(ax.collections) + list(ax.images)
+            if hasattr(c, "norm") and c.get_array() is not None]
+
+
 def test_single_wafer_png(tmp_path):
     # common practice, no source: a readable PNG of figsize * dpi pixels
     t = _lot(1)[0]
@@ -84,7 +90,7 @@ def test_contact_sheet_common_scale(tmp_path):
     # every wafer on one axes (one axes per wafer costs more than the wafer): 5 maps, 5 labels
     panels = [ax for ax in fig.axes if ax not in bars]
     assert len(panels) == 1
-    maps = [c for c in panels[0].collections if hasattr(c, "norm") and c.get_array() is not None]
+    maps = _maps(panels[0])
     assert len(maps) == 5
     assert sorted(t.get_text().split(" ")[0] for t in panels[0].texts) == [f"W{i}" for i in range(5)]
     limits = {(round(c.norm.vmin, 9), round(c.norm.vmax, 9)) for c in maps}
@@ -212,8 +218,7 @@ def test_contact_sheet_with_uneven_layouts_draws_every_wafer():
     # wafer C is drawn at its own coordinates
     assert (round(0.9 * x[30], 6), round(0.9 * y[30], 6)) in points_of("C")
     # one common scale: every wafer's map has the same colour limits
-    lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6)) for c in sheet.collections
-            if hasattr(c, "norm") and c.get_array() is not None}
+    lims = {(round(c.norm.vmin, 6), round(c.norm.vmax, 6)) for c in _maps(sheet)}
     assert len(lims) == 1
 
 
@@ -241,5 +246,145 @@ def test_contact_sheet_png_matches_the_figure_layout_and_bounds_its_pixels():
     assert np.min(np.abs(rgb - yellow).sum(axis=1)) < 40
     small = Image.open(io.BytesIO(contact_sheet_png(np.tile(t, (8, 1)), None, SITES.x_mm,
                                                     SITES.y_mm, D, EE, max_pixels=2e5)))
-    # cells rounded to whole pixels may overshoot the budget a little (measured 0.1 %)
+    # cells rounded to whole pixels may overshoot the budget a little
     assert small.size[0] * small.size[1] <= 2e5 * 1.02
+
+
+def _boxes_overlap(a, b):
+    """Whether boxes (x0, y0, x1, y1) overlap (touching is not)."""
+    return a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3]
+
+
+def _dense_layout(n=300, d=150.0, seed=2):
+    """``n`` sites spread at random over a wafer: far denser than the labels can all fit."""
+    rng = np.random.default_rng(seed)
+    r = 0.47 * d * np.sqrt(rng.uniform(size=n))
+    a = rng.uniform(0, 2 * np.pi, n)
+    return r * np.cos(a), r * np.sin(a)
+
+
+@pytest.mark.parametrize("layout", ["dense", "49 sites"])
+def test_site_labels_never_overlap_each_other_nor_cross_the_outline(layout):
+    # the drawn texts' own bounding boxes (matplotlib's extents at draw time) must not
+    # intersect one another, and must lie inside the wafer outline (common practice)
+    if layout == "dense":
+        x, y = _dense_layout()
+        d, ee = 150.0, 3.0
+    else:
+        x, y, d, ee = SITES.x_mm, SITES.y_mm, D, EE
+    t = 1000 + 0.05 * x + np.random.default_rng(0).normal(0, 2, x.size)
+    fig = wafer_map_figure(t, None, x, y, d, ee, wafer_id="W1", lot_id="L")
+    fig.canvas.draw()
+    renderer = fig.canvas.get_renderer()
+    ax = fig.axes[0]
+    labels = [tx for tx in ax.texts if tx.get_visible() and tx.get_text().replace(".", "", 1)
+              .isdigit()]
+    boxes = [tx.get_window_extent(renderer).extents for tx in labels]
+    assert all(not _boxes_overlap(a, b) for i, a in enumerate(boxes) for b in boxes[i + 1:])
+    cx, cy = ax.transData.transform((0.0, 0.0))
+    radius = ax.transData.transform((d / 2, 0.0))[0] - cx
+    corners = np.array([(b[i], b[j]) for b in boxes for i in (0, 2) for j in (1, 3)])
+    assert np.all(np.hypot(corners[:, 0] - cx, corners[:, 1] - cy) <= radius)
+    if layout == "dense":
+        assert 0.2 * x.size < len(labels) < x.size     # thinned, not emptied
+    else:
+        assert len(labels) == x.size                     # a usual map keeps every value
+
+
+def test_stamped_site_labels_do_not_overlap_and_keep_clear_of_site_marks():
+    # the PNG path stamps the labels into the pixels: its boxes follow the same rule, and
+    # no label covers a site's mark
+    from filmmap.wafermap.figures import MapCanvas, _prepare_map
+
+    x, y = _dense_layout(200)
+    t = 1000 + 0.05 * x
+    canvas = MapCanvas(150.0, 3.0, stamp_labels=True)
+    prepared = _prepare_map(t, None, x, y, 150.0, 3.0, wafer_id="W1")
+    canvas.draw(*prepared)
+    boxes = canvas.label_boxes
+    assert 20 < len(boxes) < x.size
+    assert all(not _boxes_overlap(a, b) for i, a in enumerate(boxes) for b in boxes[i + 1:])
+    sites_px = canvas.ax.transData.transform(np.column_stack([x, y]))
+    inside = [(b[0] < px < b[2]) and (b[1] < py < b[3]) for b in boxes for px, py in sites_px]
+    assert not any(inside)
+    png = canvas.png()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_place_site_labels_tries_the_other_sides_before_leaving_a_label_out():
+    from filmmap.wafermap.figures import place_site_labels
+
+    # two sites 10 px apart side by side, labels 30 x 10 px: the first label goes above
+    # its site, the second cannot (it would overlap the first) and goes below its own
+    boxes = place_site_labels([(100, 100), (110, 100)], [(30, 10), (30, 10)], 2.0,
+                              (100, 100), 80.0)
+    assert np.all(np.isfinite(boxes))
+    assert not _boxes_overlap(boxes[0], boxes[1])
+    assert boxes[0][1] == 102 and boxes[1][3] == 98
+    # no room anywhere (a site at the outline, a label wider than the wafer): left out
+    out = place_site_labels([(100, 100)], [(200, 10)], 2.0, (100, 100), 50.0)
+    assert np.all(np.isnan(out))
+
+
+@pytest.mark.parametrize("size_pt", [6.0, 7.0])
+def test_stamped_numbers_are_freetypes_own_pixels(size_pt):
+    # the site values and ticks are put together from single glyphs (no rasterising of
+    # each new number); the result must be the pixels FreeType gives the whole string
+    # (matplotlib's own text rendering), number after number
+    from filmmap.wafermap.figures import _TextStamps
+
+    stamps = _TextStamps(size_pt, 100)
+    assert stamps.composes_exactly()
+    values = np.random.default_rng(4).uniform(-60, 2500, 200)
+    for text in [f"{v:.1f}" for v in values] + [f"{v:.0f}" for v in values] + ["\u22120.5"]:
+        assert np.array_equal(stamps._ink(stamps._raster(text)[0]),
+                              stamps._ink(stamps._compose(text)[0])), text
+
+
+def test_map_pngs_keep_white_white_and_black_black(tmp_path):
+    # the map PNGs take a fixed palette (colour map and greys): the figure's white must stay
+    # white and the text black, not a near grey (Pillow maps through coarse colour steps)
+    from PIL import Image
+
+    t = _lot(2)
+    paths = render_wafer_pngs(tmp_path, t, None, SITES.x_mm, SITES.y_mm, D, EE,
+                              wafer_ids=["A", "B"], workers=1)
+    rgb = np.asarray(Image.open(paths[0]).convert("RGB")).reshape(-1, 3)
+    assert tuple(rgb[0]) == (255, 255, 255)                      # the top-left corner
+    assert np.any(np.all(rgb == 0, axis=1))                      # black text
+
+
+_FORK_STAMPS = _FORK_TEXTS = _FORK_EXPECTED = None
+
+
+def _rasterise_all(_):
+    """In a forked worker: how many of the texts come out other than the parent's pixels."""
+    wrong = 0
+    for _repeat in range(3):
+        for text, expected in zip(_FORK_TEXTS, _FORK_EXPECTED):
+            try:
+                wrong += not np.array_equal(_FORK_STAMPS._raster(text)[0], expected)
+            except RuntimeError:        # FreeType: "failed to load glyph"
+                wrong += 1
+    return wrong
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork()")
+def test_forked_map_workers_rasterise_text_as_the_parent_does():
+    # A FreeType font object opened before a fork shares its file position with every
+    # forked process; two of them loading glyphs at once read each other's bytes (matplotlib
+    # issue #13723, fixed there for its own font cache by PR #14535). filmmap's stamps once
+    # kept such an object and CI failed with "failed to load glyph". Measured with an
+    # inherited font object forced on the stamps: 83 to 701 of each worker's 1500
+    # rasterisations wrong; fetched per process (as now): none.
+    import multiprocessing as mp
+
+    from filmmap.wafermap.figures import _TextStamps
+
+    global _FORK_STAMPS, _FORK_TEXTS, _FORK_EXPECTED
+    _FORK_STAMPS = _TextStamps(7.0, 100, cache=False)
+    values = np.random.default_rng(5).uniform(-60, 2500, 400)
+    _FORK_TEXTS = [f"{v:.1f}" for v in values] + [f"Wafer W{i} lot DEMO" for i in range(100)]
+    _FORK_EXPECTED = [_FORK_STAMPS._raster(t)[0] for t in _FORK_TEXTS]
+    with mp.get_context("fork").Pool(2) as pool:
+        assert pool.map(_rasterise_all, range(4)) == [0, 0, 0, 0]

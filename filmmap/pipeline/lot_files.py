@@ -42,7 +42,7 @@ def wafer_roles(config, wafer_ids, wafer_slots):
     return dict(zip(wafer_ids, roles.tolist()))
 
 
-def write_lot(reduction, outdir, keep_spectra=False):
+def write_lot(reduction, outdir, keep_spectra=False, dataset_ready=None):
     """Write lot.nc (and spectra.nc) for a reduced lot; summary files come from the lot view.
 
     Parameters
@@ -52,6 +52,9 @@ def write_lot(reduction, outdir, keep_spectra=False):
         Output folder, created if missing. Every file is written atomically.
     keep_spectra : bool
         Also write spectra.nc with measured and model spectra and residuals.
+    dataset_ready : callable(xarray.Dataset), optional
+        Called with the lot dataset before the files are written (work that needs only
+        the dataset, such as the wafer maps, starts then).
 
     Returns
     -------
@@ -65,6 +68,8 @@ def write_lot(reduction, outdir, keep_spectra=False):
     ds = lot_dataset(reduction, roles)
     m = reduction.config.measurement
     ds = add_wafer_statistics(ds, m.wafer_diameter_mm, m.edge_exclusion_mm)
+    if dataset_ready is not None:
+        dataset_ready(ds)
     written = WrittenLot(outdir=outdir)
     written.files["lot.nc"] = write_netcdf_atomic(ds, outdir / "lot.nc")
     written.files["sites.csv"] = write_sites_csv(ds, outdir / "sites.csv")

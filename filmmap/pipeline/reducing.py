@@ -9,7 +9,6 @@ results are kept, so memory stays bounded by the batch, not the lot. With
 
 from __future__ import annotations
 
-import os
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field, replace
 
@@ -20,6 +19,7 @@ from filmmap.errors import FilmmapInputError
 from filmmap.fitting import fit_spectra, free_parameters
 from filmmap.fitting.convention import REVERSED_DELTA_HINT, ConventionCheck, \
     check_delta_convention
+from filmmap.fitting.evidence import batch_evidence_rows, evidence_rows
 from filmmap.fitting.suspect import flag_suspects
 from filmmap.fitting.systematics import SPECTROSCOPIC_MIN_WAVELENGTHS, Systematics, lot_tension
 from filmmap.materials import ScaledIndex
@@ -64,6 +64,25 @@ class SiteResults:
 
 
 @dataclass
+class EvidenceSpectra:
+    """Measured and model spectra of the few sites a report shows as evidence (kept with or
+    without ``keep_spectra``; `filmmap.fitting.evidence.evidence_rows`).
+
+    Attributes
+    ----------
+    rows : numpy.ndarray of int, shape (k,)
+        Rows of `SiteResults`.
+    measured, model : numpy.ndarray, shape (k, n_points)
+        As `SiteResults.measured_spectra` and ``model_spectra`` (model at the unchecked
+        best fit).
+    """
+
+    rows: np.ndarray
+    measured: np.ndarray
+    model: np.ndarray
+
+
+@dataclass
 class LotReduction:
     """What `reduce_lot` produced."""
 
@@ -75,6 +94,7 @@ class LotReduction:
     wavelength_nm: np.ndarray | None = None
     warnings: list = field(default_factory=list)
     free: list = field(default_factory=list)
+    evidence: EvidenceSpectra | None = None
 
 
 def build_stack(config):
@@ -161,7 +181,8 @@ class BatchFit:
     """The fits of one batch of files, as `_fit_batch` sends them back (picklable).
 
     Per-site arrays (one row per spectrum of the batch, in file order) are those of
-    `filmmap.fitting.FitResult`; ``model`` and ``measured`` only with ``keep_spectra``.
+    `filmmap.fitting.FitResult`; ``model`` and ``measured`` hold the spectra of the rows ``spectra_rows``: all
+    rows with ``keep_spectra``, else the candidate evidence sites.
     """
 
     values: np.ndarray
@@ -179,6 +200,21 @@ class BatchFit:
     convention: object = None
     model: np.ndarray | None = None
     measured: np.ndarray | None = None
+    spectra_rows: np.ndarray | None = None
+
+
+def _batch_spectra(stack, wl, angle, technique, free, res, data, keep_spectra):
+    """Measured and model spectra a batch sends back: all of them with ``keep_spectra``,
+    else only those of the sites that may be the lot's evidence."""
+    from filmmap.fitting import SpectralModel
+
+    rows = slice(None) if keep_spectra else batch_evidence_rows(res.ok, res.reason,
+                                                                res.reduced_chi2)
+    model = SpectralModel(stack, wl, angle, technique, free)
+    P = np.where(np.isfinite(res.unchecked_values), res.unchecked_values, 0.0)[rows]
+    measured = data if technique == "reflectance" else np.concatenate(data, axis=1)
+    return dict(model=model.evaluate(P), measured=measured[rows],
+                spectra_rows=np.arange(len(res.ok))[rows])
 
 
 def _free_for(free, technique, n_wavelengths, shift_explicit):
@@ -232,18 +268,12 @@ def _fit_batch(task):
             lambda ps, de: fit_spectra(stack, wl, (ps, de), technique, angle, free=free,
                                        workers=1), data[0], data[1])
     names = res.names
-    spectra = {}
-    if keep_spectra:
-        from filmmap.fitting import SpectralModel
-        model = SpectralModel(stack, wl, angle, technique, free)
-        P = np.where(np.isfinite(res.unchecked_values), res.unchecked_values, 0.0)
-        spectra["model"] = model.evaluate(P)
-        spectra["measured"] = data if technique == "reflectance" else np.concatenate(data, axis=1)
     out = BatchFit(values=res.values, sigma=res.sigma, sigma_stat=res.sigma_stat,
                    correlation=res.correlation, unchecked=res.unchecked_values,
                    reduced_chi2=res.reduced_chi2, rms_residual=res.rms_residual,
                    iterations=res.iterations, ok=res.ok, note=res.reason, names=names,
-                   wavelength_nm=wl, convention=convention, **spectra)
+                   wavelength_nm=wl, convention=convention, **_batch_spectra(
+                       stack, wl, angle, technique, free, res, data, keep_spectra))
     # the tables travel back without their spectra: only the row metadata is needed
     return out, [replace(t, data={}) for t in tables]
 
@@ -329,6 +359,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
                         f"{convention.accepted_as_given} as given)")
         for k in np.nonzero(~ok)[0]:
             note[k] = f"{REVERSED_DELTA_HINT}; as given: {note[k]}"
+    evidence = _lot_evidence(results, ok, suspect, note, cat("reduced_chi2"))
     sites = SiteResults(
         wafer=mcat("wafer").astype(str), slot=mcat("slot"), site=mcat("site"),
         x_mm=mcat("x_mm"), y_mm=mcat("y_mm"), values=cat("values"), sigma=cat("sigma"),
@@ -344,9 +375,20 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
         (str(s.path), s.sha256) for s in extra_inputs] + map_inputs
     return LotReduction(config=config, stack=stack, sites=sites, inputs=inputs,
                         wavelength_nm=results[0].wavelength_nm, warnings=warnings,
-                        free=lot_free)
+                        free=lot_free, evidence=evidence)
 
 
-def default_workers():
-    """Worker processes by default: 1 (the fitter already uses both cores by threads)."""
-    return 1 if (os.cpu_count() or 1) <= 2 else 2
+def _lot_evidence(results, ok, suspect, note, quality):
+    """The lot's evidence spectra from those its batches kept (`EvidenceSpectra`)."""
+    offsets = np.cumsum([0] + [len(r.ok) for r in results[:-1]])
+    where = {int(k) + int(o): (b, i) for b, (r, o) in enumerate(zip(results, offsets))
+             for i, k in enumerate(r.spectra_rows)}
+    rows = np.array([k for k in evidence_rows(ok, suspect, note, quality) if k in where],
+                    dtype=np.intp)
+    width = results[0].measured.shape[1]
+
+    def gather(key):    # a few rows, never a copy of every kept spectrum
+        return np.array([getattr(results[b], key)[i] for b, i in map(where.get, rows.tolist())],
+                        dtype=float).reshape(len(rows), width)
+
+    return EvidenceSpectra(rows, gather("measured"), gather("model"))

@@ -140,9 +140,18 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
     if workers < 1:
         raise FilmmapInputError(f"--workers must be >= 1, got {workers}", field="--workers")
     bar = _bar(progress, n_files, "fitting")
+
+    def batch_fitted(n):
+        if bar is not None:
+            bar.update(n)
+        if (figures or report) and workers > 1:
+            # the figure and report modules (matplotlib, about 0.4 s) are imported, and the
+            # map figure made, while the fitting workers still work, not after them
+            _prepare_figures(config, figures)
+
     try:
         reduction = reduce_lot(lotfile, workers=workers, keep_spectra=keep_spectra, config=config,
-                               progress=(bar.update if bar is not None else None))
+                               progress=batch_fitted)
     finally:
         if bar is not None:
             bar.close()
@@ -154,39 +163,64 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
                                                         keep_spectra))
     fault_point("before-staging")
     # every output goes to a staging folder that replaces OUTDIR only once complete
-    with late_write_errors(outdir), staged_output(outdir) as stage:
-        written = write_lot(reduction, stage, keep_spectra=keep_spectra)
+    with late_write_errors(outdir), staged_output(outdir) as stage, \
+            contextlib.ExitStack() as figure_work:
+        maps, figure_notes, views = [], [], []
+
+        def start_maps(ds):
+            # the workers start drawing the contact sheet and the maps as soon as the lot
+            # dataset exists, while lot.nc, the summaries and the reports are written
+            from filmmap.pipeline.figures import FigureWork
+
+            views.append(lot_view(ds, reduction.config, min_sites=MIN_SITES_FOR_LOT))
+            maps.append(figure_work.enter_context(FigureWork(
+                ds, reduction.config, stage, workers=figure_workers or max(2, workers),
+                out_of_spec=views[0].wtw.out_of_spec_ids if views[0].target_nm is not None
+                else (), progress=lambda n: _bar(progress, n, "maps"), notes=figure_notes)))
+
+        written = write_lot(reduction, stage, keep_spectra=keep_spectra,
+                            dataset_ready=start_maps if figures else None)
         fault_point("mid-staging")
+        for work in maps:
+            work.pump()
         advice = write_advice(reduction.config, written, stage, rate_factors,
                               **(advice_options or {}))
         if advice is not None:
             written.files["advice.json"] = stage / "advice.json"
         # the boat-end verdicts follow the advice's one model of the boat when there is one
-        view = with_boat_model(lot_view(written.dataset, reduction.config,
-                                        min_sites=MIN_SITES_FOR_LOT), advice)
+        view = with_boat_model(views[0] if views else lot_view(
+            written.dataset, reduction.config, min_sites=MIN_SITES_FOR_LOT), advice)
         written.files["summary.csv"] = write_summary_csv(view, stage / "summary.csv")
         written.files["summary.json"] = write_summary_json(
             view, stage, created=written.dataset.attrs.get("created"))
         written.advice = advice
         written.view = view
-        if figures:
-            from filmmap.pipeline.figures import write_figures
-
-            written.figure_notes = []
-            written.files.update(write_figures(
-                written.dataset, reduction.config, stage,
-                workers=figure_workers or max(2, workers),
-                out_of_spec=view.wtw.out_of_spec_ids if view.target_nm is not None else (),
-                progress=lambda n: _bar(progress, n, "maps"), notes=written.figure_notes))
         if report:
             from filmmap.report import ReportImages, write_html_report, write_pdf_report
 
+            # the contact sheet comes from the worker drawing it when a report needs it
             images = ReportImages(view, written.dataset, stage, render_missing=False,
                                   no_map_reason=None if figures else
-                                  "maps not drawn (reduce --no-figures)")
-            written.files["report.pdf"] = write_pdf_report(
-                view, written.dataset, stage, images=images, advice=advice,
-                wafer_pages=pdf_wafer_pages, progress=lambda n: _bar(progress, n, "report.pdf"))
+                                  "maps not drawn (reduce --no-figures)",
+                                  spectra=_kept_spectra(reduction),
+                                  contact_sheet=maps[0].contact_sheet if maps else None)
+
+            def write_pdf(between_pages=None):
+                written.files["report.pdf"] = write_pdf_report(
+                    view, written.dataset, stage, images=images, advice=advice,
+                    wafer_pages=pdf_wafer_pages, between_pages=between_pages,
+                    progress=lambda n: _bar(progress, n, "report.pdf"))
+                # and report.html's plots, while the workers still draw
+                images.render_figures(advice, between=between_pages)
+        if figures:
+            written.figure_notes = figure_notes
+            # report.pdf needs the contact sheet and no map (unless it has a page per
+            # wafer): it is written while the worker processes draw the maps
+            written.files.update(maps[0].finish(
+                while_maps=write_pdf if report and not pdf_wafer_pages else None))
+        if report:
+            if "report.pdf" not in written.files:
+                write_pdf()
             written.files["report.html"] = write_html_report(view, written.dataset, stage,
                                                              images=images, advice=advice)
             written.files.update(_write_evidence_pdf(view, written.dataset, images, stage))
@@ -207,15 +241,38 @@ def reduce_to_folder(lotfile, outdir, workers=None, figures=True, keep_spectra=F
 
 
 
+def _prepare_figures(config, figures):
+    """Import what the maps and the reports need, and make this process's map figure (the
+    map workers inherit it); cheap when done already."""
+    from importlib import import_module
+
+    for name in ("filmmap.pipeline.figures", "filmmap.report.html", "filmmap.report.pdf",
+                 "filmmap.report.images", "filmmap.report.evidence", "PIL.PngImagePlugin"):
+        import_module(name)
+    if figures:
+        from filmmap.wafermap.figures import map_canvas
+
+        map_canvas(config.measurement.wafer_diameter_mm, config.measurement.edge_exclusion_mm)
+
+
+def _kept_spectra(reduction):
+    """The evidence spectra the reduction kept, for the report (None without any)."""
+    from filmmap.report.evidence import kept_spectra
+
+    ev, sites = reduction.evidence, reduction.sites
+    if ev is None or not len(ev.rows):
+        return None
+    return kept_spectra(sites.wafer[ev.rows], sites.site[ev.rows], reduction.wavelength_nm,
+                        ev.measured, ev.model)
+
+
 def _write_evidence_pdf(view, ds, images, folder):
-    """evidence.pdf with every failed and suspect site when the report page shows only some."""
-    from filmmap.report.evidence import MAX_ON_PAGE, all_bad_sites, write_evidence_pdf
+    """evidence.pdf with the failed and suspect sites when the report page shows only some."""
+    from filmmap.report.evidence import evidence_pdf_sites, write_evidence_pdf
 
     spectra = images.spectra()
-    if spectra is None:
-        return {}
-    sites = all_bad_sites(view, ds)
-    if len(sites) <= MAX_ON_PAGE:
+    sites, _ = evidence_pdf_sites(view, ds, spectra)
+    if not sites:
         return {}
     return {"evidence.pdf": write_evidence_pdf(sites, spectra, folder / "evidence.pdf",
                                                lot_id=view.lot_id)}

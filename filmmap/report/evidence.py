@@ -9,9 +9,11 @@ kind of failure is seen, at most `MAX_ON_PAGE` on the report page. `evidence_fig
 draws them as small multiples (spectrum above, residual below); `shape_hint` puts the
 overlay into words.
 
-The spectra come from spectra.nc (``reduce --keep-spectra``): measured, model at the
-unchecked best fit, residual, dims (wafer, site, point). Without it the report lists the
-sites and says how to get the overlays.
+The spectra come from spectra.nc (``reduce --keep-spectra``: every site's measured and
+model spectra, model at the unchecked best fit) or, without it, from the few a reduction
+keeps for the evidence (`kept_spectra`; `filmmap.fitting.evidence.evidence_rows`: the
+failed, suspect and worst-fitting sites). Without either the report lists the sites and
+says how to get the overlays.
 """
 
 from __future__ import annotations
@@ -23,6 +25,8 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
+from filmmap.bridge import site_grid
+from filmmap.fitting.evidence import take_in_turn
 from filmmap.lotstats.causes import failure_cause
 from filmmap.report.slotplot import COLOURS
 
@@ -85,9 +89,9 @@ def candidate_sites(view, ds, n_worst_accepted=4):
     -------
     dict {kind: list of EvidenceSite}, each list worst (highest fit quality) first.
     """
-    wafer_index = {str(w): i for i, w in enumerate(ds["wafer"].values)}
-    site_index = {int(s): j for j, s in enumerate(ds["site"].values)}
-    unchecked = ds["thickness_unchecked"].values if "thickness_unchecked" in ds else None
+    grid = site_grid(ds)
+    wafer_index, site_index = grid.wafer_index(), grid.site_index()
+    unchecked = grid.thickness_unchecked_nm
 
     def thick(f):
         if unchecked is None:
@@ -101,21 +105,17 @@ def candidate_sites(view, ds, n_worst_accepted=4):
     for f in view.suspect_sites:
         groups.setdefault("suspect", []).append(EvidenceSite(
             f.wafer, f.slot, f.site, "suspect", "suspect", f.note, f.fit_quality, thick(f)))
-    if n_worst_accepted and "fit_quality" in ds:
-        q = np.asarray(ds["fit_quality"].values, dtype=float)
-        ok = np.asarray(ds["fit_ok"].values, dtype=bool)
-        sus = (np.asarray(ds["suspect"].values) != 0) if "suspect" in ds else np.zeros_like(ok)
-        cand = np.where(ok & ~sus & np.isfinite(q), q, -np.inf)
+    if n_worst_accepted:
+        q = grid.fit_quality            # NaN throughout when the dataset has none
+        cand = np.where(grid.fit_ok & ~grid.suspect & np.isfinite(q), q, -np.inf)
         flat = np.argsort(cand, axis=None)[::-1][:n_worst_accepted]
-        slots = ds["slot"].values
-        notes = ds["fit_note"].values
         for k in flat:
             i, j = np.unravel_index(k, cand.shape)
             if not np.isfinite(cand[i, j]):
                 break
             groups.setdefault(WORST_ACCEPTED, []).append(EvidenceSite(
-                str(ds["wafer"].values[i]), int(slots[i]), int(ds["site"].values[j]),
-                WORST_ACCEPTED, "accepted", str(notes[i, j]), float(q[i, j]),
+                str(grid.wafer[i]), int(grid.slot[i]), int(grid.site[j]),
+                WORST_ACCEPTED, "accepted", str(grid.fit_note[i, j]), float(q[i, j]),
                 float(unchecked[i, j]) if unchecked is not None else math.nan))
     for kind in groups:
         groups[kind].sort(key=lambda s: -s.fit_quality if math.isfinite(s.fit_quality)
@@ -139,12 +139,7 @@ def evidence_sites(view, ds, max_sites=MAX_ON_PAGE):
     kinds = sorted((k for k in groups if k not in ("suspect", WORST_ACCEPTED)),
                    key=lambda k: -len(groups[k]))
     kinds += ["suspect"] if "suspect" in groups else []
-    chosen, depth = [], 0
-    while len(chosen) < max_sites and any(depth < len(groups[k]) for k in kinds):
-        for k in kinds:
-            if depth < len(groups[k]) and len(chosen) < max_sites:
-                chosen.append(groups[k][depth])
-        depth += 1
+    chosen = take_in_turn([groups[k] for k in kinds], max_sites)
     # the worst-fitting accepted sites fill what room is left: what a good fit looks like
     chosen += groups.get(WORST_ACCEPTED, [])[:max(0, max_sites - len(chosen))]
     n_bad = sum(len(v) for k, v in groups.items() if k != WORST_ACCEPTED)
@@ -157,12 +152,79 @@ def all_bad_sites(view, ds):
     return [s for k in groups for s in groups[k]]
 
 
+def evidence_pdf_sites(view, ds, spectra):
+    """The sites of evidence.pdf and a sentence on them for the report, or ([], "").
+
+    evidence.pdf is written when the lot has more failed and suspect sites than the report
+    page shows: all of them with spectra.nc, the ones whose spectra the reduction kept
+    otherwise (`kept_spectra`).
+    """
+    sites = all_bad_sites(view, ds)
+    if spectra is None or len(sites) <= MAX_ON_PAGE:
+        return [], ""
+    if "evidence" not in spectra.dims:
+        return sites, "All failed and suspect sites are drawn in evidence.pdf."
+    kept = [s for s in sites if site_spectra(spectra, s.wafer, s.site) is not None]
+    if len(kept) == len(sites):
+        return kept, "All failed and suspect sites are drawn in evidence.pdf."
+    return kept, (f"evidence.pdf draws {len(kept)} of the {len(sites)} failed and suspect "
+                  "sites (the worst of each cause in turn); reduce --keep-spectra keeps the "
+                  "spectra of every site (spectra.nc) and draws them all.")
+
+
+def kept_spectra(wafer, site, wavelength_nm, measured, model):
+    """The spectra of a few sites as a dataset `site_spectra` reads (dimension ``evidence``).
+
+    What a reduction keeps without --keep-spectra (`filmmap.pipeline.reducing.EvidenceSpectra`):
+    measured and model spectra of the failed, suspect and worst-fitting sites only.
+
+    Parameters
+    ----------
+    wafer, site : array_like, shape (k,)
+        Wafer id and site number of each row.
+    wavelength_nm : array_like, shape (n_wavelengths,)
+        Wavelengths, nm.
+    measured, model : array_like, shape (k, n_points)
+        Reflectance (fraction), or psi then delta (degree): n_points is n_wavelengths or
+        twice that.
+
+    Returns
+    -------
+    xarray.Dataset
+        ``measured`` and ``model`` (evidence, point), coordinates ``wafer`` and ``site``
+        (evidence), ``wavelength_nm`` and ``quantity`` (point), as in spectra.nc.
+    """
+    import xarray as xr
+
+    wl = np.asarray(wavelength_nm, dtype=float)
+    measured = np.asarray(measured, dtype=float).reshape(len(wafer), -1)
+    n = measured.shape[1]
+    quantity = ["R"] * wl.size if n == wl.size else ["psi"] * wl.size + ["delta"] * wl.size
+    return xr.Dataset(
+        {"measured": (("evidence", "point"), measured),
+         "model": (("evidence", "point"), np.asarray(model, dtype=float).reshape(measured.shape))},
+        coords={"wafer": ("evidence", np.asarray(wafer).astype(str)),
+                "site": ("evidence", np.asarray(site)),
+                "wavelength_nm": ("point", np.tile(wl, n // max(wl.size, 1))),
+                "quantity": ("point", np.array(quantity))})
+
+
 def site_spectra(spectra, wafer, site):
-    """(wavelength nm, quantity, measured, model) of one site from spectra.nc, or None."""
-    try:
-        sel = spectra.sel(wafer=wafer, site=site)
-    except (KeyError, ValueError):
-        return None
+    """(wavelength nm, quantity, measured, model) of one site, or None.
+
+    ``spectra``: spectra.nc (dimensions wafer, site, point) or `kept_spectra`.
+    """
+    if "evidence" in spectra.dims:
+        hit = np.flatnonzero((spectra["wafer"].values == str(wafer))
+                             & (spectra["site"].values == site))
+        if not hit.size:
+            return None
+        sel = spectra.isel(evidence=int(hit[0]))
+    else:
+        try:
+            sel = spectra.sel(wafer=wafer, site=site)
+        except (KeyError, ValueError):
+            return None
     meas = np.asarray(sel["measured"].values, dtype=float)
     model = np.asarray(sel["model"].values, dtype=float)
     if not np.any(np.isfinite(meas)):
@@ -266,18 +328,30 @@ def evidence_figure(sites, spectra, *, ncols=3, panel_in=(3.3, 2.8), dpi=100, ti
     n = max(1, len(sites))
     ncols = max(1, min(ncols, n))
     nrows = int(math.ceil(n / ncols))
-    fig = Figure(figsize=(panel_in[0] * ncols, panel_in[1] * nrows + (0.4 if title else 0)),
-                 dpi=dpi, layout="constrained")
+    head = 0.4 if title else 0.0
+    pw, ph = panel_in
+    width, height = pw * ncols, ph * nrows + head
+    fig = Figure(figsize=(width, height), dpi=dpi)
     FigureCanvasAgg(fig)
-    outer = fig.add_gridspec(nrows, ncols)
+    # fixed margins (inches, for the font size): room for the tick labels, the axis labels
+    # and the three-line title; a layout engine finding them costs more than the drawing
+    em = fontsize / 72.0
+    left, right, top, bottom = 6.2 * em, 1.2 * em, 5.2 * em, 4.0 * em
     hints = []
     for k, site in enumerate(sites):
-        inner = outer[k // ncols, k % ncols].subgridspec(2, 1, height_ratios=(2.2, 1), hspace=0)
-        ax = fig.add_subplot(inner[0])
-        rax = fig.add_subplot(inner[1], sharex=ax)
+        row, col = divmod(k, ncols)
+        x0 = col * pw + left
+        w = max(pw - left - right, 0.1)
+        y0 = height - head - (row + 1) * ph + bottom
+        h = max(ph - top - bottom, 0.1)
+        h_resid = h / 3.2                               # spectrum : residual = 2.2 : 1
+        ax = fig.add_axes((x0 / width, (y0 + h_resid) / height, w / width,
+                           (h - h_resid) / height))
+        rax = fig.add_axes((x0 / width, y0 / height, w / width, h_resid / height), sharex=ax)
         hints.append(_panel(ax, rax, site, spectra, fontsize))
     if title:
-        fig.suptitle(title, fontsize=fontsize + 2.5, parse_math=False)
+        fig.suptitle(title, fontsize=fontsize + 2.5, y=1 - 0.08 / height, va="top",
+                     parse_math=False)
     return fig, hints
 
 
@@ -305,5 +379,6 @@ def write_evidence_pdf(sites, spectra, path, *, lot_id=""):
 
 
 __all__ = ["EvidenceSite", "MAX_ON_PAGE", "PER_PAGE", "WORST_ACCEPTED", "all_bad_sites",
-           "candidate_sites", "evidence_figure", "evidence_sites", "shape_hint",
-           "site_spectra", "write_evidence_pdf"]
+           "candidate_sites", "evidence_figure", "evidence_pdf_sites", "evidence_sites",
+           "kept_spectra",
+           "shape_hint", "site_spectra", "write_evidence_pdf"]

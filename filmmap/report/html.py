@@ -243,7 +243,7 @@ def _advice_html(view, advice, images):
 
 def _evidence_html(view, images):
     """Measured vs model spectra of failed, suspect and worst-fitting sites."""
-    from filmmap.report.evidence import MAX_ON_PAGE
+    from filmmap.report.evidence import MAX_ON_PAGE, evidence_pdf_sites
 
     png, sites, hints, n_bad = images.evidence()
     p = ['<section id="evidence"><h2>Evidence: measured against model spectra</h2>']
@@ -259,8 +259,9 @@ def _evidence_html(view, images):
         p.append("<figure>" + _img(png, "Measured and model spectra of failed and suspect "
                                         "sites", "evidence-spectra")
                  + "</figure>")
-        if n_bad > len([s for s in sites if s.verdict != "accepted"]):
-            p.append("<p>All failed and suspect sites are drawn in evidence.pdf.</p>")
+        in_pdf, words = evidence_pdf_sites(view, images.ds, images.spectra())
+        if in_pdf:
+            p.append(f"<p>{e(words)}</p>")
     else:
         p.append('<p class="missing">The spectra were not kept, so no overlay is drawn: '
                  "run reduce again with --keep-spectra (writes spectra.nc) to see the measured "

@@ -10,10 +10,11 @@ why, it never shows a placeholder picture.
 
 from __future__ import annotations
 
-import io
 from pathlib import Path
 
 import numpy as np
+
+from filmmap.bridge import site_grid
 
 from filmmap.report.fitquality import fit_quality_figure
 from filmmap.report.slotplot import slot_profile_figure
@@ -43,11 +44,19 @@ class ReportImages:
     no_map_reason : str, optional
         Why there are no maps (e.g. "maps not drawn (reduce --no-figures)"): then no map
         and no contact sheet is looked for or drawn, and the reports say this reason.
+    spectra : xarray.Dataset, optional
+        The evidence spectra a reduction kept (`filmmap.report.evidence.kept_spectra`),
+        used when the output folder has no spectra.nc.
+    contact_sheet : callable() -> bytes, optional
+        Gives the contact sheet's PNG when it is first needed (another process may still
+        be drawing it); default: contact_sheet.png of the output folder.
     """
 
     def __init__(self, view, ds, outdir=None, *, dpi=100, render_missing=True,
-                 no_map_reason=None):
+                 no_map_reason=None, spectra=None, contact_sheet=None):
         self.view, self.ds, self.dpi = view, ds, float(dpi)
+        self.kept_spectra = spectra
+        self.sheet_source = contact_sheet
         self.outdir = None if outdir is None else Path(outdir)
         self.render_missing = bool(render_missing)
         self.no_map_reason = no_map_reason
@@ -78,11 +87,12 @@ class ReportImages:
             advice_profile_figure(self.view, advice, dpi=self.dpi)))
 
     def spectra(self):
-        """spectra.nc of the output folder as a dataset (None when spectra were not kept)."""
+        """spectra.nc of the output folder as a dataset, else the kept evidence spectra
+        (None when neither is there)."""
         def load():
             path = None if self.outdir is None else self.outdir / "spectra.nc"
             if path is None or not path.is_file():
-                return None
+                return self.kept_spectra
             import xarray as xr
 
             return xr.open_dataset(path, engine="h5netcdf")
@@ -93,7 +103,7 @@ class ReportImages:
 
         ``sites`` are the chosen `filmmap.report.evidence.EvidenceSite`, ``hints`` their
         overlays in words, ``n_bad`` the failed plus suspect sites in all; the PNG is None
-        when the spectra were not kept (or no site needs evidence).
+        when no spectra are there (or no site needs evidence).
         """
         def make():
             from filmmap.report.evidence import evidence_figure, evidence_sites
@@ -106,10 +116,22 @@ class ReportImages:
             return figure_png(fig), sites, hints, n_bad
         return self._cached("evidence", make)
 
+    def render_figures(self, advice=None, between=None):
+        """Render now the figures report.html embeds (not the maps, read from disk).
+
+        Lets them be drawn while other processes work (the map workers), not after.
+        ``between``: called after each figure.
+        """
+        for make in (self.slot_profile, self.fit_quality, lambda: self.advice_profile(advice),
+                     self.evidence):
+            make()
+            if between is not None:
+                between()
+
     def close(self):
         """Close spectra.nc if it was opened."""
         sp = self._cache.pop("spectra", None)
-        if sp is not None:
+        if sp is not None and sp is not self.kept_spectra:
             sp.close()
 
     def _on_disk(self, relpath):
@@ -125,6 +147,8 @@ class ReportImages:
     def _make_contact_sheet(self):
         if self.no_map_reason:
             return None, self.no_map_reason
+        if self.sheet_source is not None:
+            return self.sheet_source(), ""
         data = self._on_disk("contact_sheet.png")
         if data is not None:
             return data, ""
@@ -132,17 +156,15 @@ class ReportImages:
             return None, "contact_sheet.png was not written by the reduce step"
         from filmmap.wafermap.figures import contact_sheet_png
 
-        ds = self.ds
+        grid = site_grid(self.ds)
         oos = set(self.view.wtw.out_of_spec_ids) if self.view.target_nm is not None else set()
         try:
             # per-wafer coordinates: wafers with another layout (a missing site) keep their own
-            png = contact_sheet_png(ds["thickness"].values, ds["fit_ok"].values,
-                                    ds["x_mm"].values, ds["y_mm"].values,
+            png = contact_sheet_png(grid.thickness_nm, grid.fit_ok, grid.x_mm, grid.y_mm,
                                     self.view.diameter_mm, self.view.edge_exclusion_mm,
-                                    wafer_ids=[str(w) for w in ds["wafer"].values],
-                                    slots=[int(s) for s in ds["slot"].values],
+                                    wafer_ids=list(grid.wafer), slots=grid.slot.tolist(),
                                     dpi=self.dpi, panel_in=1.6, lot_id=self.view.lot_id,
-                                    out_of_spec=[str(w) in oos for w in ds["wafer"].values])
+                                    out_of_spec=[w in oos for w in grid.wafer])
             return png, ""
         except Exception as exc:  # noqa: BLE001 - the report says why, it does not abort
             return None, f"the contact sheet could not be drawn ({type(exc).__name__}: {exc})"
@@ -161,19 +183,18 @@ class ReportImages:
             return data, ""
         if not self.render_missing:
             return None, "the reduce step wrote no map for this wafer"
-        ds = self.ds
-        ids = [str(w) for w in ds["wafer"].values]
-        i = ids.index(wafer)
-        x, y = ds["x_mm"].values[i], ds["y_mm"].values[i]
+        grid = site_grid(self.ds)
+        i = grid.wafer_index()[wafer]
+        x, y = grid.x_mm[i], grid.y_mm[i]
         present = np.isfinite(x) & np.isfinite(y)
-        t = np.where(present, ds["thickness"].values[i], np.nan)
-        ok = ds["fit_ok"].values[i] & present
+        t = np.where(present, grid.thickness_nm[i], np.nan)
+        ok = grid.fit_ok[i] & present
         if not np.any(ok & np.isfinite(t)):
             return None, "no site with an accepted fit: nothing to map"
         try:
             fig = wafer_map_figure(t, ok, x, y, self.view.diameter_mm,
                                    self.view.edge_exclusion_mm, wafer_id=wafer,
-                                   slot=int(ds["slot"].values[i]), dpi=self.dpi,
+                                   slot=int(grid.slot[i]), dpi=self.dpi,
                                    present=present, lot_id=self.view.lot_id)
             return figure_png(fig), ""
         except Exception as exc:  # noqa: BLE001 - the report says why, it does not abort
