@@ -610,30 +610,33 @@ def _wafer_lines(view, w):
     return lines
 
 
+def _plot_axes(fig, top_in, band_in, bottom, height):
+    """Axes of a plot across the text column, in a band ``band_in`` inches tall starting
+    ``top_in`` from the top of the page: the axes' bottom edge at ``bottom`` and its height
+    ``height``, both fractions of the band (room left for the tick labels and the title)."""
+    return fig.add_axes((_fx(_MARGIN_IN + 0.55), _fy(top_in + band_in * bottom),
+                         (PAGE_IN[0] - 2 * _MARGIN_IN - 0.65) / PAGE_IN[0],
+                         band_in * height / PAGE_IN[1]))
+
+
 def _render_page(page, view, ds, images, number, total, advice=None):
     fig = _new_page()
     _draw_frame(fig, page.title, view.lot_id, number, total)
     top = _BODY_TOP_IN
     if page.kind == "advice" and images_advice_plot(advice):
         h = _ADVICE_PLOT_UNITS * _UNIT_IN
-        ax = fig.add_axes((_fx(_MARGIN_IN + 0.55), _fy(top + h * 0.86),
-                           (PAGE_IN[0] - 2 * _MARGIN_IN - 0.65) / PAGE_IN[0],
-                           h * 0.80 / PAGE_IN[1]))
+        ax = _plot_axes(fig, top, h, 0.86, 0.80)
         draw_advice_profile(ax, view, advice, fontsize=7)
         ax.set_title("Slot profile now and predicted after the advice", fontsize=8.5)
         top += h
     elif page.kind == "profile":
         h = _PROFILE_UNITS * _UNIT_IN
-        ax = fig.add_axes((_fx(_MARGIN_IN + 0.55), _fy(top + h * 0.70),
-                           (PAGE_IN[0] - 2 * _MARGIN_IN - 0.65) / PAGE_IN[0],
-                           h * 0.66 / PAGE_IN[1]))
+        ax = _plot_axes(fig, top, h, 0.70, 0.66)
         draw_slot_profile(ax, view, fontsize=7.5)
         top += h
     elif page.kind == "fitq":
         h = _FITQ_UNITS * _UNIT_IN
-        ax = fig.add_axes((_fx(_MARGIN_IN + 0.55), _fy(top + h * 0.82),
-                           (PAGE_IN[0] - 2 * _MARGIN_IN - 0.65) / PAGE_IN[0],
-                           h * 0.74 / PAGE_IN[1]))
+        ax = _plot_axes(fig, top, h, 0.82, 0.74)
         draw_fit_quality(ax, ds, fontsize=7.5)
         top += h
     elif page.kind == "evidence":

@@ -1401,26 +1401,27 @@ class _TextStamps:
     #: Characters of numbers, which `_compose` puts together from their single glyphs.
     NUMBER_CHARS = frozenset("0123456789.-\u2212+")
 
-    def _raster(self, text):
-        """(FreeType's image of ``text``, uint8; its advance px; its descent px)."""
+    def _freetype(self, text):
+        """FreeType's image of ``text`` (uint8) and its metrics in 26.6 units: (image,
+        advance, height, descent, x_min)."""
         font = self.font                # shared with matplotlib: set the size every time
         font.set_size(self.size, self.dpi)
         font.set_text(text, 0.0)
-        width, descent = font.get_width_height()[0] / 64.0, font.get_descent() / 64.0
+        advance, height = font.get_width_height()
+        descent, x_min = font.get_descent(), font.get_bitmap_offset()[0]
         font.draw_glyphs_to_bitmap(antialiased=True)
-        return np.asarray(font.get_image(), dtype=np.uint8), width, descent
+        return np.asarray(font.get_image(), dtype=np.uint8), advance, height, descent, x_min
+
+    def _raster(self, text):
+        """(FreeType's image of ``text``, uint8; its advance px; its descent px)."""
+        image, advance, _, descent, _ = self._freetype(text)
+        return image, advance / 64.0, descent / 64.0
 
     def _char(self, ch):
         """One character's glyph bitmap and metrics (26.6 units), rasterised once."""
         got = self.chars.get(ch)
         if got is None:
-            font = self.font
-            font.set_size(self.size, self.dpi)
-            font.set_text(ch, 0.0)
-            advance, height = font.get_width_height()
-            descent, x_min = font.get_descent(), font.get_bitmap_offset()[0]
-            font.draw_glyphs_to_bitmap(antialiased=True)
-            image = np.asarray(font.get_image(), dtype=np.uint8)
+            image, advance, height, descent, x_min = self._freetype(ch)
             y_max = height - descent
             left, top = math.floor(x_min / 64), math.ceil(y_max / 64)
             # where FreeType's image of one glyph holds it (its +2 margin, matplotlib's
@@ -1454,16 +1455,10 @@ class _TextStamps:
         """FreeType's image of one word and its metrics (26.6 units), kept per process."""
         got = self.words.get(word)
         if got is None:
-            font = self.font
-            font.set_size(self.size, self.dpi)
-            font.set_text(word, 0.0)
-            advance, height = font.get_width_height()
-            descent, x_min = font.get_descent(), font.get_bitmap_offset()[0]
-            font.draw_glyphs_to_bitmap(antialiased=True)
+            image, advance, height, descent, x_min = self._freetype(word)
             if len(self.words) >= self.MAX_CACHED:
                 self.words.clear()
-            got = self.words[word] = (np.asarray(font.get_image(), dtype=np.uint8), advance,
-                                      x_min, height - descent)
+            got = self.words[word] = (image, advance, x_min, height - descent)
         return got
 
     def _line(self, text):
