@@ -629,6 +629,42 @@ TICK_FONTSIZE = 7.0
 TITLE_FONTSIZE = 10.0
 
 
+def _wafer_artists(ax, d, ee, cmap, aspect):
+    """The reusable artists of one wafer's axes, limits set and axis off: the thickness
+    field (an image whose pixels are painted later), the outline, the edge-exclusion ring
+    (None without one) and the empty used / excluded / failed site marks.
+
+    Parameters
+    ----------
+    ax : matplotlib.axes.Axes
+    d, ee : float
+        Wafer diameter and edge exclusion, mm.
+    cmap : matplotlib.colors.Colormap
+    aspect : str
+        The field image's aspect (``"equal"`` or ``"auto"``).
+
+    Returns
+    -------
+    tuple (field, outline, ring, used, outside, failed)
+    """
+    r = d / 2.0
+    ax.set_xlim(-1.05 * r, 1.05 * r)
+    ax.set_ylim(-1.05 * r, 1.05 * r)
+    ax.set_axis_off()
+    field = ax.imshow(np.full((2, 2), np.nan), extent=(-r, r, -r, r), origin="lower",
+                      cmap=cmap, norm=Normalize(0.0, 1.0), interpolation="nearest",
+                      aspect=aspect, zorder=1)
+    ox, oy = wafer_outline(d)
+    outline = ax.plot(ox, oy, color="black", lw=1.0, zorder=3)[0]
+    ring = None
+    if ee > 0:
+        ring = ax.add_patch(Circle((0.0, 0.0), r - ee, fill=False, ls="--", lw=0.7,
+                                   ec="0.35", zorder=3))
+    return (field, outline, ring, ax.plot([], [], zorder=4, **USED_MARKER)[0],
+            ax.plot([], [], zorder=4, **EXCLUDED_MARKER)[0],
+            ax.plot([], [], zorder=5, **FAILED_MARKER)[0])
+
+
 class MapCanvas:
     """One wafer-map figure, reused for wafer after wafer (one per worker process).
 
@@ -670,24 +706,12 @@ class MapCanvas:
         FigureCanvasAgg(fig)
         ax = fig.add_axes((0.05, 0.05, 0.72, 0.81))
         cax = fig.add_axes((0.80, 0.14, 0.03, 0.64))
-        ax.set_xlim(-1.05 * r, 1.05 * r)
-        ax.set_ylim(-1.05 * r, 1.05 * r)
         ax.set_aspect("equal")
-        ax.set_axis_off()       # tick machinery is most of the render time; the notch orients
-        self.field = ax.imshow(np.full((2, 2), np.nan), extent=(-r, r, -r, r), origin="lower",
-                               cmap=self.cmap, norm=Normalize(0.0, 1.0),
-                               interpolation="nearest", zorder=1)
-        ox, oy = wafer_outline(d)
-        self.outline = ax.plot(ox, oy, color="black", lw=1.0, zorder=3)[0]
-        self.ring = None
-        if ee > 0:
-            self.ring = ax.add_patch(Circle((0.0, 0.0), r - ee, fill=False, ls="--", lw=0.7,
-                                            ec="0.35", zorder=3))
+        # tick machinery is most of the render time; the notch orients
+        (self.field, self.outline, self.ring, self.used, self.outside,
+         self.failed) = _wafer_artists(ax, d, ee, self.cmap, "equal")
         ax.text(-1.04 * r, -1.04 * r, f"Ø {d:g} mm, edge exclusion {ee:g} mm, notch at -y",
                 fontsize=7, color="0.3", ha="left", va="bottom")
-        self.used = ax.plot([], [], zorder=4, **USED_MARKER)[0]
-        self.outside = ax.plot([], [], zorder=4, **EXCLUDED_MARKER)[0]
-        self.failed = ax.plot([], [], zorder=5, **FAILED_MARKER)[0]
         self.legend_handle = Line2D([], [], **FAILED_MARKER)
         self.legend = ax.legend(handles=[self.legend_handle], labels=[" "], loc="upper right",
                                 bbox_to_anchor=(1.02, 1.02), fontsize=7, frameon=False)
@@ -1056,27 +1080,14 @@ class _SheetPanel:
 
     def __init__(self, diameter_mm, edge_exclusion_mm, cmap, cell_w_px, cell_h_px, dpi,
                  panel_in, cap_in):
-        d, ee, r = diameter_mm, edge_exclusion_mm, diameter_mm / 2
+        d, ee = diameter_mm, edge_exclusion_mm
         self.d, self.cmap = d, cmap
         fig = Figure(figsize=(cell_w_px / dpi, cell_h_px / dpi), dpi=dpi)
         FigureCanvasAgg(fig)
         ax = fig.add_axes((0.04, 0.04 * panel_in / (panel_in + cap_in),
                            0.92, 0.92 * panel_in / (panel_in + cap_in)))
-        ax.set_xlim(-1.05 * r, 1.05 * r)
-        ax.set_ylim(-1.05 * r, 1.05 * r)
-        ax.set_axis_off()
-        self.field = ax.imshow(np.full((2, 2), np.nan), extent=(-r, r, -r, r), origin="lower",
-                               cmap=cmap, norm=Normalize(0.0, 1.0), interpolation="nearest",
-                               aspect="auto", zorder=1)
-        ox, oy = wafer_outline(d)
-        self.outline = ax.plot(ox, oy, color="black", lw=1.0, zorder=3)[0]
-        self.ring = None
-        if ee > 0:
-            self.ring = ax.add_patch(Circle((0.0, 0.0), r - ee, fill=False, ls="--", lw=0.7,
-                                            ec="0.35", zorder=3))
-        self.used = ax.plot([], [], zorder=4, **USED_MARKER)[0]
-        self.outside = ax.plot([], [], zorder=4, **EXCLUDED_MARKER)[0]
-        self.failed = ax.plot([], [], zorder=5, **FAILED_MARKER)[0]
+        (self.field, self.outline, self.ring, self.used, self.outside,
+         self.failed) = _wafer_artists(ax, d, ee, cmap, "auto")
         self.out_of_spec = ax.add_patch(Circle((0.0, 0.0), 0.518 * d, fill=False, lw=2.2,
                                                ec="black", clip_on=False, zorder=6))
         # the caption (wafer, slot, NU), stamped: centred, its last line's box 2 pt above
