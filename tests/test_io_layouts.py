@@ -157,6 +157,26 @@ def test_registry_names_every_layout_and_examples_are_in_the_docs():
         assert module.EXAMPLE.strip().splitlines()[1] in docs, name
 
 
+def test_no_module_outside_the_layouts_package_names_a_layout():
+    # issue 16's rule for a new layout: one module, its registration line, its tests and its
+    # docs; everything else asks the registry. Any string constant equal to a layout's
+    # NAME outside filmmap/io/layouts (docstrings are not constants equal to a name) breaks it.
+    import ast
+    from pathlib import Path
+
+    package = Path(__file__).resolve().parents[1] / "filmmap"
+    layouts = package / "io" / "layouts"
+    names = set(LAYOUTS)
+    found = []
+    for path in sorted(package.rglob("*.py")):
+        if layouts in path.parents:
+            continue
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.Constant) and node.value in names:
+                found.append(f"{path.relative_to(package)}:{node.lineno} {node.value!r}")
+    assert found == []
+
+
 def test_each_layout_declares_what_it_holds_and_the_entry_enforces_it(tmp_path):
     from filmmap.io import read_spectra as entry
     from filmmap.io.layouts import PARTIAL_WAFER_LAYOUTS, layout_problem

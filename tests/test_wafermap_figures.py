@@ -388,3 +388,28 @@ def test_forked_map_workers_rasterise_text_as_the_parent_does():
     _FORK_EXPECTED = [_FORK_STAMPS._raster(t)[0] for t in _FORK_TEXTS]
     with mp.get_context("fork").Pool(2) as pool:
         assert pool.map(_rasterise_all, range(4)) == [0, 0, 0, 0]
+
+
+def _cached_mathtext_layouts(_):
+    from matplotlib.mathtext import MathTextParser
+
+    return MathTextParser._parse_cached.cache_info().currsize
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork()")
+def test_forked_workers_start_without_the_parents_mathtext_fonts():
+    # the parent's parsed mathtext (a log axis's "10^1" ticks) holds its FreeType font
+    # objects; a forked worker drawing the same text must not use them (matplotlib issue
+    # #13723: a font object shares its file position across fork()). matplotlib's private
+    # cache is read here: the test skips where it no longer exists.
+    import multiprocessing as mp
+
+    import filmmap.wafermap.figures  # noqa: F401 - registers the fork hook
+    from matplotlib.mathtext import MathTextParser
+
+    if not hasattr(getattr(MathTextParser, "_parse_cached", None), "cache_info"):
+        pytest.skip("this matplotlib keeps no mathtext cache")
+    MathTextParser("agg").parse(r"$10^{1}$", dpi=100)
+    assert _cached_mathtext_layouts(0) >= 1
+    with mp.get_context("fork").Pool(1) as pool:
+        assert pool.map(_cached_mathtext_layouts, [0]) == [0]

@@ -12,7 +12,7 @@ from pathlib import Path
 
 from filmmap.errors import FilmmapInputError
 from filmmap.io.atomic import write_text_atomic
-from filmmap.io.layouts import LAYOUTS
+from filmmap.io.layouts import DEFAULT_LAYOUT, LAYOUTS
 
 TEMPLATE = '''\
 # filmmap lot file: one furnace run (a lot) measured on a reflectometer or ellipsometer.
@@ -85,7 +85,7 @@ to_C = 750.0
 '''
 # the layouts the registry knows, so a new layout needs no edit here
 TEMPLATE = TEMPLATE.replace("{other_layouts}",
-                            ", ".join(f'"{name}"' for name in LAYOUTS if name != "wide"))
+                            ", ".join(f'"{name}"' for name in LAYOUTS if name != DEFAULT_LAYOUT))
 
 
 

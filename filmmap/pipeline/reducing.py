@@ -24,7 +24,7 @@ from filmmap.fitting.suspect import flag_suspects
 from filmmap.fitting.systematics import SPECTROSCOPIC_MIN_WAVELENGTHS, Systematics, lot_tension
 from filmmap.materials import ScaledIndex
 from filmmap.io.lotfile import read_lot_file
-from filmmap.io.layouts import PARTIAL_WAFER_LAYOUTS, Maps, read_spectra
+from filmmap.io.layouts import DEFAULT_LAYOUT, PARTIAL_WAFER_LAYOUTS, Maps, read_spectra
 from filmmap.io.layouts.maps import lot_maps
 from filmmap.io.intensity import intensity_to_reflectance, read_dark_and_reference
 from filmmap.io.lotchecks import check_tables
@@ -172,7 +172,7 @@ class BatchTask:
     diameter_mm: float
     shift_explicit: bool = False
     delta_reversed: bool = False
-    layout: str = "wide"
+    layout: str = DEFAULT_LAYOUT
     maps: Maps = field(default_factory=Maps)
 
 
@@ -317,7 +317,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
                        ref, keep_spectra, threads, m.wafer_diameter_mm,
                        shift_explicit=m.wavelength_shift_sigma_nm is not None,
                        delta_reversed=getattr(m, "delta_convention", "handbook") == "reversed",
-                       layout=getattr(m, "layout", "wide"), maps=maps)
+                       layout=m.layout, maps=maps)
              for b in batches]
     results, metas = [], []
     if workers > 1 and len(tasks) > 1:
@@ -336,7 +336,7 @@ def reduce_lot(lot_file, workers=1, keep_spectra=False, progress=None, config=No
                 progress(len(meta))
     boat = config.boat.slots if config.boat is not None else None
     check_tables(metas, m.wafer_diameter_mm, boat,
-                 wafer_per_file=getattr(m, "layout", "wide") not in PARTIAL_WAFER_LAYOUTS)
+                 wafer_per_file=m.layout not in PARTIAL_WAFER_LAYOUTS)
 
     def cat(key):
         return np.concatenate([getattr(r, key) for r in results])

@@ -42,6 +42,32 @@ from filmmap.wafermap.stats import within_wafer_stats
 from filmmap.wafermap.surface import tps_polar_surface
 from filmmap.workers import end_with_parent, lower_priority
 
+def _forget_inherited_mathtext_fonts():
+    """In a forked child, drop the parent's cached mathtext layouts.
+
+    matplotlib empties its font cache in a forked child (`os.register_at_fork`), because a
+    FreeType font object opened before a fork shares its file position with the other
+    processes and two of them loading glyphs at once read each other's bytes ("failed to
+    load glyph"). Its cache of parsed mathtext (log-axis tick labels, for one) still holds
+    font objects of the parent; emptied here, a child that draws the same text opens its
+    own fonts. Skipped quietly where matplotlib keeps no such cache.
+
+    References
+    ----------
+    .. [1] matplotlib issue #13723 and pull request #14535 (the font cache emptied at fork).
+    .. [2] Python documentation, os.register_at_fork.
+    """
+    import sys
+
+    parser = getattr(sys.modules.get("matplotlib.mathtext"), "MathTextParser", None)
+    cached = getattr(parser, "_parse_cached", None)
+    if hasattr(cached, "cache_clear"):
+        cached.cache_clear()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_inherited_mathtext_fonts)
+
 #: Colour maps accepted by the figure functions (perceptually uniform).
 ALLOWED_CMAPS = ("viridis", "cividis", "viridis_r", "cividis_r")
 
@@ -1603,17 +1629,7 @@ def save_figure(fig, path, dpi=None):
     .. [1] Python documentation, os.replace (atomic rename on POSIX and Windows
        when source and destination are on the same file system).
     """
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}.tmp")
-    try:
-        data = png_bytes(fig, dpi)
-        with open(tmp, "xb") as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    return path
+    return write_bytes_atomic(png_bytes(fig, dpi), path)
 
 
 def render_wafer_png(path, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm,

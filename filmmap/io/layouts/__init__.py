@@ -43,10 +43,13 @@ from filmmap.io.techniques import check_arguments
 #: Layout name -> module: the registration of every layout.
 LAYOUTS = {m.NAME: m for m in (wide, long, transposed, sitefile, jcamp)}
 
+#: The layout of a lot file that names none: filmmap's own CSV (pinned).
+DEFAULT_LAYOUT = wide.NAME
+
 #: Layouts whose files each hold part of a wafer (a wafer spans several files).
 PARTIAL_WAFER_LAYOUTS = tuple(name for name, m in LAYOUTS.items() if not m.WAFER_PER_FILE)
 
-__all__ = ["LAYOUTS", "Maps", "PARTIAL_WAFER_LAYOUTS", "layout_problem", "read_spectra"]
+__all__ = ["DEFAULT_LAYOUT", "LAYOUTS", "Maps", "PARTIAL_WAFER_LAYOUTS", "layout_problem", "read_spectra"]
 
 
 def layout_problem(layout, technique):

@@ -12,7 +12,7 @@ import math
 import re
 
 from filmmap.bounds import MAX_WAFER_DIAMETER_MM
-from filmmap.io.layouts import LAYOUTS, layout_problem
+from filmmap.io.layouts import DEFAULT_LAYOUT, LAYOUTS, layout_problem
 from filmmap.io.lotfile.paths import read_data_dir, relative_file, resolve_globs
 from filmmap.io.lotfile.reader import found
 from filmmap.io.lotfile.schema import LOT_TECHNIQUES, MeasurementConfig
@@ -103,7 +103,7 @@ def read_measurement(rd, doc, folder, allow_outside, exclude, require_files=True
 
 def _read_layout(rd, t, w, folder, allow_outside, technique, reference, diameter_mm):
     """``layout``, ``site_map``, ``slot_map``, ``file_pattern`` (`filmmap.io.layouts`)."""
-    layout = rd.string(t, "layout", w, default="wide", choices=tuple(LAYOUTS))
+    layout = rd.string(t, "layout", w, default=DEFAULT_LAYOUT, choices=tuple(LAYOUTS))
     problem = layout_problem(layout, "intensity" if reference is not None else technique)
     if problem:
         rd.fail(problem, f"{w}.layout")

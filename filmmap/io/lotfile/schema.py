@@ -12,6 +12,7 @@ from pathlib import Path
 
 from filmmap.growth.deal_grove import OXIDANTS
 from filmmap.growth.recipe import AMBIENTS, Step
+from filmmap.io.layouts import DEFAULT_LAYOUT
 from filmmap.materials import Material
 
 __all__ = ["LotConfig", "LotInfo", "MeasurementConfig", "StackConfig", "LayerConfig",
@@ -123,7 +124,7 @@ class MeasurementConfig:
         Brewster: Azzam & Bashara 1977, Tompkins 1993; the default) or
         ``"reversed"`` (the instrument writes 360 - Delta; filmmap converts).
     layout : str
-        Input layout of the data files (`filmmap.io.layouts.LAYOUTS`), default ``"wide"``.
+        Input layout of the data files (`filmmap.io.layouts.LAYOUTS`), default `filmmap.io.layouts.DEFAULT_LAYOUT`.
     site_map : str, pathlib.Path or None
         A built-in pattern name (``"polar-49"``, ``"cartesian-25"``) or a CSV file
         ``site,x_mm,y_mm`` (absolute path) giving the site positions.
@@ -153,7 +154,7 @@ class MeasurementConfig:
     wavelength_shift_sigma_nm: float | None = None
     angle_offset_sigma_deg: float | None = None
     delta_convention: str = "handbook"
-    layout: str = "wide"
+    layout: str = DEFAULT_LAYOUT
     site_map: object = None
     slot_map: Path | None = None
     file_pattern: str | None = None
