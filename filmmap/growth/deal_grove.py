@@ -22,8 +22,8 @@ import numpy as np
 from filmmap.errors import FilmmapInputError
 from filmmap.reference_data import reference_toml
 
-#: Boltzmann constant in eV/K (CODATA 2018, 8.617333262e-5 eV/K).
-BOLTZMANN_EV = 8.617333e-5
+#: Boltzmann constant in eV/K: k / e, both exact in the SI since 2019 (CODATA 2018).
+BOLTZMANN_EV = 1.380649e-23 / 1.602176634e-19
 
 #: Oxidising ambients this module knows (dry oxygen, steam).
 OXIDANTS = ("O2", "H2O")
