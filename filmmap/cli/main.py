@@ -18,6 +18,7 @@ from pathlib import Path
 from filmmap import __version__
 from filmmap.cautions import CONSOLE_CAUTION as CAUTION
 from filmmap.errors import FilmmapInputError
+from filmmap.report.formatting import signed
 
 
 def _furnace_model_options(parser, trim_help):
@@ -163,7 +164,7 @@ def print_advice(advice, stream=sys.stdout):
     p(f"  advice (advisory only): {advice['adjust_step']} {advice['minutes_now']:.1f} -> "
       f"{advice['minutes_next']:.1f} min")
     if advice["zone_offsets_C"]:
-        p("; zone trims " + ", ".join(f"{k} {v:+.2f} K" for k, v in advice["zone_offsets_C"].items()))
+        p("; zone trims " + ", ".join(f"{k} {signed(v, 2, 'K')}" for k, v in advice["zone_offsets_C"].items()))
     p("\n")
     now, nxt = advice["predicted_wtw_pct_now"], advice["predicted_wtw_pct_next"]
     if now is not None and nxt is not None:
@@ -301,7 +302,7 @@ def _record(outdir, config, db_path, trims, quiet, n_ok=None, record=None):
         print(f"  run-to-run: no estimate ({r2r.reason})")
         return
     nxt = r2r.estimate
-    trims_now = ", ".join(f"{k} {v:+.2f} C" for k, v in nxt.zone_trims_C.items())
+    trims_now = ", ".join(f"{k} {signed(v, 2, 'K')}" for k, v in nxt.zone_trims_C.items())
     print(f"  run-to-run (EWMA w = {r2r.weight:g} over {r2r.n_lots} lots of "
           f"{config.lot.furnace}): {nxt.adjust_step} {nxt.minutes_next:.1f} min"
           + (f"; trims in force {trims_now}" if trims_now else "") + " (advisory only)")

@@ -16,7 +16,7 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 
-from filmmap.report.formatting import MISSING, is_number
+from filmmap.report.formatting import MISSING, is_number, signed
 from filmmap.report.slotplot import COLOURS, X_LABEL
 
 #: Header of the zone table.
@@ -60,8 +60,8 @@ def zone_rows(advice, view=None):
     for zone, trim in trims.items():
         at = is_number(bound) and is_number(trim) and abs(trim) >= float(bound) - 1e-6
         rows.append((str(zone), ranges.get(zone, MISSING),
-                     f"{errs[zone]:+.2f}" if is_number(errs.get(zone)) else MISSING,
-                     f"{trim:+.2f}" if is_number(trim) else MISSING,
+                     signed(errs.get(zone), 2),
+                     signed(trim, 2),
                      f"± {float(bound):.1f}" if is_number(bound) else MISSING,
                      "yes" if at else "no"))
     return rows
@@ -74,7 +74,7 @@ def time_row(advice):
     change = 100.0 * (nxt / now - 1.0) if is_number(now) and is_number(nxt) and now else None
     return (str(advice.get("adjust_step", "")), f"{now:.2f}" if is_number(now) else MISSING,
             f"{nxt:.2f}" if is_number(nxt) else MISSING,
-            f"{change:+.2f}" if change is not None else MISSING,
+            signed(change, 2),
             f"± {float(bound):g}" if is_number(bound) else MISSING)
 
 
@@ -85,11 +85,11 @@ def slot_rows(advice, view):
     eff = _slot_dict(advice, "effective_offset_C_by_slot")
     measured = {w.slot: w.mean_nm for w in view.wafers} if view is not None else {}
 
-    def f(d, s, digits, sign=""):
+    def f(d, s, digits):
         v = d.get(s)
-        return f"{v:{sign}.{digits}f}" if is_number(v) else MISSING
+        return f"{v:.{digits}f}" if is_number(v) else MISSING
 
-    return [(str(s), f(measured, s, 2), f(now, s, 2), f(nxt, s, 2), f(eff, s, 2, "+"))
+    return [(str(s), f(measured, s, 2), f(now, s, 2), f(nxt, s, 2), signed(eff.get(s), 2))
             for s in sorted(set(now) | set(nxt) | set(eff))]
 
 

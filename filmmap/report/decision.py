@@ -28,7 +28,7 @@ import math
 from dataclasses import dataclass
 
 from filmmap.report.cautions import SHORT_CAUTION
-from filmmap.report.formatting import is_number
+from filmmap.report.formatting import is_number, signed
 
 #: Failed plus suspect sites, as a fraction of the measured sites, above which a lot that is
 #: otherwise in spec is held for review (common practice, no source).
@@ -124,7 +124,7 @@ def lot_disposition(view):
 
 
 def _k(value):
-    return f"{value:+.1f} K"
+    return signed(value, 1, "K")
 
 
 def has_standard_advice(advice):
@@ -157,7 +157,7 @@ def advice_sentence(advice):
     obound = model.get("max_offset_C")
     change = 100.0 * (nxt / now - 1.0) if now else math.nan
     at_t = is_number(tbound) and abs(change) >= float(tbound) - 1e-6
-    parts = [f"Set {advice['adjust_step']} to {nxt:.1f} min (now {now:.1f} min, {change:+.1f} %"
+    parts = [f"Set {advice['adjust_step']} to {nxt:.1f} min (now {now:.1f} min, {signed(change, 1)} %"
              + (f"; bound ± {float(tbound):g} %" if is_number(tbound) else "")
              + (", at the bound" if at_t else "") + ")"]
     trims = advice.get("zone_offsets_C") or {}

@@ -44,6 +44,30 @@ def fmt(value, digits=2, unit="", reason=None):
     return f"{text} {unit}" if unit else text
 
 
+def signed(value, digits=1, unit=""):
+    """``value`` with its sign and ``digits`` decimals (and ``unit``), or '—' if not finite.
+
+    Rounded before the sign is chosen, so a value that rounds to zero reads ``+0.0``,
+    never ``-0.0`` or a float artefact such as ``1.16e-14``.
+
+    Parameters
+    ----------
+    value : float or None
+    digits : int
+        Decimals.
+    unit : str
+        Appended after a space when the value is finite.
+
+    Returns
+    -------
+    str
+    """
+    if not is_number(value):
+        return MISSING
+    text = f"{round(float(value), digits) + 0.0:+.{digits}f}"
+    return f"{text} {unit}" if unit else text
+
+
 #: A dict of more scalars than this is shown compactly ("k: v, k: v, ...") in the reports.
 COMPACT_DICT_MIN = 9
 

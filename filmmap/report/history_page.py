@@ -29,7 +29,7 @@ from matplotlib.figure import Figure
 from filmmap.errors import FilmmapInputError
 from filmmap.history.control import D2_PAIRS, METRICS, IndividualsChart, baseline_warnings
 from filmmap.report.cautions import CONTROL_CHART_CAUTION
-from filmmap.report.formatting import MISSING, fmt
+from filmmap.report.formatting import MISSING, fmt, signed
 from filmmap.report.markup import e, img_tag
 
 __all__ = ["HISTORY_HTML", "chart_filename", "history_html", "next_run_lines",
@@ -100,8 +100,7 @@ def next_run_lines(nxt):
                  f"next{clip}")
     trims = nxt.get("zone_trims_C") or {}
     if trims:
-        # round before the sign so that 1e-14 reads +0.0, not a float artefact
-        text = ", ".join(f"{z} {round(float(v), 1) + 0.0:+.1f} K" for z, v in trims.items()
+        text = ", ".join(f"{z} {signed(v, 1, 'K')}" for z, v in trims.items()
                          if v is not None)
         clipped = nxt.get("clipped_zones") or []
         lines.append("zone trims to have in force next run (absolute, relative to the "

@@ -26,7 +26,8 @@ from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS_TITLE
 from filmmap.report.decision import (IN_SPEC, OUT_OF_SPEC, UNITS_NOTE, advice_causes, decision,
                                      has_standard_advice)
 from filmmap.report.formatting import (MISSING, compact_dict_text, flag_text, fmt, fmt_in_spec,
-                                       fmt_wafer, is_long_scalar_dict, scalar_text, wtw_rows)
+                                       fmt_wafer, is_long_scalar_dict, scalar_text, signed,
+                                       wtw_rows)
 from filmmap.report.images import ReportImages
 from filmmap.report.markup import e
 from filmmap.report.markup import img_tag as _img
@@ -209,7 +210,7 @@ def _advice_html(view, advice, images):
         expl = advice.get("zone_fit_explained")
         bits = []
         if isinstance(common, (int, float)):
-            bits.append(f"common offset of the boat {common:+.2f} K (answered by the time, "
+            bits.append(f"common offset of the boat {signed(common, 2, 'K')} (answered by the time, "
                         "not by the trims)")
         if isinstance(resid, (int, float)):
             bits.append(f"slot-to-slot part the zones leave unexplained {resid:.2f} K rms")
