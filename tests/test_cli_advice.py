@@ -59,3 +59,23 @@ def test_predict_prints_zones_and_caution(demo_results):
     assert "(changed)" in r.stdout and "load" in r.stdout and "never drives equipment" in r.stdout
     bad = run_cli("predict", lot, "--set", "nosuchstep.minutes=10")
     assert bad.returncode == 2 and "nosuchstep" in bad.stderr
+
+
+def test_every_output_names_the_same_edge_slots(demo_results):
+    # the lot's edge slots come from the advice's boat model; the per-wafer flags in
+    # summary.json, summary.csv and the report's WIW table must say the same (they once kept
+    # the statistical rule's slots 4-6 while the verdict said 4)
+    import csv
+
+    _, out, stdout = demo_results
+    summary = json.loads((out / "summary.json").read_text())
+    edge = summary["lot"]["edge_slots"]
+    assert edge, "the demo tube is cold at the load end: it has an edge slot"
+    assert sorted(w["slot"] for w in summary["wafers"] if w["flag"] == "edge") == edge
+    with open(out / "summary.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert sorted(int(r["slot"]) for r in rows if r["flag"] == "edge") == edge
+    html = (out / "report.html").read_text()
+    assert html.count('<tr class="edge">') == len(edge)
+    words = ", ".join(map(str, edge))
+    assert f"edge slots at the load end: {words}" in stdout

@@ -68,7 +68,9 @@ class WaferLine:
     flagged : bool
         Flagged in the slot profile.
     edge : bool
-        An edge slot (flagged and contiguous with an end of the product region).
+        An edge slot: flagged and contiguous with an end of the product region or, with a
+        growth model, a slot the advised run still leaves out of tolerance because of an
+        end effect (`with_boat_model`).
     flag_reason : str
         Why the slot is flagged ('' when not flagged).
     note : str
@@ -487,4 +489,7 @@ def with_boat_model(view, advice):
         "advised run still leaves out of tolerance because of an end effect"]
     recs = tuple({"action": str(r.get("action", "")), "answers": str(r.get("answers", ""))}
                  for r in advice.get("recommendations", ()))
-    return replace(view, profile=profile, notes=notes, recommendations=recs)
+    # every wafer line says the same: the slot plot and the tables mark these edge slots
+    edge = set(profile.edge_slots)
+    wafers = tuple(replace(w, edge=w.slot in edge) for w in view.wafers)
+    return replace(view, profile=profile, notes=notes, recommendations=recs, wafers=wafers)

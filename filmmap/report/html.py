@@ -37,6 +37,13 @@ from filmmap.report.provenance import provenance, provenance_rows
 SLOT_PROFILE_IMG_ID = "slot-profile"
 SLOT_PROFILE_ALT = "Slot profile: wafer mean thickness against boat slot"
 
+#: What an edge slot is, by the rule the lot view used (`filmmap.lotstats.view.with_boat_model`).
+EDGE_RULE_STATISTICAL = ("Edge slots: flagged product slots contiguous with an end of the "
+                         "product region.")
+EDGE_RULE_BOAT_MODEL = ("Edge slots: slots the advised run still leaves out of tolerance "
+                        "because of an end effect of the boat model; other flagged slots are "
+                        "answered by the advised time and trims.")
+
 _CSS = """
 :root { --ink: #1d1d1f; --muted: #555; --rule: #c9c9c9; --accent: #3b528b; --band: #eef2e6; }
 * { box-sizing: border-box; }
@@ -444,8 +451,10 @@ def _render(emit, view, ds, images, outdir, advice, dpi):
     p.append('<section id="profile"' + ('' if advice else ' class="first"') + '><h2>Slot profile</h2><figure>'
              + _img(images.slot_profile(), SLOT_PROFILE_ALT, SLOT_PROFILE_IMG_ID)
              + "<figcaption>Wafer mean thickness against boat slot, error bars ± 1 within-wafer "
-             "sigma. Slot 1 is the load (door) end. Edge slots: flagged product slots "
-             "contiguous with an end of the product region.</figcaption></figure>")
+             "sigma. Slot 1 is the load (door) end. " + e(EDGE_RULE_BOAT_MODEL if advice
+                                                          and "boat_model" in advice
+                                                          else EDGE_RULE_STATISTICAL)
+             + "</figcaption></figure>")
     if view.profile.reasons:
         p.append("<h3>Flagged slots</h3><ul>" + "".join(
             f"<li>slot {s}{' (edge)' if s in view.profile.edge_slots else ''}: {e(r)}</li>"
