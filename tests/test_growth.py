@@ -132,7 +132,8 @@ def test_arrhenius_form():
     # rtol 1e-9: the same formula; k_B above has the 10 digits CODATA 2018 prints, filmmap's
     # is k/e in full (exp(-E/kT) then differs by E/kT * 2e-11)
     np.testing.assert_allclose(parabolic_B(T, "O2"), 772.0 * np.exp(-1.23 / kT), rtol=1e-9)
-    np.testing.assert_allclose(linear_B_over_A(T, "O2", "111"), 6.23e6 * np.exp(-2.0 / kT), rtol=1e-9)
+    np.testing.assert_allclose(linear_B_over_A(T, "O2", "111"), 6.23e6 * np.exp(-2.0 / kT),
+                               rtol=1e-9)
     # CODATA 2018 as scipy.constants carries it (an outside table): 8.617333262...e-5 eV/K
     from scipy.constants import physical_constants
 
@@ -226,7 +227,8 @@ def test_constant_step_equals_deal_grove_ode(ambient, T, x0):
     # 1e-9 relative: the ODE's rtol is 1e-12; what is left is the reference's k_B, CODATA's
     # 10 printed digits against filmmap's k/e in full (2e-11 of E/kT); measured <= 1.4e-10
     assert got == pytest.approx(expect, rel=1e-9)
-    assert oxide_thickness_nm(90.0, T, ambient, "100", initial_nm=x0) == pytest.approx(expect, rel=1e-9)
+    assert (oxide_thickness_nm(90.0, T, ambient, "100", initial_nm=x0)
+            == pytest.approx(expect, rel=1e-9))
 
 
 def test_chained_constant_steps_equal_one_closed_form():

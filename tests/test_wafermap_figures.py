@@ -402,10 +402,12 @@ def test_forked_workers_start_without_the_parents_mathtext_fonts():
     # objects; a forked worker drawing the same text must not use them (matplotlib issue
     # #13723: a font object shares its file position across fork()). matplotlib's private
     # cache is read here: the test skips where it no longer exists.
+    import importlib
     import multiprocessing as mp
 
-    import filmmap.wafermap.figures  # noqa: F401 - registers the fork hook
     from matplotlib.mathtext import MathTextParser
+
+    importlib.import_module("filmmap.wafermap.figures")     # registers the fork hook
 
     if not hasattr(getattr(MathTextParser, "_parse_cached", None), "cache_info"):
         pytest.skip("this matplotlib keeps no mathtext cache")

@@ -164,7 +164,8 @@ def print_advice(advice, stream=sys.stdout):
     p(f"  advice (advisory only): {advice['adjust_step']} {advice['minutes_now']:.1f} -> "
       f"{advice['minutes_next']:.1f} min")
     if advice["zone_offsets_C"]:
-        p("; zone trims " + ", ".join(f"{k} {signed(v, 2, 'K')}" for k, v in advice["zone_offsets_C"].items()))
+        p("; zone trims " + ", ".join(f"{k} {signed(v, 2, 'K')}"
+                                      for k, v in advice["zone_offsets_C"].items()))
     p("\n")
     now, nxt = advice["predicted_wtw_pct_now"], advice["predicted_wtw_pct_next"]
     if now is not None and nxt is not None:

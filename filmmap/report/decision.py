@@ -157,7 +157,8 @@ def advice_sentence(advice):
     obound = model.get("max_offset_C")
     change = 100.0 * (nxt / now - 1.0) if now else math.nan
     at_t = is_number(tbound) and abs(change) >= float(tbound) - 1e-6
-    parts = [f"Set {advice['adjust_step']} to {nxt:.1f} min (now {now:.1f} min, {signed(change, 1)} %"
+    parts = [f"Set {advice['adjust_step']} to {nxt:.1f} min (now {now:.1f} min, "
+             f"{signed(change, 1)} %"
              + (f"; bound ± {float(tbound):g} %" if is_number(tbound) else "")
              + (", at the bound" if at_t else "") + ")"]
     trims = advice.get("zone_offsets_C") or {}

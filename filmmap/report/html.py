@@ -217,7 +217,8 @@ def _advice_html(view, advice, images):
         expl = advice.get("zone_fit_explained")
         bits = []
         if isinstance(common, (int, float)):
-            bits.append(f"common offset of the boat {signed(common, 2, 'K')} (answered by the time, "
+            bits.append(f"common offset of the boat {signed(common, 2, 'K')} (answered by the "
+                        "time, "
                         "not by the trims)")
         if isinstance(resid, (int, float)):
             bits.append(f"slot-to-slot part the zones leave unexplained {resid:.2f} K rms")

@@ -49,7 +49,8 @@ DEFAULT_LAYOUT = wide.NAME
 #: Layouts whose files each hold part of a wafer (a wafer spans several files).
 PARTIAL_WAFER_LAYOUTS = tuple(name for name, m in LAYOUTS.items() if not m.WAFER_PER_FILE)
 
-__all__ = ["DEFAULT_LAYOUT", "LAYOUTS", "Maps", "PARTIAL_WAFER_LAYOUTS", "layout_problem", "read_spectra"]
+__all__ = ["DEFAULT_LAYOUT", "LAYOUTS", "Maps", "PARTIAL_WAFER_LAYOUTS", "layout_problem",
+           "read_spectra"]
 
 
 def layout_problem(layout, technique):

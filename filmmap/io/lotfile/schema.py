@@ -124,7 +124,8 @@ class MeasurementConfig:
         Brewster: Azzam & Bashara 1977, Tompkins 1993; the default) or
         ``"reversed"`` (the instrument writes 360 - Delta; filmmap converts).
     layout : str
-        Input layout of the data files (`filmmap.io.layouts.LAYOUTS`), default `filmmap.io.layouts.DEFAULT_LAYOUT`.
+        Input layout of the data files (`filmmap.io.layouts.LAYOUTS`), default
+        `filmmap.io.layouts.DEFAULT_LAYOUT`.
     site_map : str, pathlib.Path or None
         A built-in pattern name (``"polar-49"``, ``"cartesian-25"``) or a CSV file
         ``site,x_mm,y_mm`` (absolute path) giving the site positions.
