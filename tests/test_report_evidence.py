@@ -145,7 +145,7 @@ def test_evidence_pdf_holds_every_bad_site(lot, tmp_path):
 # ------------------------------------------------- evidence without --keep-spectra
 
 def test_evidence_rows_take_each_cause_in_turn_then_suspects_then_worst_accepted():
-    from filmmap.fitting.evidence import evidence_rows
+    from filmmap.lotstats.evidence import evidence_rows
 
     rng = np.random.default_rng(3)
     n = 400
@@ -177,7 +177,7 @@ def test_evidence_rows_take_each_cause_in_turn_then_suspects_then_worst_accepted
 def test_batches_keep_the_spectra_the_lot_chooses():
     # the lot's evidence is chosen after its batches are fitted (suspect flags need the
     # lot's median): what each batch keeps must hold the lot's choice
-    from filmmap.fitting.evidence import batch_evidence_rows, evidence_rows
+    from filmmap.lotstats.evidence import batch_evidence_rows, evidence_rows
     from filmmap.fitting.suspect import flag_suspects
 
     rng = np.random.default_rng(11)
@@ -230,7 +230,7 @@ def _lot_on_disk(folder, n_wafers=3):
 def test_overlays_are_drawn_without_keep_spectra(tmp_path):
     # issue 14 item 3: the evidence works without --keep-spectra; only the evidence
     # sites' spectra are kept, not the lot's
-    from filmmap.fitting.evidence import EVIDENCE_SITES, N_WORST_ACCEPTED
+    from filmmap.lotstats.evidence import EVIDENCE_SITES, N_WORST_ACCEPTED
     from filmmap.pipeline import reduce_to_folder
     from filmmap.wafermap.sites import polar_sites
 

@@ -4,7 +4,8 @@
 summary.csv, report.html, report.pdf and the run history all present. Its parts, one
 module per idea: `uniformity` (the one non-uniformity definition), `roles` (wafer roles
 from [boat]), `exclusion` (the minimum-usable-sites rule), `causes` (failure causes),
-`wtw` (wafer-to-wafer figures) and `slots` (the slot profile and edge slots).
+`wtw` (wafer-to-wafer figures), `slots` (the slot profile and edge slots) and `evidence`
+(which sites' spectra the report shows as evidence).
 """
 
 from filmmap.lotstats.causes import count_causes, failure_cause

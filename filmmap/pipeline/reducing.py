@@ -19,7 +19,7 @@ from filmmap.errors import FilmmapInputError
 from filmmap.fitting import fit_spectra, free_parameters
 from filmmap.fitting.convention import REVERSED_DELTA_HINT, ConventionCheck, \
     check_delta_convention
-from filmmap.fitting.evidence import batch_evidence_rows, evidence_rows
+from filmmap.lotstats.evidence import batch_evidence_rows, evidence_rows
 from filmmap.fitting.suspect import flag_suspects
 from filmmap.fitting.systematics import SPECTROSCOPIC_MIN_WAVELENGTHS, Systematics, lot_tension
 from filmmap.materials import ScaledIndex
@@ -66,7 +66,7 @@ class SiteResults:
 @dataclass
 class EvidenceSpectra:
     """Measured and model spectra of the few sites a report shows as evidence (kept with or
-    without ``keep_spectra``; `filmmap.fitting.evidence.evidence_rows`).
+    without ``keep_spectra``; `filmmap.lotstats.evidence.evidence_rows`).
 
     Attributes
     ----------

@@ -11,7 +11,7 @@ overlay into words.
 
 The spectra come from spectra.nc (``reduce --keep-spectra``: every site's measured and
 model spectra, model at the unchecked best fit) or, without it, from the few a reduction
-keeps for the evidence (`kept_spectra`; `filmmap.fitting.evidence.evidence_rows`: the
+keeps for the evidence (`kept_spectra`; `filmmap.lotstats.evidence.evidence_rows`: the
 failed, suspect and worst-fitting sites). Without either the report lists the sites and
 says how to get the overlays.
 """
@@ -26,7 +26,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 from filmmap.bridge import site_grid
-from filmmap.fitting.evidence import take_in_turn
+from filmmap.lotstats.evidence import take_in_turn
 from filmmap.lotstats.causes import failure_cause
 from filmmap.report.slotplot import COLOURS
 
