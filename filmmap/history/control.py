@@ -54,9 +54,8 @@ References
 
 from __future__ import annotations
 
-from __future__ import annotations
-
 import math
+from abc import ABC, abstractmethod
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -255,7 +254,7 @@ def _limits(x, baseline, centre, sigma):
 
 
 @dataclass(frozen=True)
-class ControlChart:
+class ControlChart(ABC):
     """What every control chart has: values, sigma, limits and a flag tuple per point.
 
     Attributes
@@ -300,9 +299,9 @@ class ControlChart:
         """Indices of the points that trigger ``rule``."""
         return [i for i, f in enumerate(self.flags) if rule in f]
 
+    @abstractmethod
     def signal_text(self, flags):
-        """A point's signal (its entry of ``flags``) in words."""
-        raise NotImplementedError
+        """A point's signal (its entry of ``flags``) in words (each chart says its own)."""
 
 
 @dataclass(frozen=True)
