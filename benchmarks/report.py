@@ -88,7 +88,8 @@ def time_parts(ds, n, folder):
     """CPU seconds of maps (1 process), contact sheet, report.html, report.pdf for n wafers."""
     from filmmap.lotstats import lot_view
     from filmmap.report import ReportImages, write_html_report, write_pdf_report
-    from filmmap.wafermap.figures import contact_sheet_png, write_bytes_atomic
+    from filmmap.atomic import write_bytes_atomic
+    from filmmap.wafermap.figures import contact_sheet_png
 
     big = repeated(ds, n)
     cfg = config_for(n, f"BENCH-{n}")
@@ -108,7 +109,7 @@ def time_parts(ds, n, folder):
                             big["y_mm"].values, 150.0, 4.0,
                             wafer_ids=[str(w) for w in big["wafer"].values],
                             slots=[int(s) for s in big["slot"].values], lot_id=cfg.lot.id)
-    write_bytes_atomic(png, folder / "contact_sheet.png")
+    write_bytes_atomic(folder / "contact_sheet.png", png, durable=False)
     del png
     out["contact sheet"] = cpu() - c0
     images = ReportImages(view, big, folder, render_missing=False)

@@ -84,6 +84,11 @@ def test_fsync_before_rename(tmp_path, monkeypatch):
     assert temp_inode == path.stat().st_ino          # the renamed file is the one written
     assert ("fsync", temp_inode) in events[:at]      # and it was flushed before the rename
     assert path.read_bytes() == b"data"
+    # the maps' writes (durable=False) keep the rename, leave the flush to the system
+    events.clear()
+    write_bytes_atomic(path, b"map", durable=False)
+    assert [kind for kind, _ in events] == ["replace"] and path.read_bytes() == b"map"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out.bin"]   # no temporary left
 
 
 def test_permissions_follow_umask(tmp_path):

@@ -14,7 +14,7 @@ import filmmap
 
 #: Top-level module or package of filmmap -> layer (lower layers never import higher ones).
 LAYERS = {
-    "errors": 0, "bounds": 0, "workers": 0, "bridge": 0, "cautions": 0, "reference_data": 0,
+    "errors": 0, "bounds": 0, "workers": 0, "atomic": 0, "bridge": 0, "cautions": 0, "reference_data": 0,
     "materials": 1,
     "optics": 2,
     "fitting": 3, "wafermap": 3, "lotstats": 3,

@@ -10,7 +10,7 @@
 - `read_text_file` (`filmmap.io.textfile`): the strict text-file reading they all share.
 """
 
-from filmmap.io.atomic import atomic_path, write_bytes_atomic, write_text_atomic
+from filmmap.atomic import atomic_path, write_bytes_atomic, write_text_atomic
 from filmmap.io.intensity import intensity_to_reflectance, read_dark_and_reference
 from filmmap.io.layouts import LAYOUTS, read_spectra
 from filmmap.io.lotchecks import check_tables

@@ -13,7 +13,7 @@ import numpy as np
 import xarray as xr
 
 from filmmap import __version__
-from filmmap.io.atomic import write_bytes_atomic, write_text_atomic
+from filmmap.atomic import write_bytes_atomic, write_text_atomic
 from filmmap.io.cf import cf_encode
 
 FIT_QUALITY_DEFINITION = ("reduced chi-square: sum(w r^2) / (points - parameters), w = 1/sigma^2 "

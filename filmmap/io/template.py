@@ -11,7 +11,7 @@ from importlib import resources
 from pathlib import Path
 
 from filmmap.errors import FilmmapInputError
-from filmmap.io.atomic import write_text_atomic
+from filmmap.atomic import write_text_atomic
 from filmmap.io.layouts import DEFAULT_LAYOUT, LAYOUTS
 
 TEMPLATE = '''\

@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.growth import integrate_recipe, validate_steps
-from filmmap.io.atomic import write_text_atomic
+from filmmap.atomic import write_text_atomic
 from filmmap.optics import Layer, Stack
 from filmmap.wafermap.sites import polar_sites
 

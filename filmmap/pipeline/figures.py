@@ -7,7 +7,8 @@ from pathlib import Path
 import numpy as np
 
 from filmmap.bridge import site_grid
-from filmmap.wafermap.figures import MapRendering, contact_sheet_png, write_bytes_atomic
+from filmmap.atomic import write_bytes_atomic
+from filmmap.wafermap.figures import MapRendering, contact_sheet_png
 from filmmap.wafermap.sites import coordinate_groups
 from filmmap.wafermap.surface import tps_polar_surface
 
@@ -120,7 +121,8 @@ class FigureWork:
         drawing it, keeping the map workers supplied meanwhile)."""
         if self.sheet_path is None:
             self.sheet_png = self.maps.result(self.sheet)
-            self.sheet_path = write_bytes_atomic(self.sheet_png, self.outdir / "contact_sheet.png")
+            self.sheet_path = write_bytes_atomic(self.outdir / "contact_sheet.png",
+                                                 self.sheet_png, durable=False)
             self.sheet = None
         return self.sheet_png
 

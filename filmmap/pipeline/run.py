@@ -24,7 +24,7 @@ from filmmap import __version__
 from filmmap.bridge import site_grid, wafer_values
 from filmmap.errors import FilmmapInputError, FilmmapOutputError
 from filmmap.growth.advice import advise_from_config
-from filmmap.io.atomic import write_text_atomic
+from filmmap.atomic import write_text_atomic
 from filmmap.io.lotfile import LotConfig, read_lot_file
 from filmmap.pipeline.guard import (check_history_writable, check_output_location,
                                     check_outputs_spare_inputs, estimate_from_inputs,

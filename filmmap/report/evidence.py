@@ -364,7 +364,7 @@ def write_evidence_pdf(sites, spectra, path, *, lot_id=""):
     """
     from matplotlib.backends.backend_pdf import PdfPages
 
-    from filmmap.io.atomic import atomic_path
+    from filmmap.atomic import atomic_path
 
     pages = [sites[i:i + PER_PAGE] for i in range(0, len(sites), PER_PAGE)]
     with atomic_path(path) as tmp:

@@ -227,6 +227,6 @@ def write_history_html(path, rows, charts, **options):
     ----------
     .. [1] Python documentation, os.replace.
     """
-    from filmmap.io.atomic import write_text_atomic
+    from filmmap.atomic import write_text_atomic
 
     return write_text_atomic(path, history_html(rows, charts, **options))

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from filmmap.io.atomic import atomic_path
+from filmmap.atomic import atomic_path
 from filmmap.report.advicefig import (SLOT_HEADER, ZONE_HEADER, slot_rows, time_row,
                                       zone_rows)
 from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS_TITLE

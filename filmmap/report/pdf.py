@@ -54,7 +54,7 @@ from matplotlib.figure import Figure
 from matplotlib.text import Text
 
 from filmmap import __version__
-from filmmap.io.atomic import atomic_path
+from filmmap.atomic import atomic_path
 from filmmap.report.advicefig import draw_advice_profile, slot_rows, time_row, zone_rows
 from filmmap.report.cautions import CAUTION_PARAGRAPHS, CAUTIONS_TITLE
 from filmmap.report.decision import UNITS_NOTE, advice_causes, decision, has_standard_advice

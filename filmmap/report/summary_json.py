@@ -31,7 +31,7 @@ import math
 from pathlib import Path
 
 from filmmap import __version__
-from filmmap.io.atomic import write_text_atomic
+from filmmap.atomic import write_text_atomic
 from filmmap.report.formatting import flag_text
 
 #: Pinned keys of summary.json, in order.

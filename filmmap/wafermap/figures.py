@@ -19,7 +19,6 @@ import itertools
 import math
 import os
 import re
-import uuid
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
@@ -36,6 +35,7 @@ from matplotlib.patheffects import withStroke
 from matplotlib.ticker import MaxNLocator, ScalarFormatter
 from matplotlib.transforms import offset_copy
 
+from filmmap.atomic import write_bytes_atomic
 from filmmap.errors import FilmmapInputError
 from filmmap.wafermap.sites import check_wafer, inside_edge_exclusion, lot_arrays
 from filmmap.wafermap.stats import within_wafer_stats
@@ -1241,20 +1241,6 @@ def contact_sheet_png(thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_
     return encode_png(sheet, SHEET_PNG_COMPRESS_LEVEL, palette=map_palette(cmap))
 
 
-def write_bytes_atomic(data, path):
-    """Write ``data`` to ``path`` through a temporary file and os.replace; return the path."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.{uuid.uuid4().hex[:12]}.tmp")
-    try:
-        with open(tmp, "xb") as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    return path
-
-
 #: Colours of the palette PNGs (maps, contact sheet, report images).
 PNG_COLOURS = 192
 
@@ -1608,7 +1594,7 @@ class _TextStamps:
 
 
 def save_figure(fig, path, dpi=None):
-    """Write a figure as PNG atomically: a temporary file in the same folder, then os.replace.
+    """Write a figure as PNG atomically (`filmmap.atomic.write_bytes_atomic`).
 
     Parameters
     ----------
@@ -1629,7 +1615,7 @@ def save_figure(fig, path, dpi=None):
     .. [1] Python documentation, os.replace (atomic rename on POSIX and Windows
        when source and destination are on the same file system).
     """
-    return write_bytes_atomic(png_bytes(fig, dpi), path)
+    return write_bytes_atomic(path, png_bytes(fig, dpi), durable=False)
 
 
 def render_wafer_png(path, thickness_nm, ok, x_mm, y_mm, diameter_mm, edge_exclusion_mm,
@@ -1698,7 +1684,7 @@ def _render_task(task):
                         float(kw.pop("dpi", 100)))
     prepared = _prepare_map(t, ok, x, y, d, ee, **kw)
     canvas.draw(*prepared)
-    return str(write_bytes_atomic(canvas.png(), path))
+    return str(write_bytes_atomic(path, canvas.png(), durable=False))
 
 
 def _render_chunk(tasks):
